@@ -1,0 +1,50 @@
+"""blocksur: systems of regression equations with correlated errors (seemingly unrelated
+regressions), estimated by OLS, two-step FGLS and iterated FGLS, blockwise: the NT x NT
+covariance is never formed.
+
+Example
+-------
+>>> import numpy as np, blocksur
+>>> rng = np.random.default_rng(1)
+>>> X = np.column_stack([np.ones(40), rng.normal(size=40)])
+>>> system = blocksur.EquationSystem([(X @ [1.0, 0.5] + rng.normal(size=40), X),
+...                                   (X[:, :1] * 2 + rng.normal(size=(40, 1)), X[:, :1])])
+>>> system.fit("fgls").coef.index.names
+FrozenList(['equation', 'regressor'])
+"""
+
+from ._core import __version__
+from ._fit import SystemFit
+from ._system import EquationSystem
+from .errors import (
+    BlocksurError,
+    BlocksurWarning,
+    CollinearityError,
+    EmptySystemError,
+    InputError,
+    InvalidOptionError,
+    NonFiniteError,
+    NotConvergedWarning,
+    NumericalError,
+    ShapeMismatchError,
+    SingularOmegaError,
+    TooFewObservationsError,
+)
+
+__all__ = [
+    "__version__",
+    "EquationSystem",
+    "SystemFit",
+    "BlocksurError",
+    "BlocksurWarning",
+    "CollinearityError",
+    "EmptySystemError",
+    "InputError",
+    "InvalidOptionError",
+    "NonFiniteError",
+    "NotConvergedWarning",
+    "NumericalError",
+    "ShapeMismatchError",
+    "SingularOmegaError",
+    "TooFewObservationsError",
+]

@@ -1,0 +1,229 @@
+"""The system of equations: input handling, labels, and the entry point to estimation."""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from . import _core
+from .errors import InvalidOptionError, NotConvergedWarning, ShapeMismatchError
+from ._fit import SystemFit
+
+__all__ = ["EquationSystem"]
+
+_METHODS = ("ols", "fgls", "ifgls")
+_DIVISORS = ("ml", "dof")
+
+
+def _as_float(name: str, what: str, value: Any, ndim: int) -> np.ndarray:
+    arr = np.asarray(value)
+    if arr.dtype == object or not (np.issubdtype(arr.dtype, np.number) or arr.dtype == np.bool_):
+        raise ShapeMismatchError(
+            f"equation '{name}': the {what} has dtype {arr.dtype}; give real numbers "
+            "(any float or integer dtype)",
+            equation=name,
+        )
+    if np.iscomplexobj(arr):
+        raise ShapeMismatchError(
+            f"equation '{name}': the {what} is complex; give real numbers", equation=name
+        )
+    if what == "regressor matrix" and arr.ndim == 1:
+        arr = arr[:, None]
+    if arr.ndim != ndim:
+        shape = "(T,)" if ndim == 1 else "(T, K)"
+        raise ShapeMismatchError(
+            f"equation '{name}': the {what} has shape {arr.shape}; expected {shape}",
+            equation=name,
+        )
+    return np.asarray(arr, dtype=np.float64)  # no copy when already float64, any strides
+
+
+class EquationSystem:
+    """A system of linear regression equations observed on one common sample.
+
+    Parameters
+    ----------
+    equations
+        ``{name: (y, X)}`` or a list of ``(y, X)`` pairs (then named ``eq0``, ``eq1``, ...).
+        ``y`` has shape (T,), ``X`` shape (T, K_i); any float or integer dtype, C or Fortran
+        order, strided views. pandas objects are accepted: the column names of a DataFrame ``X``
+        name its regressors and the index of ``y`` labels the rows of residuals and fitted values.
+    regressor_names
+        Optional names of the columns of each ``X``: a dict ``{equation: [names]}`` or a list of
+        lists in equation order. Defaults to the DataFrame columns, else ``x0, x1, ...``.
+
+    Example
+    -------
+    >>> import numpy as np, blocksur
+    >>> rng = np.random.default_rng(0)
+    >>> X1 = np.column_stack([np.ones(50), rng.normal(size=50)])
+    >>> X2 = np.column_stack([np.ones(50), rng.normal(size=50), rng.normal(size=50)])
+    >>> e = rng.multivariate_normal([0, 0], [[1, 0.6], [0.6, 1]], size=50)
+    >>> system = blocksur.EquationSystem({"north": (X1 @ [1, 2] + e[:, 0], X1),
+    ...                                   "south": (X2 @ [0, 1, -1] + e[:, 1], X2)})
+    >>> fit = system.fit("ifgls")
+    >>> fit.converged
+    True
+    """
+
+    def __init__(
+        self,
+        equations: Mapping[str, tuple[Any, Any]] | Sequence[tuple[Any, Any]],
+        regressor_names: Mapping[str, Sequence[str]] | Sequence[Sequence[str]] | None = None,
+    ) -> None:
+        if isinstance(equations, Mapping):
+            items = [(str(k), v) for k, v in equations.items()]
+        elif isinstance(equations, Sequence) and not isinstance(equations, (str, bytes)):
+            items = [(f"eq{i}", v) for i, v in enumerate(equations)]
+        else:
+            raise ShapeMismatchError(
+                "equations must be a dict {name: (y, X)} or a list of (y, X) pairs, "
+                f"not {type(equations).__name__}"
+            )
+        names = [n for n, _ in items]
+        if isinstance(regressor_names, Mapping):
+            unknown = set(map(str, regressor_names)) - set(names)
+            if unknown:
+                raise ShapeMismatchError(
+                    f"regressor_names mentions unknown equations {sorted(unknown)}; "
+                    f"the equations are {names}"
+                )
+            given = {str(k): list(map(str, v)) for k, v in regressor_names.items()}
+        elif regressor_names is None:
+            given = {}
+        else:
+            lists = list(regressor_names)
+            if len(lists) != len(items):
+                raise ShapeMismatchError(
+                    f"regressor_names has {len(lists)} entries for {len(items)} equations"
+                )
+            given = {n: list(map(str, r)) for n, r in zip(names, lists)}
+
+        self._ys: list[np.ndarray] = []
+        self._xs: list[np.ndarray] = []
+        self._regressors: list[list[str]] = []
+        self._index: pd.Index | None = None
+        for name, pair in items:
+            if not (isinstance(pair, Sequence) and len(pair) == 2):
+                raise ShapeMismatchError(
+                    f"equation '{name}': expected a (y, X) pair", equation=name
+                )
+            y, X = pair
+            if self._index is None and isinstance(y, (pd.Series, pd.DataFrame)):
+                self._index = y.index
+            yv = _as_float(name, "dependent variable", y, 1)
+            Xv = _as_float(name, "regressor matrix", X, 2)
+            if name in given:
+                regs = given[name]
+            elif isinstance(X, pd.DataFrame):
+                regs = [str(c) for c in X.columns]
+            else:
+                regs = [f"x{j}" for j in range(Xv.shape[1])]
+            if len(regs) != Xv.shape[1]:
+                raise ShapeMismatchError(
+                    f"equation '{name}': {len(regs)} regressor names for {Xv.shape[1]} columns",
+                    equation=name,
+                )
+            self._ys.append(yv)
+            self._xs.append(Xv)
+            self._regressors.append(regs)
+        self._names = names
+        self._prepared: Any = None
+
+    # -- description -------------------------------------------------------------------------
+    @property
+    def equation_names(self) -> list[str]:
+        """The equations' names, in order."""
+        return list(self._names)
+
+    @property
+    def regressor_names(self) -> dict[str, list[str]]:
+        """The regressors of each equation."""
+        return {n: list(r) for n, r in zip(self._names, self._regressors)}
+
+    @property
+    def n_eq(self) -> int:
+        """Number of equations N."""
+        return len(self._names)
+
+    @property
+    def n_obs(self) -> int:
+        """Number of observations T (rows of the common sample)."""
+        return int(self._ys[0].shape[0]) if self._ys else 0
+
+    def __repr__(self) -> str:
+        ks = ", ".join(f"{n}:{len(r)}" for n, r in zip(self._names, self._regressors))
+        return f"<EquationSystem N={self.n_eq} T={self.n_obs} regressors {{{ks}}}>"
+
+    # -- estimation ----------------------------------------------------------------------------
+    def _prepare(self) -> Any:
+        if self._prepared is None:
+            self._prepared = _core.prepare(self._ys, self._xs, self._names, self._regressors)
+        return self._prepared
+
+    def fit(
+        self,
+        method: str = "fgls",
+        *,
+        omega: str = "ml",
+        tol: float = 1e-10,
+        max_iter: int = 1000,
+    ) -> SystemFit:
+        """Estimate the system.
+
+        Parameters
+        ----------
+        method
+            ``"ols"`` (equation by equation), ``"fgls"`` (two-step feasible GLS: Omega from the
+            OLS residuals, then one GLS step) or ``"ifgls"`` (iterated FGLS: alternate Omega and
+            GLS until the coefficients settle; with ``omega="ml"`` its fixed point is the
+            Gaussian maximum-likelihood estimator).
+        omega
+            Divisor of the residual cross-products S that estimate Omega: ``"ml"`` divides by T,
+            ``"dof"`` divides S_ij by sqrt((T - K_i)(T - K_j)).
+        tol
+            Iterated FGLS stops when the largest relative change of an equation's fitted values
+            between two GLS steps is at most ``tol``.
+        max_iter
+            Iterated FGLS stops after this many GLS steps; the fit then has ``converged=False``
+            and a :class:`NotConvergedWarning` is issued.
+
+        Example
+        -------
+        >>> fit = system.fit("fgls", omega="dof")  # doctest: +SKIP
+        >>> fit.coef["north"]                      # doctest: +SKIP
+        """
+        if method not in _METHODS:
+            raise InvalidOptionError(
+                f"unknown method {method!r}: use 'ols', 'fgls' (two-step) or 'ifgls' (iterated)"
+            )
+        if omega not in _DIVISORS:
+            raise InvalidOptionError(
+                f"unknown omega divisor {omega!r}: use 'ml' (divide by T) or 'dof' "
+                "(divide by sqrt((T-K_i)(T-K_j)))"
+            )
+        if isinstance(max_iter, bool) or not isinstance(max_iter, (int, np.integer)) or max_iter < 1:
+            raise InvalidOptionError(f"max_iter must be a whole number >= 1, got {max_iter!r}")
+        try:
+            tol = float(tol)
+        except (TypeError, ValueError):
+            raise InvalidOptionError(f"tol must be a number >= 0, got {tol!r}") from None
+        if not (np.isfinite(tol) and tol >= 0):
+            raise InvalidOptionError(f"tol must be a finite number >= 0, got {tol!r}")
+        prepared = self._prepare()
+        est = prepared.estimate(method, omega, tol, int(max_iter))
+        if not est.converged:
+            path = est.criterion_path
+            warnings.warn(
+                f"iterated FGLS stopped after max_iter={max_iter} GLS steps without meeting "
+                f"tol={tol:g} (last relative change {path[-1]:.3g}); the estimates are those of "
+                "the last step: raise max_iter or loosen tol",
+                NotConvergedWarning,
+                stacklevel=2,
+            )
+        resid = _core.residuals(self._ys, self._xs, est.coef)
+        return SystemFit(self, prepared, est, resid, tol=tol, max_iter=int(max_iter))

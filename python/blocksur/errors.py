@@ -1,0 +1,126 @@
+"""Exceptions and warnings raised by blocksur.
+
+Every error says what to fix and carries the details as attributes (``equation``, ``row``,
+``column``, ...), so that code can react to a specific failure. Errors caused by the data or the
+options subclass :class:`ValueError` as well as :class:`BlocksurError`.
+
+Example
+-------
+>>> import numpy as np, blocksur
+>>> y = np.arange(5.0); X = np.ones((5, 2))
+>>> try:
+...     blocksur.EquationSystem({"a": (y, X)}).fit("ols")
+... except blocksur.CollinearityError as err:
+...     print(err.equation, err.column)
+a x1
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "BlocksurError",
+    "InputError",
+    "EmptySystemError",
+    "ShapeMismatchError",
+    "NonFiniteError",
+    "TooFewObservationsError",
+    "CollinearityError",
+    "SingularOmegaError",
+    "InvalidOptionError",
+    "NumericalError",
+    "BlocksurWarning",
+    "NotConvergedWarning",
+]
+
+
+class BlocksurError(Exception):
+    """Base class of every error blocksur raises on purpose."""
+
+    def __init__(self, message: str = "", **details: object) -> None:
+        super().__init__(message)
+        self.message = message
+        for key, value in details.items():
+            setattr(self, key, value)
+
+    def __reduce__(self):  # keep details through pickling (multiprocessing, dask)
+        details = {k: v for k, v in self.__dict__.items() if k != "message"}
+        return (_rebuild, (type(self), self.message, details))
+
+
+def _rebuild(cls, message, details):
+    return cls(message, **details)
+
+
+class InputError(BlocksurError, ValueError):
+    """The data or the specification of the system cannot be estimated as given."""
+
+
+class EmptySystemError(InputError):
+    """The system has no equations."""
+
+
+class ShapeMismatchError(InputError):
+    """Shapes do not fit together (lengths differ, wrong dimensions, duplicate names).
+
+    Attributes: ``equation``.
+    """
+
+    equation: str | None = None
+
+
+class NonFiniteError(InputError):
+    """A NaN or infinity in the data.
+
+    Attributes: ``equation``; ``row`` (0-based position); ``column`` (the regressor name, or
+    ``None`` for the dependent variable).
+    """
+
+    equation: str | None = None
+    row: int | None = None
+    column: str | None = None
+
+
+class TooFewObservationsError(InputError):
+    """An equation has no more observations than regressors.
+
+    Attributes: ``equation``, ``n_obs``, ``n_regressors``.
+    """
+
+    equation: str | None = None
+
+
+class CollinearityError(InputError):
+    """A regressor is zero or a linear combination of the regressors before it.
+
+    Attributes: ``equation``; ``column`` (the regressor to drop or reparameterise).
+    """
+
+    equation: str | None = None
+    column: str | None = None
+
+
+class SingularOmegaError(BlocksurError, ValueError):
+    """The cross-equation covariance of the residuals is singular.
+
+    Typical causes: equations whose dependent variables add up to a constant (budget shares),
+    an equation that repeats another or fits exactly, more equations than observations.
+    Attributes: ``equations`` (the equations involved).
+    """
+
+    equations: list[str] | None = None
+
+
+class InvalidOptionError(BlocksurError, ValueError):
+    """An option outside its domain (unknown method, negative tolerance, ...)."""
+
+
+class NumericalError(BlocksurError, ArithmeticError):
+    """A linear-algebra failure that the input checks did not foresee."""
+
+
+class BlocksurWarning(UserWarning):
+    """Base class of blocksur's warnings."""
+
+
+class NotConvergedWarning(BlocksurWarning):
+    """An iterated fit stopped at ``max_iter`` before meeting ``tol``."""

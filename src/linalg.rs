@@ -1,0 +1,243 @@
+//! Dense kernels: the Gram matrix by BLAS syrk, triangular inverses, and the inverse of the
+//! cross-equation covariance with a diagnosis when it is singular.
+
+use ndarray::{s, Array1, Array2, ArrayView2, ShapeBuilder};
+use ndarray_linalg::{Cholesky, Diag, Eigh, InverseC, SolveTriangular, UPLO};
+
+use crate::error::{Result, SurError};
+
+/// W'W for a column-major (Fortran-order) T x P matrix, by one BLAS syrk (T P^2 flops, half of a
+/// general product), returned full and symmetric.
+pub fn gram(w: ArrayView2<f64>) -> Array2<f64> {
+    let (t, p) = w.dim();
+    let mut g = Array2::<f64>::zeros((p, p).f());
+    if t == 0 || p == 0 {
+        return g;
+    }
+    let owned;
+    let w = if w.t().is_standard_layout() {
+        w
+    } else {
+        owned = w.to_owned().reversed_axes().as_standard_layout().reversed_axes().to_owned();
+        owned.view()
+    };
+    debug_assert!(w.t().is_standard_layout());
+    // SAFETY: `w` is column-major with leading dimension t; `g` is a p x p column-major buffer.
+    unsafe {
+        cblas_sys::cblas_dsyrk(
+            cblas_sys::CBLAS_LAYOUT::CblasColMajor,
+            cblas_sys::CBLAS_UPLO::CblasUpper,
+            cblas_sys::CBLAS_TRANSPOSE::CblasTrans,
+            p as i32,
+            t as i32,
+            1.0,
+            w.as_ptr(),
+            t as i32,
+            0.0,
+            g.as_mut_ptr(),
+            p as i32,
+        );
+    }
+    for j in 0..p {
+        for i in (j + 1)..p {
+            g[[i, j]] = g[[j, i]];
+        }
+    }
+    g
+}
+
+/// Lower Cholesky factor of a symmetric positive definite matrix (only its lower triangle is
+/// read), in place by LAPACK potrf. Returns None when the matrix is not positive definite.
+pub fn chol_lower(mut a: Array2<f64>) -> Option<Array2<f64>> {
+    let n = a.nrows() as i32;
+    if n == 0 {
+        return Some(a);
+    }
+    if !a.t().is_standard_layout() {
+        a = a.reversed_axes().as_standard_layout().reversed_axes().to_owned();
+    }
+    let mut info = 0;
+    // SAFETY: `a` is an n x n column-major buffer.
+    unsafe { lapack_sys::dpotrf_(&(b'L' as std::ffi::c_char), &n, a.as_mut_ptr(), &n, &mut info) };
+    if info != 0 {
+        return None;
+    }
+    for j in 0..a.ncols() {
+        for i in 0..j {
+            a[[i, j]] = 0.0;
+        }
+    }
+    Some(a)
+}
+
+/// Solves (L L') x = b for the lower factor from `chol_lower` (LAPACK potrs).
+pub fn chol_solve(l: &Array2<f64>, b: &Array1<f64>) -> Result<Array1<f64>> {
+    debug_assert!(l.t().is_standard_layout());
+    let n = l.nrows() as i32;
+    let mut x = b.to_owned();
+    if n == 0 {
+        return Ok(x);
+    }
+    let mut info = 0;
+    // SAFETY: `l` is n x n column-major; `x` holds n contiguous values.
+    unsafe {
+        lapack_sys::dpotrs_(&(b'L' as std::ffi::c_char), &n, &1, l.as_ptr(), &n, x.as_mut_ptr(), &n, &mut info)
+    };
+    if info != 0 {
+        return Err(SurError::numerical("Cholesky solve", format!("LAPACK info {info}")));
+    }
+    Ok(x)
+}
+
+/// (L L')^-1 from the lower factor from `chol_lower` (LAPACK potri), full and symmetric.
+pub fn chol_inverse(l: &Array2<f64>) -> Result<Array2<f64>> {
+    debug_assert!(l.t().is_standard_layout());
+    let mut a = l.to_owned();
+    let n = a.nrows() as i32;
+    if n == 0 {
+        return Ok(a);
+    }
+    let mut info = 0;
+    // SAFETY: `a` is an n x n column-major buffer.
+    unsafe { lapack_sys::dpotri_(&(b'L' as std::ffi::c_char), &n, a.as_mut_ptr(), &n, &mut info) };
+    if info != 0 {
+        return Err(SurError::numerical("inverse from the Cholesky factor", format!("LAPACK info {info}")));
+    }
+    for j in 0..a.ncols() {
+        for i in 0..j {
+            a[[i, j]] = a[[j, i]];
+        }
+    }
+    Ok(a)
+}
+
+/// The inverse of an upper-triangular matrix.
+pub fn upper_inverse(r: &Array2<f64>) -> Result<Array2<f64>> {
+    let eye = Array2::<f64>::eye(r.nrows());
+    r.solve_triangular(UPLO::Upper, Diag::NonUnit, &eye)
+        .map_err(|e| SurError::numerical("triangular inverse", e))
+}
+
+/// Solves R x = b for upper-triangular R.
+pub fn upper_solve(r: &Array2<f64>, b: &Array1<f64>) -> Result<Array1<f64>> {
+    r.solve_triangular(UPLO::Upper, Diag::NonUnit, b)
+        .map_err(|e| SurError::numerical("triangular solve", e))
+}
+
+/// Relative eigenvalue floor below which Omega counts as singular.
+fn singular_floor(n: usize) -> f64 {
+    (64.0 * n as f64 * f64::EPSILON).max(1e-13)
+}
+
+/// The inverse of the cross-equation covariance Omega. A singular Omega (an equation that fits
+/// exactly, equations whose residuals are linearly dependent, more equations than observations)
+/// gets an error that names the equations involved and the remedy.
+pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize) -> Result<Array2<f64>> {
+    let n = omega.nrows();
+    let diag: Vec<f64> = (0..n).map(|i| omega[[i, i]]).collect();
+    let scale = diag.iter().cloned().fold(0.0, f64::max);
+    for (i, &d) in diag.iter().enumerate() {
+        if !(d > scale * 1e-28) || !d.is_finite() {
+            return Err(SurError::SingularOmega {
+                equations: vec![names[i].clone()],
+                detail: format!(
+                    "equation '{}' has (numerically) zero residual variance: it fits its data exactly, \
+                     so the cross-equation covariance is singular; an identity needs no estimation, \
+                     so drop the equation",
+                    names[i]
+                ),
+            });
+        }
+    }
+    // Work on the correlation matrix so the test below does not depend on the units.
+    let d: Vec<f64> = diag.iter().map(|v| 1.0 / v.sqrt()).collect();
+    let corr = Array2::from_shape_fn((n, n), |(i, j)| omega[[i, j]] * d[i] * d[j]);
+    let floor = singular_floor(n);
+    let ok = match corr.cholesky(UPLO::Lower) {
+        Ok(l) => {
+            let lmin = (0..n).map(|i| l[[i, i]]).fold(f64::INFINITY, f64::min);
+            lmin * lmin > floor
+        }
+        Err(_) => false,
+    };
+    if !ok {
+        diagnose_singular(&corr, names, n_obs, floor)?;
+    }
+    let inv = corr.invc().map_err(|e| SurError::numerical("inverse of Omega", e))?;
+    let mut out = Array2::from_shape_fn((n, n), |(i, j)| inv[[i, j]] * d[i] * d[j]);
+    symmetrize(&mut out);
+    Ok(out)
+}
+
+/// Looks at the smallest eigenvalue of the residual correlation matrix and, when it is below the
+/// floor, returns the error naming the equations in its eigenvector.
+fn diagnose_singular(corr: &Array2<f64>, names: &[String], n_obs: usize, floor: f64) -> Result<()> {
+    let n = corr.nrows();
+    let (vals, vecs) = corr.eigh(UPLO::Lower).map_err(|e| SurError::numerical("eigenvalues of Omega", e))?;
+    let lmax = vals[n - 1];
+    let lmin = vals[0];
+    if lmin > floor * lmax {
+        return Ok(());
+    }
+    if n > n_obs {
+        return Err(SurError::SingularOmega {
+            equations: names.to_vec(),
+            detail: format!(
+                "the cross-equation covariance is singular: {n} equations but only {n_obs} observations, \
+                 so the residual covariance has rank at most {n_obs}; use fewer equations or more observations"
+            ),
+        });
+    }
+    let v = vecs.column(0);
+    let vmax = v.iter().fold(0.0f64, |a, b| a.max(b.abs()));
+    let involved: Vec<String> =
+        (0..n).filter(|&i| v[i].abs() >= 0.05 * vmax).map(|i| names[i].clone()).collect();
+    let quoted: Vec<String> = involved.iter().map(|s| format!("'{s}'")).collect();
+    Err(SurError::SingularOmega {
+        equations: involved.clone(),
+        detail: format!(
+            "the cross-equation covariance is singular (smallest/largest eigenvalue of the residual \
+             correlation {:.1e}): the residuals of equations {} are linearly dependent. This happens \
+             when the dependent variables add up to a constant or an identity, as budget or cost \
+             shares that sum to one do, or when an equation repeats another. Drop one of these \
+             equations (its coefficients follow from the others)",
+            (lmin / lmax).max(0.0),
+            quoted.join(", ")
+        ),
+    })
+}
+
+/// Makes a matrix exactly symmetric by averaging it with its transpose.
+pub fn symmetrize(a: &mut Array2<f64>) {
+    let n = a.nrows();
+    for i in 0..n {
+        for j in (i + 1)..n {
+            let m = 0.5 * (a[[i, j]] + a[[j, i]]);
+            a[[i, j]] = m;
+            a[[j, i]] = m;
+        }
+    }
+}
+
+/// ln det of a symmetric positive definite matrix by Cholesky; None when it is not PD.
+pub fn ln_det_spd(a: &Array2<f64>) -> Option<f64> {
+    let l = a.cholesky(UPLO::Lower).ok()?;
+    Some((0..a.nrows()).map(|i| 2.0 * l[[i, i]].ln()).sum())
+}
+
+/// A compact human-readable number for messages.
+pub fn fmt_num(x: f64) -> String {
+    let a = x.abs();
+    if a != 0.0 && !(1e-3..1e5).contains(&a) {
+        format!("{x:.3e}")
+    } else {
+        let s = format!("{x:.4}");
+        let s = s.trim_end_matches('0').trim_end_matches('.');
+        s.to_string()
+    }
+}
+
+/// The columns of a block, as a sub-view of a bigger matrix.
+pub fn block(g: &Array2<f64>, r0: usize, r1: usize, c0: usize, c1: usize) -> ArrayView2<'_, f64> {
+    g.slice(s![r0..r1, c0..c1])
+}

@@ -1,0 +1,211 @@
+//! Thin pyo3 bindings: convert arrays, release the interpreter lock around the core, and map
+//! each core error to its own Python exception class (defined in python/blocksur/errors.py).
+
+use numpy::{IntoPyArray, PyArray1, PyArray2, PyReadonlyArray1, PyReadonlyArray2};
+use pyo3::exceptions::PyValueError;
+use pyo3::prelude::*;
+use pyo3::types::PyDict;
+
+use crate::error::SurError;
+use crate::estimate::{Divisor, Estimate, FitOptions, Method};
+use crate::prepare::Prepared;
+use crate::system::{Equation, SystemData};
+
+/// Raises the blocksur exception class for a core error, with its details as attributes.
+fn raise(py: Python<'_>, err: SurError) -> PyErr {
+    let build = || -> PyResult<PyErr> {
+        let module = py.import("blocksur.errors")?;
+        let cls = module.getattr(err.kind())?;
+        let kw = PyDict::new(py);
+        match &err {
+            SurError::ShapeMismatch { equation, .. } => kw.set_item("equation", equation)?,
+            SurError::NonFinite { equation, row, column, .. } => {
+                kw.set_item("equation", equation)?;
+                kw.set_item("row", row)?;
+                kw.set_item("column", column)?;
+            }
+            SurError::TooFewObservations { equation, n_obs, n_regressors } => {
+                kw.set_item("equation", equation)?;
+                kw.set_item("n_obs", n_obs)?;
+                kw.set_item("n_regressors", n_regressors)?;
+            }
+            SurError::Collinear { equation, column, .. } => {
+                kw.set_item("equation", equation)?;
+                kw.set_item("column", column)?;
+            }
+            SurError::SingularOmega { equations, .. } => kw.set_item("equations", equations)?,
+            _ => {}
+        }
+        let obj = cls.call((err.to_string(),), Some(&kw))?;
+        Ok(PyErr::from_value(obj))
+    };
+    build().unwrap_or_else(|e| e)
+}
+
+fn equations<'a>(
+    ys: &'a [PyReadonlyArray1<'_, f64>],
+    xs: &'a [PyReadonlyArray2<'_, f64>],
+    names: &[String],
+    regressors: &[Vec<String>],
+) -> PyResult<SystemData<'a>> {
+    if ys.len() != xs.len() || ys.len() != names.len() || ys.len() != regressors.len() {
+        return Err(PyValueError::new_err("ys, xs, names and regressors must have the same length"));
+    }
+    let eqs = ys
+        .iter()
+        .zip(xs)
+        .zip(names.iter().zip(regressors))
+        .map(|((y, x), (name, regs))| {
+            Equation::new(name.clone(), y.as_array(), x.as_array()).with_regressors(regs.clone())
+        })
+        .collect();
+    Ok(SystemData::new(eqs))
+}
+
+/// The system after the data pass (orthonormal factors and cross-products); refits are cheap.
+#[pyclass(name = "Prepared", module = "blocksur._core", frozen)]
+struct PyPrepared {
+    inner: Prepared,
+}
+
+/// One estimation's raw results.
+#[pyclass(name = "Estimate", module = "blocksur._core", frozen)]
+struct PyEstimate {
+    inner: Estimate,
+}
+
+/// Validates the system and runs the data pass, with the interpreter lock released.
+#[pyfunction]
+fn prepare(
+    py: Python<'_>,
+    ys: Vec<PyReadonlyArray1<'_, f64>>,
+    xs: Vec<PyReadonlyArray2<'_, f64>>,
+    names: Vec<String>,
+    regressors: Vec<Vec<String>>,
+) -> PyResult<PyPrepared> {
+    let data = equations(&ys, &xs, &names, &regressors)?;
+    let out = py.detach(|| Prepared::new(&data));
+    out.map(|inner| PyPrepared { inner }).map_err(|e| raise(py, e))
+}
+
+/// Residuals y_i - X_i b_i (T x N) from the data.
+#[pyfunction]
+fn residuals<'py>(
+    py: Python<'py>,
+    ys: Vec<PyReadonlyArray1<'py, f64>>,
+    xs: Vec<PyReadonlyArray2<'py, f64>>,
+    coef: PyReadonlyArray1<'py, f64>,
+) -> PyResult<Bound<'py, PyArray2<f64>>> {
+    let n = ys.len();
+    let names: Vec<String> = (0..n).map(|i| format!("eq{i}")).collect();
+    let regs: Vec<Vec<String>> = xs.iter().map(|x| (0..x.as_array().ncols()).map(|j| format!("x{j}")).collect()).collect();
+    let data = equations(&ys, &xs, &names, &regs)?;
+    let k: usize = xs.iter().map(|x| x.as_array().ncols()).sum();
+    let c = coef.as_array();
+    if c.len() != k || n == 0 {
+        return Err(PyValueError::new_err(format!("expected {k} coefficients, got {}", c.len())));
+    }
+    let c = c.to_vec();
+    Ok(py.detach(|| data.residuals(&c)).into_pyarray(py))
+}
+
+#[pymethods]
+impl PyPrepared {
+    /// Runs one estimation ("ols", "fgls", "ifgls"; divisor "ml" or "dof").
+    fn estimate(&self, py: Python<'_>, method: &str, divisor: &str, tol: f64, max_iter: usize) -> PyResult<PyEstimate> {
+        let opts = FitOptions {
+            method: Method::parse(method).map_err(|e| raise(py, e))?,
+            divisor: Divisor::parse(divisor).map_err(|e| raise(py, e))?,
+            tol,
+            max_iter,
+        };
+        let out = py.detach(|| self.inner.estimate(&opts));
+        out.map(|inner| PyEstimate { inner }).map_err(|e| raise(py, e))
+    }
+
+    /// Classical covariance of the stacked coefficients (K x K).
+    fn coef_covariance<'py>(&self, py: Python<'py>, est: &PyEstimate) -> PyResult<Bound<'py, PyArray2<f64>>> {
+        let out = py.detach(|| self.inner.coef_covariance(&est.inner));
+        out.map(|a| a.into_pyarray(py)).map_err(|e| raise(py, e))
+    }
+
+    /// Gaussian log-likelihood at Omega = S/T of the estimate's residuals (None if singular).
+    fn log_likelihood(&self, est: &PyEstimate) -> Option<f64> {
+        self.inner.log_likelihood(&est.inner.resid_crossprod)
+    }
+
+    #[getter]
+    fn n_obs(&self) -> usize {
+        self.inner.n_obs
+    }
+    #[getter]
+    fn offsets(&self) -> Vec<usize> {
+        self.inner.offsets.clone()
+    }
+    #[getter]
+    fn shared_regressors(&self) -> bool {
+        matches!(self.inner.cross, crate::prepare::CrossProducts::SharedRegressors { .. })
+    }
+    #[getter]
+    fn spans_constant(&self) -> Vec<bool> {
+        self.inner.factors.iter().map(|f| f.spans_constant).collect()
+    }
+    #[getter]
+    fn tss_centred(&self) -> Vec<f64> {
+        self.inner.factors.iter().map(|f| f.tss_centred).collect()
+    }
+    #[getter]
+    fn tss_raw(&self) -> Vec<f64> {
+        self.inner.factors.iter().map(|f| f.tss_raw).collect()
+    }
+    #[getter]
+    fn cond_bounds(&self) -> Vec<f64> {
+        self.inner.factors.iter().map(|f| f.cond_bound).collect()
+    }
+}
+
+#[pymethods]
+impl PyEstimate {
+    #[getter]
+    fn coef<'py>(&self, py: Python<'py>) -> Bound<'py, PyArray1<f64>> {
+        self.inner.coef.clone().into_pyarray(py)
+    }
+    #[getter]
+    fn omega<'py>(&self, py: Python<'py>) -> Bound<'py, PyArray2<f64>> {
+        self.inner.omega.clone().into_pyarray(py)
+    }
+    #[getter]
+    fn resid_crossprod<'py>(&self, py: Python<'py>) -> Bound<'py, PyArray2<f64>> {
+        self.inner.resid_crossprod.clone().into_pyarray(py)
+    }
+    #[getter]
+    fn n_iter(&self) -> usize {
+        self.inner.n_iter
+    }
+    #[getter]
+    fn converged(&self) -> bool {
+        self.inner.converged
+    }
+    #[getter]
+    fn criterion_path(&self) -> Vec<f64> {
+        self.inner.criterion_path.clone()
+    }
+    #[getter]
+    fn method(&self) -> &'static str {
+        self.inner.method.as_str()
+    }
+    #[getter]
+    fn divisor(&self) -> &'static str {
+        self.inner.divisor.as_str()
+    }
+}
+
+#[pymodule]
+fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
+    m.add_function(wrap_pyfunction!(prepare, m)?)?;
+    m.add_function(wrap_pyfunction!(residuals, m)?)?;
+    m.add_class::<PyPrepared>()?;
+    m.add_class::<PyEstimate>()?;
+    m.add("__version__", env!("CARGO_PKG_VERSION"))?;
+    Ok(())
+}
