@@ -37,3 +37,6 @@ pub use system::{Equation, SystemData};
 // Link the BLAS/LAPACK implementation (system OpenBLAS).
 extern crate blas_src;
 extern crate openblas_src;
+
+#[cfg(test)]
+mod tests;

@@ -1,0 +1,320 @@
+//! Unit tests of the core against the dense textbook formulas (built here with plain ndarray
+//! and LAPACK, never through the blockwise code) and against theorems of the field.
+
+use approx::assert_relative_eq;
+use ndarray::{s, Array1, Array2};
+use ndarray_linalg::Inverse;
+
+use crate::{Divisor, Equation, FitOptions, Method, Prepared, SurError, SystemData};
+
+/// A small deterministic pseudo-random generator (xorshift), so the tests need no extra crate.
+struct Rng(u64);
+impl Rng {
+    fn uniform(&mut self) -> f64 {
+        self.0 ^= self.0 << 13;
+        self.0 ^= self.0 >> 7;
+        self.0 ^= self.0 << 17;
+        (self.0 >> 11) as f64 / (1u64 << 53) as f64
+    }
+    fn normal(&mut self) -> f64 {
+        let (u, v) = (self.uniform().max(1e-300), self.uniform());
+        (-2.0 * u.ln()).sqrt() * (2.0 * std::f64::consts::PI * v).cos()
+    }
+}
+
+/// N equations with K_i regressors (constant first) and errors correlated 0.6 across equations.
+fn system(ks: &[usize], t: usize, seed: u64) -> (Vec<Array1<f64>>, Vec<Array2<f64>>) {
+    let mut rng = Rng(seed);
+    let n = ks.len();
+    let common: Vec<f64> = (0..t).map(|_| rng.normal()).collect();
+    let mut ys = Vec::new();
+    let mut xs = Vec::new();
+    for i in 0..n {
+        let x = Array2::from_shape_fn((t, ks[i]), |(_, j)| if j == 0 { 1.0 } else { 0.0 });
+        let mut x = x;
+        for r in 0..t {
+            for j in 1..ks[i] {
+                x[[r, j]] = rng.normal() * (1.0 + j as f64);
+            }
+        }
+        let beta: Array1<f64> = (0..ks[i]).map(|j| 1.0 + 0.5 * j as f64 - 0.3 * i as f64).collect();
+        let e: Array1<f64> = (0..t).map(|r| (1.0 + 0.3 * i as f64) * (0.77 * common[r] + 0.64 * rng.normal())).collect();
+        ys.push(x.dot(&beta) + e);
+        xs.push(x);
+    }
+    (ys, xs)
+}
+
+fn data<'a>(ys: &'a [Array1<f64>], xs: &'a [Array2<f64>]) -> SystemData<'a> {
+    SystemData::new(ys.iter().zip(xs).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.view())).collect())
+}
+
+/// Dense GLS: b = (X' (Omega^-1 (x) I) X)^-1 X' (Omega^-1 (x) I) y with block-diagonal X.
+fn dense_gls(ys: &[Array1<f64>], xs: &[Array2<f64>], omega: &Array2<f64>) -> (Array1<f64>, Array2<f64>) {
+    let n = ys.len();
+    let t = ys[0].len();
+    let k: usize = xs.iter().map(|x| x.ncols()).sum();
+    let mut xb = Array2::<f64>::zeros((n * t, k));
+    let mut yb = Array1::<f64>::zeros(n * t);
+    let mut off = 0;
+    for i in 0..n {
+        xb.slice_mut(s![i * t..(i + 1) * t, off..off + xs[i].ncols()]).assign(&xs[i]);
+        yb.slice_mut(s![i * t..(i + 1) * t]).assign(&ys[i]);
+        off += xs[i].ncols();
+    }
+    let oinv = omega.inv().unwrap();
+    let mut sinv = Array2::<f64>::zeros((n * t, n * t));
+    for i in 0..n {
+        for j in 0..n {
+            for r in 0..t {
+                sinv[[i * t + r, j * t + r]] = oinv[[i, j]];
+            }
+        }
+    }
+    let a = xb.t().dot(&sinv).dot(&xb);
+    let cov = a.inv().unwrap();
+    let b = cov.dot(&xb.t().dot(&sinv).dot(&yb));
+    (b, cov)
+}
+
+fn ols(y: &Array1<f64>, x: &Array2<f64>) -> Array1<f64> {
+    let xtx = x.t().dot(x);
+    xtx.inv().unwrap().dot(&x.t().dot(y))
+}
+
+fn opts(method: Method, divisor: Divisor) -> FitOptions {
+    FitOptions { method, divisor, tol: 1e-12, max_iter: 500 }
+}
+
+#[test]
+fn ols_matches_normal_equations() {
+    let (ys, xs) = system(&[3, 2, 4], 40, 7);
+    let prep = Prepared::new(&data(&ys, &xs)).unwrap();
+    let est = prep.estimate(&opts(Method::Ols, Divisor::Ml)).unwrap();
+    let mut off = 0;
+    for i in 0..3 {
+        let b = ols(&ys[i], &xs[i]);
+        let k = b.len();
+        for j in 0..k {
+            assert_relative_eq!(est.coef[off + j], b[j], max_relative = 1e-10);
+        }
+        off += k;
+    }
+    assert_eq!(est.n_iter, 0);
+}
+
+#[test]
+fn fgls_matches_dense_textbook_formula_both_divisors() {
+    let (ys, xs) = system(&[3, 2, 4], 30, 11);
+    let prep = Prepared::new(&data(&ys, &xs)).unwrap();
+    for div in [Divisor::Ml, Divisor::Dof] {
+        let est = prep.estimate(&opts(Method::Fgls, div)).unwrap();
+        let (b, cov) = dense_gls(&ys, &xs, &est.omega);
+        let v = prep.coef_covariance(&est).unwrap();
+        for j in 0..b.len() {
+            assert_relative_eq!(est.coef[j], b[j], max_relative = 1e-10);
+            for l in 0..b.len() {
+                assert_relative_eq!(v[[j, l]], cov[[j, l]], max_relative = 1e-9, epsilon = 1e-14);
+            }
+        }
+    }
+}
+
+#[test]
+fn omega_from_ols_residuals_uses_the_divisor() {
+    let (ys, xs) = system(&[3, 2], 25, 3);
+    let prep = Prepared::new(&data(&ys, &xs)).unwrap();
+    let e0 = &ys[0] - &xs[0].dot(&ols(&ys[0], &xs[0]));
+    let e1 = &ys[1] - &xs[1].dot(&ols(&ys[1], &xs[1]));
+    let ml = prep.estimate(&opts(Method::Fgls, Divisor::Ml)).unwrap();
+    let dof = prep.estimate(&opts(Method::Fgls, Divisor::Dof)).unwrap();
+    assert_relative_eq!(ml.omega[[0, 1]], e0.dot(&e1) / 25.0, max_relative = 1e-12);
+    assert_relative_eq!(dof.omega[[0, 1]], e0.dot(&e1) / (22.0f64 * 23.0).sqrt(), max_relative = 1e-12);
+    assert_relative_eq!(dof.omega[[1, 1]], e1.dot(&e1) / 23.0, max_relative = 1e-12);
+}
+
+#[test]
+fn iterated_fit_reaches_the_ml_fixed_point() {
+    // Oberhofer & Kmenta (1974): at the fixed point Omega = S/T of its own residuals.
+    let (ys, xs) = system(&[2, 3, 3, 2], 50, 5);
+    let d = data(&ys, &xs);
+    let prep = Prepared::new(&d).unwrap();
+    let est = prep.estimate(&opts(Method::IteratedFgls, Divisor::Ml)).unwrap();
+    assert!(est.converged);
+    assert_eq!(est.criterion_path.len(), est.n_iter);
+    let e = d.residuals(est.coef.as_slice().unwrap());
+    let s = e.t().dot(&e) / 50.0;
+    for i in 0..4 {
+        for j in 0..4 {
+            assert_relative_eq!(est.omega[[i, j]], s[[i, j]], max_relative = 1e-9, epsilon = 1e-12);
+            assert_relative_eq!(est.resid_crossprod[[i, j]] / 50.0, s[[i, j]], max_relative = 1e-10, epsilon = 1e-13);
+        }
+    }
+    // and it is the GLS estimate for its own Omega
+    let (b, _) = dense_gls(&ys, &xs, &est.omega);
+    for j in 0..b.len() {
+        assert_relative_eq!(est.coef[j], b[j], max_relative = 1e-9);
+    }
+}
+
+#[test]
+fn identical_regressors_give_ols() {
+    // Zellner (1962), Kruskal's theorem: with the same X in every equation GLS equals OLS.
+    let (ys, xs) = system(&[3, 3, 3], 30, 9);
+    let x = xs[0].clone();
+    let xs2 = vec![x.clone(), x.clone(), x.clone()];
+    let prep = Prepared::new(&data(&ys, &xs2)).unwrap();
+    assert!(matches!(prep.cross, crate::CrossProducts::SharedRegressors { .. }));
+    let o = prep.estimate(&opts(Method::Ols, Divisor::Ml)).unwrap();
+    let g = prep.estimate(&opts(Method::IteratedFgls, Divisor::Ml)).unwrap();
+    assert_eq!(g.n_iter, 1);
+    for j in 0..9 {
+        assert_relative_eq!(o.coef[j], g.coef[j], max_relative = 1e-14);
+    }
+    // and both equal the dense GLS, covariance included
+    let (b, cov) = dense_gls(&ys, &xs2, &g.omega);
+    let v = prep.coef_covariance(&g).unwrap();
+    for j in 0..9 {
+        assert_relative_eq!(g.coef[j], b[j], max_relative = 1e-10);
+        for l in 0..9 {
+            assert_relative_eq!(v[[j, l]], cov[[j, l]], max_relative = 1e-9, epsilon = 1e-14);
+        }
+    }
+}
+
+#[test]
+fn shared_and_general_paths_agree() {
+    // Copy X so the fast path sees different buffers with equal values; then perturb nothing.
+    let (ys, xs) = system(&[3, 3], 30, 13);
+    let xs2 = vec![xs[0].clone(), xs[0].clone()];
+    let prep = Prepared::new(&data(&ys, &xs2)).unwrap();
+    assert!(matches!(prep.cross, crate::CrossProducts::SharedRegressors { .. }));
+    // the general path on the same numbers: add a zero-effect column to break the identity
+    let mut x_aug = xs[0].clone();
+    x_aug.column_mut(2).mapv_inplace(|v| v * (1.0 + 1e-9));
+    let xs3 = vec![xs[0].clone(), x_aug];
+    let prep3 = Prepared::new(&data(&ys, &xs3)).unwrap();
+    assert!(matches!(prep3.cross, crate::CrossProducts::General { .. }));
+    let a = prep.estimate(&opts(Method::Fgls, Divisor::Ml)).unwrap();
+    let b = prep3.estimate(&opts(Method::Fgls, Divisor::Ml)).unwrap();
+    for j in 0..6 {
+        assert_relative_eq!(a.coef[j], b.coef[j], max_relative = 1e-6);
+    }
+}
+
+#[test]
+fn large_means_do_not_cost_digits() {
+    // y with a mean 1e7 times its residual scale: the residual cross-products stay exact.
+    let (mut ys, xs) = system(&[2, 3], 40, 21);
+    for y in ys.iter_mut() {
+        *y += 1e7;
+    }
+    let d = data(&ys, &xs);
+    let prep = Prepared::new(&d).unwrap();
+    let est = prep.estimate(&opts(Method::Ols, Divisor::Ml)).unwrap();
+    let e = d.residuals(est.coef.as_slice().unwrap());
+    let s = e.t().dot(&e);
+    for i in 0..2 {
+        for j in 0..2 {
+            assert_relative_eq!(est.resid_crossprod[[i, j]], s[[i, j]], max_relative = 1e-7);
+        }
+    }
+}
+
+#[test]
+fn errors_name_equation_row_and_column() {
+    let (mut ys, mut xs) = system(&[3, 3], 20, 1);
+    ys[1][7] = f64::NAN;
+    match Prepared::new(&data(&ys, &xs)) {
+        Err(SurError::NonFinite { equation, row, column, .. }) => {
+            assert_eq!((equation.as_str(), row, column), ("e1", 7, None));
+        }
+        other => panic!("expected NonFinite, got {other:?}"),
+    }
+    ys[1][7] = 1.0;
+    xs[0][[4, 2]] = f64::INFINITY;
+    match Prepared::new(&data(&ys, &xs)) {
+        Err(SurError::NonFinite { equation, row, column, value }) => {
+            assert_eq!((equation.as_str(), row, column.as_deref(), value.as_str()), ("e0", 4, Some("x2"), "inf"));
+        }
+        other => panic!("expected NonFinite, got {other:?}"),
+    }
+    xs[0][[4, 2]] = 0.0;
+    let c = &xs[1].column(1) + &xs[1].column(2);
+    xs[1].column_mut(2).assign(&(&c * 2.0));
+    let mut x3 = Array2::<f64>::zeros((20, 4));
+    x3.slice_mut(s![.., ..3]).assign(&xs[1]);
+    x3.column_mut(3).assign(&(&xs[1].column(1) * 2.0 + 3.0));
+    let xs2 = vec![xs[0].clone(), x3];
+    match Prepared::new(&data(&ys, &xs2)) {
+        Err(SurError::Collinear { equation, column, detail }) => {
+            assert_eq!((equation.as_str(), column.as_str()), ("e1", "x3"));
+            assert!(detail.contains("'x0'") && detail.contains("'x1'"), "{detail}");
+        }
+        other => panic!("expected Collinear, got {other:?}"),
+    }
+    let short_y: Vec<Array1<f64>> = ys.iter().map(|y| y.slice(s![..3]).to_owned()).collect();
+    let short_x: Vec<Array2<f64>> = xs.iter().map(|x| x.slice(s![..3, ..]).to_owned()).collect();
+    assert!(matches!(Prepared::new(&data(&short_y, &short_x)), Err(SurError::TooFewObservations { .. })));
+    assert!(matches!(Prepared::new(&SystemData::new(vec![])), Err(SurError::EmptySystem)));
+}
+
+#[test]
+fn budget_shares_give_a_singular_omega_naming_the_equations() {
+    let t = 30;
+    let mut rng = Rng(99);
+    let x = Array2::from_shape_fn((t, 2), |(r, j)| if j == 0 { 1.0 } else { r as f64 / 10.0 });
+    let a: Array1<f64> = (0..t).map(|r| 0.3 + 0.01 * r as f64 + 0.02 * rng.normal()).collect();
+    let b: Array1<f64> = (0..t).map(|_| 0.3 + 0.02 * rng.normal()).collect();
+    let c = a.mapv(|v| 1.0 - v) - &b;
+    let x2 = x.clone();
+    let mut x3 = Array2::<f64>::zeros((t, 3));
+    x3.slice_mut(s![.., ..2]).assign(&x);
+    x3.column_mut(2).assign(&(0..t).map(|_| rng.normal()).collect::<Array1<f64>>());
+    let d = SystemData::new(vec![
+        Equation::new("food", a.view(), x.view()),
+        Equation::new("housing", b.view(), x2.view()),
+        Equation::new("other", c.view(), x.view()),
+    ]);
+    let prep = Prepared::new(&d).unwrap();
+    match prep.estimate(&opts(Method::Fgls, Divisor::Ml)) {
+        Err(SurError::SingularOmega { equations, detail }) => {
+            assert_eq!(equations, vec!["food", "housing", "other"]);
+            assert!(detail.contains("Drop one"), "{detail}");
+        }
+        other => panic!("expected SingularOmega, got {other:?}"),
+    }
+}
+
+#[test]
+fn iteration_cap_is_reported() {
+    let (ys, xs) = system(&[2, 4, 3], 30, 17);
+    let prep = Prepared::new(&data(&ys, &xs)).unwrap();
+    let est = prep.estimate(&FitOptions { method: Method::IteratedFgls, divisor: Divisor::Ml, tol: 0.0, max_iter: 3 }).unwrap();
+    assert!(!est.converged);
+    assert_eq!(est.n_iter, 3);
+    assert_eq!(est.criterion_path.len(), 3);
+    // the path shrinks: the iteration is a contraction near the fixed point
+    assert!(est.criterion_path[2] < est.criterion_path[0]);
+}
+
+#[test]
+fn log_likelihood_formula_and_maximum() {
+    let (ys, xs) = system(&[2, 3], 40, 23);
+    let d = data(&ys, &xs);
+    let prep = Prepared::new(&d).unwrap();
+    let est = prep.estimate(&opts(Method::IteratedFgls, Divisor::Ml)).unwrap();
+    let ll = prep.log_likelihood(&est.resid_crossprod).unwrap();
+    let e = d.residuals(est.coef.as_slice().unwrap());
+    let s = e.t().dot(&e) / 40.0;
+    let det = s[[0, 0]] * s[[1, 1]] - s[[0, 1]] * s[[1, 0]];
+    let expect = -0.5 * 2.0 * 40.0 * (1.0 + (2.0 * std::f64::consts::PI).ln()) - 0.5 * 40.0 * det.ln();
+    assert_relative_eq!(ll, expect, max_relative = 1e-12);
+    // concentrated likelihood is maximal at the ML estimate: perturbing lowers it
+    let mut coef = est.coef.to_vec();
+    coef[1] += 1e-3;
+    let e2 = d.residuals(&coef);
+    let s2 = e2.t().dot(&e2) / 40.0;
+    let det2 = s2[[0, 0]] * s2[[1, 1]] - s2[[0, 1]] * s2[[1, 0]];
+    assert!(det2 > det);
+}
