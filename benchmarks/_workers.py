@@ -24,7 +24,9 @@ sys.path.insert(0, HERE)
 import numpy as np  # noqa: E402
 
 import cases  # noqa: E402
-import numpy_reference as ref  # noqa: E402
+
+# numpy_reference (and with it scipy, which bundles a third OpenBLAS) is imported
+# only by the memory worker, so the thread worker sees just numpy's and blocksur's pools.
 
 
 # ---------------------------------------------------------------------------
@@ -49,6 +51,7 @@ def _reset_hwm() -> bool:
 
 def mem_worker(case: str, what: str) -> dict:
     import blocksur  # imported (and its BLAS initialised) before the baseline
+    import numpy_reference as ref
 
     # Warm both BLAS libraries and the extension on a tiny system so that their
     # one-off allocations (thread buffers, etc.) are not charged to the fit.

@@ -71,14 +71,18 @@ def time_methods(methods: dict, repeats: int, min_sample: float, rounds: int = R
     blocks; methods visited in rotating order; a warm-up call and a short pause
     before every block; gc disabled while sampling.  Returns name -> samples (s)."""
     names = list(methods)
-    inner = {}
+    inner, slow = {}, {}
     for nm in names:  # warm-up + calibration
         fn = methods[nm]
-        fn()
         t0 = time.perf_counter()
         fn()
-        t = max(time.perf_counter() - t0, 1e-7)
+        t = time.perf_counter() - t0
+        if min_sample > 0:
+            t0 = time.perf_counter()
+            fn()
+            t = max(time.perf_counter() - t0, 1e-7)
         inner[nm] = max(1, math.ceil(min_sample / t)) if min_sample > 0 else 1
+        slow[nm] = t > 0.2
     per_round = [repeats // rounds + (1 if r < repeats % rounds else 0) for r in range(rounds)]
     samples = {nm: [] for nm in names}
     for r in range(rounds):
@@ -88,13 +92,43 @@ def time_methods(methods: dict, repeats: int, min_sample: float, rounds: int = R
         for nm in order:
             gc.collect()
             time.sleep(pause)
-            methods[nm]()  # warm-up after the switch
+            if not slow[nm]:
+                methods[nm]()  # warm-up after the switch
             gc.disable()
             try:
                 samples[nm] += _time_block(methods[nm], inner[nm], per_round[r])
             finally:
                 gc.enable()
     return samples
+
+
+def time_paired(fa, fb, repeats, min_sample, pause=PAUSE):
+    """Adjacent timings of fa and fb (order alternating), for a robust median of
+    t(fb) - t(fa) on a noisy machine.  Returns (samples_a, samples_b, diffs)."""
+    fa(), fb()
+    t0 = time.perf_counter()
+    fb()
+    t = max(time.perf_counter() - t0, 1e-7)
+    inner = max(1, math.ceil(min_sample / t)) if min_sample > 0 else 1
+    sa, sb, dd = [], [], []
+    gc.collect()
+    time.sleep(pause)
+    fa(), fb()
+    gc.disable()
+    try:
+        for r in range(repeats):
+            if r % 2 == 0:
+                a = _time_block(fa, inner, 1)[0]
+                b = _time_block(fb, inner, 1)[0]
+            else:
+                b = _time_block(fb, inner, 1)[0]
+                a = _time_block(fa, inner, 1)[0]
+            sa.append(a)
+            sb.append(b)
+            dd.append(b - a)
+    finally:
+        gc.enable()
+    return sa, sb, dd
 
 
 def med(x):
@@ -291,25 +325,39 @@ def run_case(name, cfg, blocksur, log, with_dense=True, sysfloor=None):
             "bs_fgls": lambda: EqS(d).fit(method="fgls").coef,
             "bs_fgls_se": fgls_se,
             "bs_fgls_prebuilt": lambda: sys0.fit(method="fgls").coef,
-            f"bs_ifgls_{m1}": ifgls_fixed(m1),
-            f"bs_ifgls_{m2}": ifgls_fixed(m2),
         })
     t0 = time.perf_counter()
+    r["loadavg_before"] = round(os.getloadavg()[0], 2)
     samples = time_methods(methods, cfg["repeats"], cfg["min_sample"], log=log)
+    if blocksur is not None:
+        # per-iteration IFGLS cost: paired adjacent timings of max_iter=m1 and m2
+        sa, sb, dd = time_paired(ifgls_fixed(m1), ifgls_fixed(m2), cfg["repeats"],
+                                 cfg["min_sample"])
+        samples[f"bs_ifgls_{m1}"], samples[f"bs_ifgls_{m2}"] = sa, sb
+        samples["bs_ifgls_diff"] = dd
+    r["loadavg_after"] = round(os.getloadavg()[0], 2)
     log(f"timed {len(methods)} methods x {cfg['repeats']} samples in "
-        f"{time.perf_counter() - t0:.1f} s (loadavg now {os.getloadavg()[0]:.2f})")
+        f"{time.perf_counter() - t0:.1f} s (1-min loadavg {r['loadavg_before']} -> "
+        f"{r['loadavg_after']})")
 
     if with_dense and cfg["dense"] > 0:
-        pd_ = dense_statsmodels_fgls(ys, Xs)
-        checks["dense_sm_vs_ref"] = {"coef": ref.rel_err(pd_[0], rf.coef_flat),
-                                     "se": ref.rel_err(pd_[1], rf.se_flat)}
-        log(f"  dense statsmodels vs numpy reference: coef rel err "
-            f"{checks['dense_sm_vs_ref']['coef']:.1e}, se {checks['dense_sm_vs_ref']['se']:.1e}")
-        del pd_
-        gc.collect()
+        # each call timed on its own (first result also checked); these are slow
         t0 = time.perf_counter()
-        samples["sm_dense"] = time_methods({"sm_dense": lambda: dense_statsmodels_fgls(ys, Xs)},
-                                           cfg["dense"], 0.0, rounds=1, log=log)["sm_dense"]
+        sm_samples = []
+        for rep in range(cfg["dense"]):
+            gc.collect()
+            time.sleep(PAUSE)
+            t1 = time.perf_counter()
+            pd_ = dense_statsmodels_fgls(ys, Xs)
+            sm_samples.append(time.perf_counter() - t1)
+            if rep == 0:
+                checks["dense_sm_vs_ref"] = {"coef": ref.rel_err(pd_[0], rf.coef_flat),
+                                             "se": ref.rel_err(pd_[1], rf.se_flat)}
+                log(f"  dense statsmodels vs numpy reference: coef rel err "
+                    f"{checks['dense_sm_vs_ref']['coef']:.1e}, se "
+                    f"{checks['dense_sm_vs_ref']['se']:.1e}")
+            del pd_
+        samples["sm_dense"] = sm_samples
         log(f"timed dense statsmodels x {cfg['dense']} in {time.perf_counter() - t0:.1f} s")
 
     r["samples"] = samples
@@ -321,7 +369,7 @@ def run_case(name, cfg, blocksur, log, with_dense=True, sysfloor=None):
     if n_iter:
         dn = n_iter[m2] - n_iter[m1]
         r["n_iter_fixed"] = n_iter
-        r["per_iter"] = (tm[f"bs_ifgls_{m2}"] - tm[f"bs_ifgls_{m1}"]) / dn if dn > 0 else float("nan")
+        r["per_iter"] = tm["bs_ifgls_diff"] / dn if dn > 0 else float("nan")
     return r
 
 
@@ -422,15 +470,16 @@ def build_report(meta, results, mem, thr, quick):
     L.append("")
     L.append("floor = min over C/F order of numpy `W.T @ W`, W = [X_1..X_N, y_1..y_N];"
              " bs fgls = `EquationSystem(d).fit(method='fgls').coef` (construction included);"
-             " bs fgls+se also reads `.se`; ifgls/iter = (t(max_iter=m2) - t(max_iter=m1)) /"
-             " (n_iter2 - n_iter1) with tol=0 on a prebuilt system; numpy ref and sm dense"
+             " bs fgls+se also reads `.se`; ifgls/iter = median of paired differences"
+             " t(max_iter=m2) - t(max_iter=m1), divided by n_iter2 - n_iter1, tol=0, on a"
+             " prebuilt system; numpy ref and sm dense"
              " include standard errors; speed-ups compare against bs fgls+se.")
     L.append("")
     L.append("### Details")
     L.append("")
     hdr2 = ["case", "floor C", "floor F", "floor sys-BLAS", "bs construct", "bs ols",
             "bs fgls prebuilt", "ifgls m1/m2 (n_iter)", "ref fgls (coef)", "coef speed-up",
-            "ifgls conv. n_iter", "checks"]
+            "ifgls conv. n_iter", "loadavg", "checks"]
     rows2 = []
     for r in results:
         tm = r["times"]
@@ -445,7 +494,8 @@ def build_report(meta, results, mem, thr, quick):
             fmt_t(tm.get("floor_sysblas")), fmt_t(tm.get("bs_construct")), fmt_t(tm.get("bs_ols")),
             fmt_t(tm.get("bs_fgls_prebuilt")), it, fmt_t(tm["ref_fgls"]),
             fmt_r(tm["ref_fgls"] / tm.get("bs_fgls", float("nan"))),
-            f"{r.get('ifgls_default_n_iter', 'n/a')}", chk,
+            f"{r.get('ifgls_default_n_iter', 'n/a')}",
+            f"{r.get('loadavg_before')}->{r.get('loadavg_after')}", chk,
         ])
     L.append(table(hdr2, rows2))
     L.append("")

@@ -20,6 +20,12 @@ Notation (N equations, T observations, equation i has K_i regressors, K = sum K_
 
 Public entry points: :func:`ols`, :func:`fgls`, :func:`ifgls`, :func:`full_vcov`
 and :class:`Moments` (the one-pass precomputation they share).
+
+BLAS/LAPACK work goes through scipy.linalg only (qr, dsyrk, Cholesky, triangular
+routines); numpy is used for element-wise work, einsum (no BLAS) and reductions.
+numpy and scipy wheels each bundle their own OpenBLAS, and alternating two
+OpenBLAS thread pools inside one computation slows both down, so the reference
+deliberately stays on one pool.
 """
 
 from __future__ import annotations
@@ -30,6 +36,17 @@ import numpy as np
 from scipy import linalg as sla
 
 __all__ = ["Moments", "RefFit", "ols", "fgls", "ifgls", "full_vcov", "rel_err"]
+
+
+def _fill_lower(G, bs=512):
+    """Copy the upper triangle of square G into its lower triangle, in blocks."""
+    P = G.shape[0]
+    for j0 in range(0, P, bs):
+        j1 = min(j0 + bs, P)
+        blk = G[j0:j1, j0:j1]
+        blk[:] = np.triu(blk) + np.triu(blk, 1).T
+        if j1 < P:
+            G[j1:, j0:j1] = G[j0:j1, j1:].T
 
 
 class Moments:
@@ -49,17 +66,18 @@ class Moments:
         starts = np.concatenate(([0], np.cumsum(ks)[:-1])).astype(np.intp)
 
         # Z = [Q_1 .. Q_N, y_1 .. y_N], Fortran order so each block is a
-        # contiguous column range; Z.T @ Z is one syrk call.
+        # contiguous column range; Z.T @ Z is one syrk call (scipy BLAS).
         Z = np.empty((T, K + N), order="F")
         Rs = []
         for i, X in enumerate(Xs):
-            Q, R = np.linalg.qr(X, mode="reduced")
+            Q, R = sla.qr(X, mode="economic", check_finite=False)
             Z[:, starts[i]:starts[i] + ks[i]] = Q
             Rs.append(R)
         for i, y in enumerate(ys):
             Z[:, K + i] = y
-        G = Z.T @ Z
+        G = sla.blas.dsyrk(1.0, Z, trans=1)  # Z'Z, upper triangle
         del Z
+        _fill_lower(G)
 
         self.T, self.N, self.K = T, N, K
         self.ks, self.starts = ks, starts
@@ -131,7 +149,7 @@ class Moments:
             raise np.linalg.LinAlgError("dtrtri failed")
         out = []
         for Ri_inv, sl in zip(self.rinv(), self.slices):
-            A = Linv[sl.start:, sl] @ Ri_inv.T
+            A = np.einsum("rl,kl->rk", Linv[sl.start:, sl], Ri_inv)  # L^-1[:, rows_i] R_i^-T
             out.append(np.sqrt(np.einsum("rk,rk->k", A, A)))
         return out
 

@@ -37,6 +37,10 @@ pub enum SurError {
     #[error("{detail}")]
     SingularOmega { equations: Vec<String>, detail: String },
 
+    /// A restriction that cannot be imposed (index: its position, 0-based, when one is to blame).
+    #[error("{}{detail}", match .index { Some(i) => format!("restriction {i} "), None => String::new() })]
+    InvalidRestriction { index: Option<usize>, detail: String },
+
     /// An option value outside its domain.
     #[error("{0}")]
     InvalidOption(String),
@@ -56,6 +60,7 @@ impl SurError {
             SurError::TooFewObservations { .. } => "TooFewObservationsError",
             SurError::Collinear { .. } => "CollinearityError",
             SurError::SingularOmega { .. } => "SingularOmegaError",
+            SurError::InvalidRestriction { .. } => "RestrictionError",
             SurError::InvalidOption(_) => "InvalidOptionError",
             SurError::Numerical { .. } => "NumericalError",
         }

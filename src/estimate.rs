@@ -9,8 +9,9 @@
 use ndarray::{s, Array1, Array2, ShapeBuilder};
 
 use crate::error::{Result, SurError};
-use crate::linalg::{chol_inverse, chol_lower, chol_solve, invert_omega, ln_det_spd, symmetrize, upper_inverse};
+use crate::linalg::{chol_inverse, chol_lower, chol_solve, gram, invert_omega, ln_det_spd, symmetrize, upper_inverse};
 use crate::prepare::{CrossProducts, Prepared};
+use crate::system::SystemData;
 
 /// The estimator.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -100,15 +101,31 @@ impl FitOptions {
     }
 }
 
-/// What the classical covariance of gamma is made of.
+/// The weight matrix of the estimator in the orthonormal basis: the objective is
+/// delta' W delta - 2 delta' h. OLS has W = I; GLS has W = M.
 #[derive(Debug, Clone)]
-enum CovSource {
-    /// OLS: Cov(gamma_i, gamma_j) = omega_ij Q_i'Q_j.
-    Ols,
-    /// GLS: Cov(gamma) = M^-1, from the lower Cholesky factor of M.
-    Gls { chol: Array2<f64> },
-    /// GLS with shared regressors: M^-1 = Omega (x) I.
-    SharedGls,
+pub(crate) enum Weight {
+    Identity,
+    /// Lower Cholesky factor of M.
+    Chol(Array2<f64>),
+    /// Shared regressors: M = Omega^-1 (x) I, so M^-1 = Omega (x) I (this Omega).
+    Shared(Array2<f64>),
+}
+
+/// Linear restrictions R b = q on the stacked coefficients.
+#[derive(Debug, Clone)]
+pub struct Restrictions {
+    pub r: Array2<f64>,
+    pub q: Array1<f64>,
+}
+
+/// The pieces of a restricted fit: gamma_r = gamma - W^-1 Rg' H^-1 (Rg gamma - q),
+/// with Rg = R blockdiag(R_i^-1) and H = Rg W^-1 Rg'.
+#[derive(Debug, Clone)]
+struct RestrictedParts {
+    rg: Array2<f64>,
+    wirt: Array2<f64>,
+    h_inv: Array2<f64>,
 }
 
 /// The result of one estimation.
@@ -129,7 +146,34 @@ pub struct Estimate {
     pub converged: bool,
     /// The convergence criterion after each GLS step of an iterated fit.
     pub criterion_path: Vec<f64>,
-    cov: CovSource,
+    /// Number of linearly independent restrictions imposed.
+    pub n_restrictions: usize,
+    weight: Weight,
+    restricted: Option<RestrictedParts>,
+}
+
+/// Which covariance of the coefficients.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum CovKind {
+    /// The model-based covariance: M^-1 for GLS, omega_ij (X_i'X_i)^-1 X_i'X_j (X_j'X_j)^-1 for OLS.
+    Classical,
+    /// Heteroskedasticity-robust sandwich (White 1980, for systems).
+    Hc0,
+    /// HC0 scaled by T / (T - K/N), which is n / (n - k) for a single equation.
+    Hc1,
+}
+
+impl CovKind {
+    pub fn parse(s: &str) -> Result<CovKind> {
+        match s {
+            "classical" => Ok(CovKind::Classical),
+            "hc0" => Ok(CovKind::Hc0),
+            "hc1" => Ok(CovKind::Hc1),
+            _ => Err(SurError::InvalidOption(format!(
+                "unknown covariance '{s}': use 'classical', 'hc0' or 'hc1'"
+            ))),
+        }
+    }
 }
 
 impl Prepared {
@@ -172,6 +216,11 @@ impl Prepared {
         out
     }
 
+    /// Residual cross-products of equation-by-equation OLS (no restrictions).
+    pub fn ols_crossprod(&self) -> Array2<f64> {
+        self.residual_crossprod(&Array1::zeros(self.n_coef()))
+    }
+
     /// Omega from residual cross-products.
     pub fn omega_from(&self, s: &Array2<f64>, divisor: Divisor) -> Array2<f64> {
         let t = self.n_obs as f64;
@@ -184,13 +233,13 @@ impl Prepared {
         }
     }
 
-    /// One GLS step for a given Omega^-1: delta and the Cholesky factor of M (None when the
-    /// regressors are shared, where GLS equals OLS and M^-1 = Omega (x) I).
-    fn gls_step(&self, sigma_inv: &Array2<f64>) -> Result<(Array1<f64>, Option<Array2<f64>>)> {
+    /// One GLS step for a given Omega: the unrestricted delta and the weight.
+    fn gls_step(&self, omega: &Array2<f64>) -> Result<(Array1<f64>, Weight)> {
         let n = self.n_eq();
         let k = self.n_coef();
+        let sigma_inv = invert_omega(omega, &self.names, self.n_obs)?;
         let gram = match &self.cross {
-            CrossProducts::SharedRegressors { .. } => return Ok((Array1::zeros(k), None)),
+            CrossProducts::SharedRegressors { .. } => return Ok((Array1::zeros(k), Weight::Shared(omega.clone()))),
             CrossProducts::General { gram } => gram,
         };
         let rho = Array1::from_iter(self.factors.iter().map(|f| f.rho));
@@ -213,32 +262,103 @@ impl Prepared {
             SurError::numerical("Cholesky factorisation of the GLS normal matrix", "not positive definite")
         })?;
         let delta = chol_solve(&chol, &h)?;
-        Ok((delta, Some(chol)))
+        Ok((delta, Weight::Chol(chol)))
     }
 
-    /// Runs one estimation.
+    /// W^-1 V for a K x m matrix V.
+    fn weight_solve(&self, w: &Weight, v: &Array2<f64>) -> Result<Array2<f64>> {
+        match w {
+            Weight::Identity => Ok(v.clone()),
+            Weight::Chol(l) => chol_solve_mat(l, v),
+            Weight::Shared(omega) => {
+                let mut out = Array2::<f64>::zeros(v.dim());
+                for i in 0..self.n_eq() {
+                    let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+                    for j in 0..self.n_eq() {
+                        let (c, d) = (self.offsets[j], self.offsets[j + 1]);
+                        out.slice_mut(s![a..b, ..]).scaled_add(omega[[i, j]], &v.slice(s![c..d, ..]));
+                    }
+                }
+                Ok(out)
+            }
+        }
+    }
+
+    /// W^-1 (K x K).
+    fn weight_inverse(&self, w: &Weight) -> Result<Array2<f64>> {
+        match w {
+            Weight::Chol(l) => chol_inverse(l),
+            _ => self.weight_solve(w, &Array2::eye(self.n_coef())),
+        }
+    }
+
+    /// Restrictions in the orthonormal basis: Rg = R blockdiag(R_i^-1).
+    fn restrictions_in_basis(&self, r: &Array2<f64>) -> Result<Array2<f64>> {
+        let mut rg = Array2::<f64>::zeros(r.dim());
+        for (i, f) in self.factors.iter().enumerate() {
+            let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+            let rinv = upper_inverse(&f.r)?;
+            rg.slice_mut(s![.., a..b]).assign(&r.slice(s![.., a..b]).dot(&rinv));
+        }
+        Ok(rg)
+    }
+
+    /// Imposes Rg (z + delta) = q on an unrestricted delta under weight W.
+    fn restrict(&self, delta: &Array1<f64>, w: &Weight, rg: &Array2<f64>, qd: &Array1<f64>) -> Result<(Array1<f64>, RestrictedParts)> {
+        let wirt = self.weight_solve(w, &rg.t().to_owned())?;
+        let mut h = rg.dot(&wirt);
+        symmetrize(&mut h);
+        let hl = chol_lower(h).ok_or_else(|| {
+            SurError::InvalidRestriction { index: None, detail: "the restrictions are linearly dependent".into() }
+        })?;
+        let h_inv = chol_inverse(&hl)?;
+        let gap = rg.dot(delta) - qd;
+        let out = delta - &wirt.dot(&h_inv.dot(&gap));
+        Ok((out, RestrictedParts { rg: rg.clone(), wirt, h_inv }))
+    }
+
+    /// Runs one estimation without restrictions.
     pub fn estimate(&self, opts: &FitOptions) -> Result<Estimate> {
+        self.estimate_restricted(opts, None)
+    }
+
+    /// Runs one estimation, imposing R b = q when given. Omega comes from residuals that satisfy
+    /// the restrictions at every stage (restricted OLS for the first step).
+    pub fn estimate_restricted(&self, opts: &FitOptions, restrictions: Option<&Restrictions>) -> Result<Estimate> {
         opts.validate()?;
         let k = self.n_coef();
         let z = self.z();
-        let mut delta = Array1::<f64>::zeros(k);
+        let constraint = match restrictions {
+            None => None,
+            Some(rs) => {
+                rs.validate(k)?;
+                let rg = self.restrictions_in_basis(&rs.r)?;
+                let qd = &rs.q - &rg.dot(&z);
+                Some((rg, qd))
+            }
+        };
+        let impose = |delta: Array1<f64>, w: &Weight| -> Result<(Array1<f64>, Option<RestrictedParts>)> {
+            match &constraint {
+                None => Ok((delta, None)),
+                Some((rg, qd)) => self.restrict(&delta, w, rg, qd).map(|(d, p)| (d, Some(p))),
+            }
+        };
+        let (mut delta, mut restricted) = impose(Array1::zeros(k), &Weight::Identity)?;
+        let mut weight = Weight::Identity;
         let mut s = self.residual_crossprod(&delta);
         let mut omega = self.omega_from(&s, opts.divisor);
         let mut n_iter = 0;
         let mut converged = true;
         let mut path = Vec::new();
-        let mut cov = CovSource::Ols;
         if opts.method != Method::Ols {
             let max_iter = if opts.method == Method::Fgls { 1 } else { opts.max_iter };
             converged = opts.method == Method::Fgls;
             while n_iter < max_iter {
-                let sigma_inv = invert_omega(&omega, &self.names, self.n_obs)?;
-                let (new_delta, chol) = self.gls_step(&sigma_inv)?;
+                let (unrestricted, w) = self.gls_step(&omega)?;
+                let (new_delta, parts) = impose(unrestricted, &w)?;
                 n_iter += 1;
-                cov = match chol {
-                    Some(c) => CovSource::Gls { chol: c },
-                    None => CovSource::SharedGls,
-                };
+                weight = w;
+                restricted = parts;
                 let crit = self.criterion(&z, &delta, &new_delta);
                 if !crit.is_finite() {
                     return Err(SurError::numerical("iterated FGLS", "the coefficients became non-finite"));
@@ -270,7 +390,9 @@ impl Prepared {
             n_iter,
             converged,
             criterion_path: path,
-            cov,
+            n_restrictions: restrictions.map_or(0, |r| r.r.nrows()),
+            weight,
+            restricted,
         })
     }
 
@@ -288,48 +410,149 @@ impl Prepared {
         worst
     }
 
-    /// Classical covariance of gamma (K x K).
-    fn gamma_covariance(&self, est: &Estimate) -> Result<Array2<f64>> {
+    /// Classical covariance of gamma, unrestricted: W^-1 for GLS, omega_ij Q_i'Q_j for OLS.
+    fn classical_gamma_cov(&self, est: &Estimate) -> Result<Array2<f64>> {
+        if !matches!(est.weight, Weight::Identity) {
+            return self.weight_inverse(&est.weight);
+        }
         let k = self.n_coef();
         let n = self.n_eq();
         let mut v = Array2::<f64>::zeros((k, k));
-        match (&est.cov, &self.cross) {
-            (CovSource::Gls { chol }, _) => {
-                v = chol_inverse(chol)?;
-            }
-            (CovSource::SharedGls, _) | (CovSource::Ols, CrossProducts::SharedRegressors { .. }) => {
-                for i in 0..n {
-                    for j in 0..n {
-                        let (a, b) = (self.offsets[i], self.offsets[i + 1]);
-                        let (c, d) = (self.offsets[j], self.offsets[j + 1]);
-                        let mut blk = v.slice_mut(s![a..b, c..d]);
-                        blk.diag_mut().fill(est.omega[[i, j]]);
-                    }
-                }
-            }
-            (CovSource::Ols, CrossProducts::General { gram }) => {
-                for i in 0..n {
-                    for j in 0..n {
-                        let (a, b) = (self.offsets[i], self.offsets[i + 1]);
-                        let (c, d) = (self.offsets[j], self.offsets[j + 1]);
-                        let mut blk = v.slice_mut(s![a..b, c..d]);
+        for i in 0..n {
+            for j in 0..n {
+                let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+                let (c, d) = (self.offsets[j], self.offsets[j + 1]);
+                let mut blk = v.slice_mut(s![a..b, c..d]);
+                match &self.cross {
+                    CrossProducts::General { gram } => {
                         blk.assign(&gram.slice(s![a..b, c..d]));
                         blk *= est.omega[[i, j]];
                     }
+                    CrossProducts::SharedRegressors { .. } => blk.diag_mut().fill(est.omega[[i, j]]),
                 }
             }
         }
         Ok(v)
     }
 
-    /// Classical covariance of the coefficients b (K x K): blockdiag(R_i^-1) Cov(gamma) blockdiag(R_i^-T).
-    pub fn coef_covariance(&self, est: &Estimate) -> Result<Array2<f64>> {
-        let v = self.gamma_covariance(est)?;
+    /// Covariance of gamma for a given unrestricted covariance V: A V A' with
+    /// A = I - W^-1 Rg' H^-1 Rg when restrictions were imposed, V otherwise.
+    fn apply_restrictions(&self, est: &Estimate, v: Array2<f64>) -> Array2<f64> {
+        match &est.restricted {
+            None => v,
+            Some(p) => {
+                let proj = p.wirt.dot(&p.h_inv); // K x m
+                // A V = V - proj (Rg V)
+                let rv = p.rg.dot(&v);
+                let av = &v - &proj.dot(&rv);
+                // (A V) A' = AV - (AV Rg') proj'
+                let avr = av.dot(&p.rg.t());
+                let mut out = &av - &avr.dot(&proj.t());
+                symmetrize(&mut out);
+                out
+            }
+        }
+    }
+
+    /// Covariance of gamma (K x K) of the given kind. Robust kinds need the data.
+    pub fn gamma_covariance(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array2<f64>> {
+        let v = match kind {
+            CovKind::Classical => {
+                if matches!(est.weight, Weight::Identity) || est.restricted.is_none() {
+                    self.classical_gamma_cov(est)?
+                } else {
+                    // GLS classical, restricted: A M^-1 A' = M^-1 - W^-1 Rg' H^-1 Rg W^-1.
+                    let p = est.restricted.as_ref().unwrap();
+                    let mut v = self.weight_inverse(&est.weight)? - p.wirt.dot(&p.h_inv).dot(&p.wirt.t());
+                    symmetrize(&mut v);
+                    return Ok(v);
+                }
+            }
+            CovKind::Hc0 | CovKind::Hc1 => {
+                let data = data.ok_or_else(|| SurError::InvalidOption("a robust covariance needs the data".into()))?;
+                let meat = self.score_outer_product(est, data)?;
+                let mut v = match &est.weight {
+                    Weight::Identity => meat,
+                    w => {
+                        let left = self.weight_solve(w, &meat)?;
+                        let mut v = self.weight_solve(w, &left.t().to_owned())?;
+                        symmetrize(&mut v);
+                        v
+                    }
+                };
+                if kind == CovKind::Hc1 {
+                    let t = self.n_obs as f64;
+                    let kbar = self.n_coef() as f64 / self.n_eq() as f64;
+                    v *= t / (t - kbar);
+                }
+                v
+            }
+        };
+        Ok(self.apply_restrictions(est, v))
+    }
+
+    /// Sum over rows of s_t s_t', s_t stacking Q_i[t,:]' u_t[i], with u_t = Omega^-1 e_t for GLS
+    /// and u_t = e_t for OLS. One pass over the data in row blocks; Q_i = X_i R_i^-1.
+    fn score_outer_product(&self, est: &Estimate, data: &SystemData) -> Result<Array2<f64>> {
+        let t = self.n_obs;
+        let k = self.n_coef();
+        let n = self.n_eq();
+        if data.n_eq() != n || data.equations.iter().any(|e| e.y.len() != t) {
+            return Err(SurError::InvalidOption("the data do not match the prepared system".into()));
+        }
+        let sigma_inv = match &est.weight {
+            Weight::Identity => None,
+            _ => Some(invert_omega(&est.omega, &self.names, t)?),
+        };
+        let rinv: Vec<Array2<f64>> = self.factors.iter().map(|f| upper_inverse(&f.r)).collect::<Result<_>>()?;
+        let mut meat = Array2::<f64>::zeros((k, k));
+        let block = 2048usize;
+        let mut start = 0;
+        while start < t {
+            let end = (start + block).min(t);
+            let rows = end - start;
+            let mut e = Array2::<f64>::zeros((rows, n));
+            for (i, eq) in data.equations.iter().enumerate() {
+                let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+                let x = eq.x.slice(s![start..end, ..]);
+                let fit = x.dot(&est.coef.slice(s![a..b]));
+                let mut col = e.column_mut(i);
+                col.assign(&eq.y.slice(s![start..end]));
+                col -= &fit;
+            }
+            let u = match &sigma_inv {
+                None => e,
+                Some(si) => e.dot(si),
+            };
+            let mut sc = Array2::<f64>::zeros((rows, k).f());
+            for (i, eq) in data.equations.iter().enumerate() {
+                let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+                let q = eq.x.slice(s![start..end, ..]).dot(&rinv[i]);
+                let mut dst = sc.slice_mut(s![.., a..b]);
+                dst.assign(&q);
+                for (mut row, ui) in dst.rows_mut().into_iter().zip(u.column(i)) {
+                    row *= *ui;
+                }
+            }
+            meat += &gram(sc.view());
+            start = end;
+        }
+        Ok(meat)
+    }
+
+    /// Covariance of the coefficients b (K x K): blockdiag(R_i^-1) Cov(gamma) blockdiag(R_i^-T).
+    pub fn coef_covariance_of(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array2<f64>> {
+        let v = self.gamma_covariance(est, kind, data)?;
         let rinv: Vec<Array2<f64>> = self.factors.iter().map(|f| upper_inverse(&f.r)).collect::<Result<_>>()?;
         let left = self.block_left_multiply(&rinv, &v);
         let mut out = self.block_left_multiply(&rinv, &left.t().to_owned());
         symmetrize(&mut out);
         Ok(out)
+    }
+
+    /// Classical covariance of the coefficients b.
+    pub fn coef_covariance(&self, est: &Estimate) -> Result<Array2<f64>> {
+        self.coef_covariance_of(est, CovKind::Classical, None)
     }
 
     fn block_left_multiply(&self, blocks: &[Array2<f64>], v: &Array2<f64>) -> Array2<f64> {
@@ -351,3 +574,64 @@ impl Prepared {
     }
 }
 
+impl Restrictions {
+    /// Checks shapes and finiteness, and that each restriction mentions a coefficient, adds
+    /// information (is not implied by the earlier ones) and agrees with them.
+    pub fn validate(&self, k: usize) -> Result<()> {
+        let (m, kk) = self.r.dim();
+        let bad = |index: Option<usize>, detail: String| SurError::InvalidRestriction { index, detail };
+        if kk != k {
+            return Err(bad(None, format!("the restriction matrix has {kk} columns but the system has {k} coefficients")));
+        }
+        if self.q.len() != m {
+            return Err(bad(None, format!("{m} restrictions but {} right-hand sides", self.q.len())));
+        }
+        if m == 0 {
+            return Err(bad(None, "no restrictions were given".into()));
+        }
+        if m >= k {
+            return Err(bad(None, format!("{m} restrictions on {k} coefficients leave nothing to estimate")));
+        }
+        if self.r.iter().chain(self.q.iter()).any(|v| !v.is_finite()) {
+            return Err(bad(None, "the restrictions contain NaN or infinite values".into()));
+        }
+        // Gram-Schmidt on the rows, in order: a row that adds (almost) nothing is redundant when
+        // its right-hand side agrees, inconsistent when it does not.
+        let mut basis: Vec<(Array1<f64>, f64)> = Vec::new();
+        for i in 0..m {
+            let row = self.r.row(i).to_owned();
+            let norm0 = row.dot(&row).sqrt();
+            if norm0 == 0.0 {
+                return Err(bad(Some(i), "mentions no coefficient".into()));
+            }
+            let (mut v, mut rhs) = (row / norm0, self.q[i] / norm0);
+            for _ in 0..2 {
+                for (u, qu) in &basis {
+                    let c = u.dot(&v);
+                    v.scaled_add(-c, u);
+                    rhs -= c * qu;
+                }
+            }
+            let nv = v.dot(&v).sqrt();
+            if nv < 1e-10 {
+                let scale = 1.0 + self.q.iter().fold(0.0f64, |a, b| a.max(b.abs()));
+                return Err(if rhs.abs() <= 1e-9 * scale {
+                    bad(Some(i), "is implied by the restrictions before it (redundant): remove it".into())
+                } else {
+                    bad(Some(i), "contradicts the restrictions before it (inconsistent): no coefficients satisfy them all".into())
+                });
+            }
+            basis.push((v / nv, rhs / nv));
+        }
+        Ok(())
+    }
+}
+
+/// Solves (L L') X = B for a K x m right-hand side.
+fn chol_solve_mat(l: &Array2<f64>, b: &Array2<f64>) -> Result<Array2<f64>> {
+    let mut out = Array2::<f64>::zeros(b.dim());
+    for (j, col) in b.columns().into_iter().enumerate() {
+        out.column_mut(j).assign(&chol_solve(l, &col.to_owned())?);
+    }
+    Ok(out)
+}

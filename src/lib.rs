@@ -30,7 +30,7 @@ pub mod system;
 mod python;
 
 pub use error::{Result, SurError};
-pub use estimate::{Divisor, Estimate, FitOptions, Method};
+pub use estimate::{CovKind, Divisor, Estimate, FitOptions, Method, Restrictions};
 pub use prepare::{CrossProducts, EquationFactor, Prepared};
 pub use system::{Equation, SystemData};
 

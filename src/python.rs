@@ -7,7 +7,7 @@ use pyo3::prelude::*;
 use pyo3::types::PyDict;
 
 use crate::error::SurError;
-use crate::estimate::{Divisor, Estimate, FitOptions, Method};
+use crate::estimate::{CovKind, Divisor, Estimate, FitOptions, Method, Restrictions};
 use crate::prepare::Prepared;
 use crate::system::{Equation, SystemData};
 
@@ -34,6 +34,7 @@ fn raise(py: Python<'_>, err: SurError) -> PyErr {
                 kw.set_item("column", column)?;
             }
             SurError::SingularOmega { equations, .. } => kw.set_item("equations", equations)?,
+            SurError::InvalidRestriction { index, .. } => kw.set_item("index", index)?,
             _ => {}
         }
         let obj = cls.call((err.to_string(),), Some(&kw))?;
@@ -111,22 +112,60 @@ fn residuals<'py>(
 
 #[pymethods]
 impl PyPrepared {
-    /// Runs one estimation ("ols", "fgls", "ifgls"; divisor "ml" or "dof").
-    fn estimate(&self, py: Python<'_>, method: &str, divisor: &str, tol: f64, max_iter: usize) -> PyResult<PyEstimate> {
+    /// Runs one estimation ("ols", "fgls", "ifgls"; divisor "ml" or "dof"), imposing R b = q
+    /// when `r` and `q` are given.
+    #[pyo3(signature = (method, divisor, tol, max_iter, r=None, q=None))]
+    #[allow(clippy::too_many_arguments)]
+    fn estimate(
+        &self,
+        py: Python<'_>,
+        method: &str,
+        divisor: &str,
+        tol: f64,
+        max_iter: usize,
+        r: Option<PyReadonlyArray2<'_, f64>>,
+        q: Option<PyReadonlyArray1<'_, f64>>,
+    ) -> PyResult<PyEstimate> {
         let opts = FitOptions {
             method: Method::parse(method).map_err(|e| raise(py, e))?,
             divisor: Divisor::parse(divisor).map_err(|e| raise(py, e))?,
             tol,
             max_iter,
         };
-        let out = py.detach(|| self.inner.estimate(&opts));
+        let restrictions = match (r, q) {
+            (Some(r), Some(q)) => Some(Restrictions { r: r.as_array().to_owned(), q: q.as_array().to_owned() }),
+            (None, None) => None,
+            _ => return Err(PyValueError::new_err("give both r and q, or neither")),
+        };
+        let out = py.detach(|| self.inner.estimate_restricted(&opts, restrictions.as_ref()));
         out.map(|inner| PyEstimate { inner }).map_err(|e| raise(py, e))
     }
 
-    /// Classical covariance of the stacked coefficients (K x K).
-    fn coef_covariance<'py>(&self, py: Python<'py>, est: &PyEstimate) -> PyResult<Bound<'py, PyArray2<f64>>> {
-        let out = py.detach(|| self.inner.coef_covariance(&est.inner));
+    /// Covariance of the stacked coefficients (K x K): kind "classical", "hc0" or "hc1" (the
+    /// robust kinds need the data: ys and xs as given to `prepare`).
+    #[pyo3(signature = (est, kind="classical", ys=None, xs=None))]
+    fn coef_covariance<'py>(
+        &self,
+        py: Python<'py>,
+        est: &PyEstimate,
+        kind: &str,
+        ys: Option<Vec<PyReadonlyArray1<'py, f64>>>,
+        xs: Option<Vec<PyReadonlyArray2<'py, f64>>>,
+    ) -> PyResult<Bound<'py, PyArray2<f64>>> {
+        let kind = CovKind::parse(kind).map_err(|e| raise(py, e))?;
+        let (ys, xs) = (ys.unwrap_or_default(), xs.unwrap_or_default());
+        let data = if ys.is_empty() {
+            None
+        } else {
+            Some(equations(&ys, &xs, &self.inner.names, &self.inner.regressors)?)
+        };
+        let out = py.detach(|| self.inner.coef_covariance_of(&est.inner, kind, data.as_ref()));
         out.map(|a| a.into_pyarray(py)).map_err(|e| raise(py, e))
+    }
+
+    /// Residual cross-products of unrestricted equation-by-equation OLS (N x N).
+    fn ols_crossprod<'py>(&self, py: Python<'py>) -> Bound<'py, PyArray2<f64>> {
+        self.inner.ols_crossprod().into_pyarray(py)
     }
 
     /// Gaussian log-likelihood at Omega = S/T of the estimate's residuals (None if singular).
@@ -189,6 +228,10 @@ impl PyEstimate {
     #[getter]
     fn criterion_path(&self) -> Vec<f64> {
         self.inner.criterion_path.clone()
+    }
+    #[getter]
+    fn n_restrictions(&self) -> usize {
+        self.inner.n_restrictions
     }
     #[getter]
     fn method(&self) -> &'static str {

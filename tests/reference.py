@@ -184,7 +184,7 @@ def dense_fgls(eqs, divisor):
     return b, V, omega
 
 
-def dense_ifgls(eqs, divisor, tol=1e-15, max_iter=20000):
+def dense_ifgls(eqs, divisor, tol=1e-13, max_iter=20000):
     """Iterated FGLS by repeated dense statsmodels GLS, run to full convergence.
 
     Returns (params, cov, omega_used_in_last_step, n_steps)."""

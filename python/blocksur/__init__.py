@@ -15,6 +15,7 @@ FrozenList(['equation', 'regressor'])
 
 from ._core import __version__
 from ._fit import SystemFit
+from ._tests import HypothesisTestResult
 from ._system import EquationSystem
 from .errors import (
     BlocksurError,
@@ -26,6 +27,8 @@ from .errors import (
     NonFiniteError,
     NotConvergedWarning,
     NumericalError,
+    RestrictionError,
+    RestrictionSyntaxError,
     ShapeMismatchError,
     SingularOmegaError,
     TooFewObservationsError,
@@ -44,6 +47,9 @@ __all__ = [
     "NonFiniteError",
     "NotConvergedWarning",
     "NumericalError",
+    "RestrictionError",
+    "RestrictionSyntaxError",
+    "HypothesisTestResult",
     "ShapeMismatchError",
     "SingularOmegaError",
     "TooFewObservationsError",

@@ -7,6 +7,11 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
+from scipy import stats
+
+from ._restrictions import parse_restrictions
+from ._tests import HypothesisTestResult
+from .errors import InvalidOptionError, ShapeMismatchError
 
 if TYPE_CHECKING:  # pragma: no cover
     from ._system import EquationSystem
@@ -42,6 +47,9 @@ class SystemFit:
         *,
         tol: float,
         max_iter: int,
+        restrictions: Any = None,
+        covariance: str = "classical",
+        inference: str = "z",
     ) -> None:
         self._system = system
         self._prepared = prepared
@@ -49,6 +57,9 @@ class SystemFit:
         self._resid = resid
         self.tol = tol
         self.max_iter = max_iter
+        self.restrictions = restrictions
+        self.covariance = covariance
+        self.inference = inference
         names = system.equation_names
         self._names = names
         self._coef_index = pd.MultiIndex.from_tuples(
@@ -113,8 +124,14 @@ class SystemFit:
 
     @cached_property
     def vcov(self) -> pd.DataFrame:
-        """Classical covariance of all coefficients, cross-equation blocks included."""
-        v = self._prepared.coef_covariance(self._est)
+        """Covariance of all coefficients, cross-equation blocks included, of the kind chosen
+        at fit time (:attr:`covariance`: classical, hc0 or hc1)."""
+        if self.covariance == "classical":
+            v = self._prepared.coef_covariance(self._est)
+        else:
+            v = self._prepared.coef_covariance(
+                self._est, self.covariance, self._system._ys, self._system._xs
+            )
         return pd.DataFrame(v, index=self._coef_index, columns=self._coef_index)
 
     @cached_property
@@ -177,6 +194,297 @@ class SystemFit:
         -(NT/2)(1 + ln 2 pi) - (T/2) ln det(S/T). ``-inf`` if S/T is singular."""
         v = self._prepared.log_likelihood(self._est)
         return float("-inf") if v is None else float(v)
+
+    # -- inference on coefficients -------------------------------------------------------------
+    @property
+    def n_restrictions(self) -> int:
+        """Number of restrictions imposed at fit time."""
+        return int(self._est.n_restrictions)
+
+    @cached_property
+    def df_resid(self) -> pd.Series:
+        """Residual degrees of freedom per equation, T - K_i (used by ``inference="t"``)."""
+        return pd.Series(self.n_obs - self._k(), index=self._names, name="df_resid")
+
+    def _coef_df(self) -> np.ndarray:
+        return np.repeat(self.df_resid.to_numpy(), self._k()).astype(float)
+
+    @cached_property
+    def stat(self) -> pd.Series:
+        """coef / se: a z statistic (``inference="z"``) or t statistic (``"t"``). Zero-variance
+        coefficients (fixed by a restriction) get NaN."""
+        se = self.se.to_numpy()
+        with np.errstate(divide="ignore", invalid="ignore"):
+            z = np.where(se > 0, self.coef.to_numpy() / se, np.nan)
+        return pd.Series(z, index=self._coef_index, name="stat")
+
+    @cached_property
+    def pval(self) -> pd.Series:
+        """Two-sided p-values of coef = 0."""
+        z = np.abs(self.stat.to_numpy())
+        if self.inference == "t":
+            p = 2 * stats.t.sf(z, self._coef_df())
+        else:
+            p = 2 * stats.norm.sf(z)
+        return pd.Series(p, index=self._coef_index, name="pval")
+
+    def _crit(self, level: float) -> np.ndarray | float:
+        if not (0 < level < 1):
+            raise InvalidOptionError(f"level must be between 0 and 1, got {level!r}")
+        a = 0.5 + level / 2
+        return stats.t.ppf(a, self._coef_df()) if self.inference == "t" else stats.norm.ppf(a)
+
+    def interval(self, level: float = 0.95) -> pd.DataFrame:
+        """Confidence intervals at ``level``: a DataFrame with columns ``lower`` and ``upper``."""
+        c = self._crit(level)
+        b, se = self.coef.to_numpy(), self.se.to_numpy()
+        return pd.DataFrame({"lower": b - c * se, "upper": b + c * se}, index=self._coef_index)
+
+    def coef_table(self, level: float = 0.95) -> pd.DataFrame:
+        """One row per coefficient: estimate, se, stat, pval, lower, upper."""
+        ci = self.interval(level)
+        return pd.DataFrame(
+            {
+                "estimate": self.coef,
+                "se": self.se,
+                "stat": self.stat,
+                "pval": self.pval,
+                "lower": ci["lower"],
+                "upper": ci["upper"],
+            }
+        )
+
+    # -- hypothesis tests ----------------------------------------------------------------------
+    def wald(self, restrictions: Any, *, form: str = "chi2") -> HypothesisTestResult:
+        """Wald test of linear restrictions R b = q with this fit's covariance.
+
+        ``restrictions`` as in :meth:`EquationSystem.fit`. ``form="chi2"``: W = (Rb - q)'
+        (R V R')^-1 (Rb - q) ~ chi2(m); ``form="F"``: W / m ~ F(m, N T - K + r), r the number of
+        restrictions imposed at fit time.
+        """
+        if form not in ("chi2", "F"):
+            raise InvalidOptionError(f"form must be 'chi2' or 'F', got {form!r}")
+        rset = parse_restrictions(restrictions, self._names, self._system._regressors)
+        r, q = rset.r, rset.q
+        gap = r @ self.coef.to_numpy() - q
+        rvr = r @ self.vcov.to_numpy() @ r.T
+        m = len(q)
+        try:
+            w = float(gap @ np.linalg.solve(rvr, gap))
+        except np.linalg.LinAlgError:
+            raise InvalidOptionError(
+                "R V R' is singular: the restrictions are redundant, or one of them concerns "
+                "coefficients already fixed by the restrictions imposed at fit time"
+            ) from None
+        null = "; ".join(rset.texts)
+        if form == "chi2":
+            return HypothesisTestResult("Wald", null, w, "chi2", m, None, float(stats.chi2.sf(w, m)))
+        dfd = self.n_eq * self.n_obs - self.n_coef + self.n_restrictions
+        f = w / m
+        return HypothesisTestResult("Wald", null, f, "F", m, dfd, float(stats.f.sf(f, m, dfd)))
+
+    def lr_against(self, other: "SystemFit") -> HypothesisTestResult:
+        """Likelihood-ratio test between this fit and a nested one (both iterated ML fits:
+        ``method="ifgls"``, ``omega="ml"``, on the same system). LR = 2 (ll_big - ll_small)
+        ~ chi2(difference in free coefficients)."""
+        for f in (self, other):
+            if f.method != "ifgls" or f.omega_divisor != "ml":
+                raise InvalidOptionError(
+                    "the LR test compares maximum-likelihood fits: fit both with method='ifgls', omega='ml'"
+                )
+        if other._system is not self._system:
+            raise InvalidOptionError("the two fits must come from the same EquationSystem")
+        free_self = self.n_coef - self.n_restrictions
+        free_other = other.n_coef - other.n_restrictions
+        if free_self == free_other:
+            raise InvalidOptionError("the fits have the same number of free coefficients: not nested")
+        big, small = (self, other) if free_self > free_other else (other, self)
+        lr = max(2.0 * (big.loglik - small.loglik), 0.0)
+        df = abs(free_self - free_other)
+        null = "; ".join(small.restrictions.texts) if small.restrictions is not None else "the smaller model"
+        return HypothesisTestResult("LR", null, lr, "chi2", df, None, float(stats.chi2.sf(lr, df)))
+
+    def omega_diagonal_lm(self) -> HypothesisTestResult:
+        """Breusch-Pagan LM test that Omega is diagonal (no cross-equation correlation):
+        T * sum_{i<j} r_ij^2 ~ chi2(N(N-1)/2), r the correlations of the OLS residuals
+        (Breusch & Pagan 1980). A rejection says a system estimator can gain over OLS."""
+        n = self.n_eq
+        if n < 2:
+            raise InvalidOptionError("the diagonality test needs at least two equations")
+        s0 = np.asarray(self._prepared.ols_crossprod())
+        d = np.sqrt(np.diag(s0))
+        r = s0 / np.outer(d, d)
+        iu = np.triu_indices(n, 1)
+        lm = float(self.n_obs * np.sum(r[iu] ** 2))
+        df = n * (n - 1) // 2
+        return HypothesisTestResult(
+            "Breusch-Pagan LM", "Omega is diagonal", lm, "chi2", df, None, float(stats.chi2.sf(lm, df))
+        )
+
+    def omega_diagonal_lr(self) -> HypothesisTestResult:
+        """Likelihood-ratio test that Omega is diagonal: T (sum_i ln s_ii - ln det Omega_ML)
+        ~ chi2(N(N-1)/2), s_ii = SSR_i / T of OLS, Omega_ML from the iterated ML fit of the
+        unrestricted system (refitted here when this fit is not one)."""
+        n, t = self.n_eq, self.n_obs
+        if n < 2:
+            raise InvalidOptionError("the diagonality test needs at least two equations")
+        if self.method == "ifgls" and self.omega_divisor == "ml" and self.n_restrictions == 0 and self.converged:
+            s_ml = np.asarray(self._est.resid_crossprod)
+        else:
+            est = self._prepared.estimate("ifgls", "ml", 1e-12, 10_000)
+            s_ml = np.asarray(est.resid_crossprod)
+        s0 = np.asarray(self._prepared.ols_crossprod())
+        sign, logdet = np.linalg.slogdet(s_ml / t)
+        lr = float(t * (np.sum(np.log(np.diag(s0) / t)) - logdet))
+        df = n * (n - 1) // 2
+        return HypothesisTestResult(
+            "LR", "Omega is diagonal", lr, "chi2", df, None, float(stats.chi2.sf(lr, df))
+        )
+
+    def grs_test(self) -> HypothesisTestResult:
+        """Finite-sample F test that all intercepts are zero, for systems whose equations share
+        the same regressors: a constant and L factors (Gibbons, Ross & Shanken 1989):
+        ((T - N - L) / N) a' S^-1 a / (1 + m' W^-1 m) ~ F(N, T - N - L) under normal errors, with
+        a the intercepts, S the ML residual covariance, m and W the factors' mean and ML
+        covariance."""
+        xs = self._system._xs
+        if not self._prepared.shared_regressors and self.n_eq > 1:
+            raise InvalidOptionError(
+                "the intercept F test needs the same regressors in every equation"
+            )
+        x = xs[0]
+        const = [j for j in range(x.shape[1]) if np.all(x[:, j] == x[0, j]) and x[0, j] != 0]
+        if len(const) != 1:
+            raise InvalidOptionError("the intercept F test needs exactly one constant column")
+        c = const[0]
+        n, t = self.n_eq, self.n_obs
+        factors = np.delete(x, c, axis=1)
+        lf = factors.shape[1]
+        if t - n - lf <= 0:
+            raise InvalidOptionError(f"the test needs T > N + L ({t} <= {n} + {lf})")
+        s0 = np.asarray(self._prepared.ols_crossprod()) / t
+        b = self._est.coef if self.method == "ols" else self._prepared.estimate("ols", "ml", 0.0, 1).coef
+        b = np.asarray(b).reshape(n, -1)
+        alpha = b[:, c] * x[0, c]
+        mu = factors.mean(axis=0)
+        fc = factors - mu
+        w = fc.T @ fc / t
+        quad = float(alpha @ np.linalg.solve(s0, alpha))
+        denom = 1.0 + (float(mu @ np.linalg.solve(w, mu)) if lf else 0.0)
+        f = (t - n - lf) / n * quad / denom
+        dfd = t - n - lf
+        return HypothesisTestResult(
+            "GRS F", "all intercepts are zero", f, "F", n, dfd, float(stats.f.sf(f, n, dfd))
+        )
+
+    # -- system-wide fit measures --------------------------------------------------------------
+    @cached_property
+    def resid_corr(self) -> pd.DataFrame:
+        """Correlation matrix of the residuals across equations."""
+        s = np.asarray(self._est.resid_crossprod)
+        d = np.sqrt(np.diag(s))
+        return pd.DataFrame(s / np.outer(d, d), index=self._names, columns=self._names)
+
+    @cached_property
+    def system_r2(self) -> float:
+        """McElroy's (1977) system R-squared: 1 - e'(Omega^-1 (x) I)e / y'(Omega^-1 (x) D)y,
+        D the centring matrix, Omega = :attr:`omega`."""
+        oinv = np.linalg.inv(self._est.omega)
+        y = np.column_stack(self._system._ys)
+        yc = y - y.mean(axis=0)
+        num = np.sum(oinv * (self._resid.T @ self._resid))
+        den = np.sum(oinv * (yc.T @ yc))
+        return float(1.0 - num / den)
+
+    @property
+    def n_params(self) -> int:
+        """Free parameters counted by AIC and BIC: coefficients less restrictions, plus the
+        N(N+1)/2 distinct elements of Omega."""
+        n = self.n_eq
+        return self.n_coef - self.n_restrictions + n * (n + 1) // 2
+
+    @property
+    def aic(self) -> float:
+        """Akaike information criterion: -2 loglik + 2 n_params."""
+        return -2.0 * self.loglik + 2.0 * self.n_params
+
+    @property
+    def bic(self) -> float:
+        """Schwarz (Bayesian) information criterion: -2 loglik + ln(T) n_params."""
+        return -2.0 * self.loglik + np.log(self.n_obs) * self.n_params
+
+    # -- prediction ----------------------------------------------------------------------------
+    def _new_x(self, new: Any) -> list[np.ndarray]:
+        names = self._names
+        if isinstance(new, dict):
+            missing = [n for n in names if n not in new]
+            if missing:
+                raise ShapeMismatchError(f"new regressors are missing for equations {missing}")
+            items = [new[n] for n in names]
+        else:
+            items = list(new)
+            if len(items) != len(names):
+                raise ShapeMismatchError(f"expected new regressors for {len(names)} equations, got {len(items)}")
+        out = []
+        rows = None
+        for name, regs, x in zip(names, self._system._regressors, items):
+            if isinstance(x, pd.DataFrame):
+                missing = [r for r in regs if r not in x.columns]
+                if missing:
+                    raise ShapeMismatchError(
+                        f"equation '{name}': new data lack regressors {missing}", equation=name
+                    )
+                x = x[regs]
+            a = np.asarray(x, dtype=float)
+            if a.ndim == 1:
+                a = a[None, :] if len(regs) > 1 or rows == 1 else a[:, None]
+            if a.ndim != 2 or a.shape[1] != len(regs):
+                raise ShapeMismatchError(
+                    f"equation '{name}': new regressors have shape {a.shape}; expected (m, {len(regs)})",
+                    equation=name,
+                )
+            if rows is None:
+                rows = a.shape[0]
+            elif a.shape[0] != rows:
+                raise ShapeMismatchError(
+                    f"equation '{name}': {a.shape[0]} new rows, but the first equation has {rows}",
+                    equation=name,
+                )
+            if not np.all(np.isfinite(a)):
+                bad = int(np.argwhere(~np.isfinite(a))[0, 0])
+                raise ShapeMismatchError(
+                    f"equation '{name}': new regressors have NaN or inf at row {bad}", equation=name
+                )
+            out.append(a)
+        return out
+
+    def _new_index(self, new: Any) -> pd.Index | None:
+        vals = new.values() if isinstance(new, dict) else new
+        for x in vals:
+            if isinstance(x, pd.DataFrame):
+                return x.index
+        return None
+
+    def predict(self, new: Any) -> pd.DataFrame:
+        """Predicted means X_new,i b_i for new regressor values: ``new`` maps each equation to
+        an (m, K_i) array or DataFrame (or is a list in equation order). Returns m x N."""
+        xs = self._new_x(new)
+        offs = np.asarray(self._prepared.offsets)
+        b = self.coef.to_numpy()
+        cols = [x @ b[offs[i] : offs[i + 1]] for i, x in enumerate(xs)]
+        return pd.DataFrame(np.column_stack(cols), index=self._new_index(new), columns=self._names)
+
+    def prediction_se(self, new: Any) -> pd.DataFrame:
+        """Standard errors of the predicted means, sqrt(diag(X_new V_ii X_new')), with V this
+        fit's covariance. (For a new observation add the error variance omega_ii.)"""
+        xs = self._new_x(new)
+        offs = np.asarray(self._prepared.offsets)
+        v = self.vcov.to_numpy()
+        cols = []
+        for i, x in enumerate(xs):
+            vi = v[offs[i] : offs[i + 1], offs[i] : offs[i + 1]]
+            cols.append(np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", x, vi, x), 0.0)))
+        return pd.DataFrame(np.column_stack(cols), index=self._new_index(new), columns=self._names)
 
     def __repr__(self) -> str:
         state = ""

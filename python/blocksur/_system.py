@@ -10,13 +10,15 @@ import numpy as np
 import pandas as pd
 
 from . import _core
-from .errors import InvalidOptionError, NotConvergedWarning, ShapeMismatchError
+from .errors import InvalidOptionError, NotConvergedWarning, RestrictionError, ShapeMismatchError
 from ._fit import SystemFit
+from ._restrictions import parse_restrictions
 
 __all__ = ["EquationSystem"]
 
 _METHODS = ("ols", "fgls", "ifgls")
 _DIVISORS = ("ml", "dof")
+_COVARIANCES = ("classical", "hc0", "hc1")
 
 
 def _as_float(name: str, what: str, value: Any, ndim: int) -> np.ndarray:
@@ -172,6 +174,9 @@ class EquationSystem:
         omega: str = "ml",
         tol: float = 1e-10,
         max_iter: int = 1000,
+        restrictions: Any = None,
+        covariance: str = "classical",
+        inference: str = "z",
     ) -> SystemFit:
         """Estimate the system.
 
@@ -191,6 +196,18 @@ class EquationSystem:
         max_iter
             Iterated FGLS stops after this many GLS steps; the fit then has ``converged=False``
             and a :class:`NotConvergedWarning` is issued.
+        restrictions
+            Linear restrictions imposed at estimation, across equations if wanted: a string such
+            as ``"north.price = south.price; north.income + south.income = 1"`` (see
+            :mod:`blocksur._restrictions` for the syntax), a list of such strings, or an
+            ``(R, q)`` pair of arrays over the order of :attr:`SystemFit.coef`. Omega is estimated
+            from residuals that satisfy the restrictions (restricted OLS for the first step).
+        covariance
+            ``"classical"`` (model-based), ``"hc0"`` (heteroskedasticity-robust system sandwich,
+            White 1980) or ``"hc1"`` (HC0 times T / (T - K/N)).
+        inference
+            Reference distribution for coefficient tests and intervals: ``"z"`` (standard normal,
+            asymptotic) or ``"t"`` (Student t with T - K_i degrees of freedom for equation i).
 
         Example
         -------
@@ -214,8 +231,27 @@ class EquationSystem:
             raise InvalidOptionError(f"tol must be a number >= 0, got {tol!r}") from None
         if not (np.isfinite(tol) and tol >= 0):
             raise InvalidOptionError(f"tol must be a finite number >= 0, got {tol!r}")
+        if covariance not in _COVARIANCES:
+            raise InvalidOptionError(
+                f"unknown covariance {covariance!r}: use 'classical', 'hc0' or 'hc1'"
+            )
+        if inference not in ("z", "t"):
+            raise InvalidOptionError(f"unknown inference {inference!r}: use 'z' (normal) or 't'")
         prepared = self._prepare()
-        est = prepared.estimate(method, omega, tol, int(max_iter))
+        rset = None
+        if restrictions is not None:
+            rset = parse_restrictions(restrictions, self._names, self._regressors)
+        try:
+            if rset is None:
+                est = prepared.estimate(method, omega, tol, int(max_iter))
+            else:
+                est = prepared.estimate(method, omega, tol, int(max_iter), rset.r, rset.q)
+        except RestrictionError as err:
+            where = rset.describe(getattr(err, "index", None)) if rset is not None else ""
+            if where:
+                msg = str(err).split(" ", 2)[-1] if str(err).startswith("restriction ") else str(err)
+                raise RestrictionError(f"{where} {msg}", index=err.index) from None
+            raise
         if not est.converged:
             path = est.criterion_path
             warnings.warn(
@@ -226,4 +262,14 @@ class EquationSystem:
                 stacklevel=2,
             )
         resid = _core.residuals(self._ys, self._xs, est.coef)
-        return SystemFit(self, prepared, est, resid, tol=tol, max_iter=int(max_iter))
+        return SystemFit(
+            self,
+            prepared,
+            est,
+            resid,
+            tol=tol,
+            max_iter=int(max_iter),
+            restrictions=rset,
+            covariance=covariance,
+            inference=inference,
+        )

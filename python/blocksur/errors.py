@@ -124,3 +124,26 @@ class BlocksurWarning(UserWarning):
 
 class NotConvergedWarning(BlocksurWarning):
     """An iterated fit stopped at ``max_iter`` before meeting ``tol``."""
+
+
+class RestrictionError(InputError):
+    """A restriction cannot be imposed: unknown names, no coefficient mentioned, redundant or
+    inconsistent with the others.
+
+    Attributes: ``index`` (0-based position of the offending restriction, when one is to blame).
+    """
+
+    index: int | None = None
+
+
+class RestrictionSyntaxError(RestrictionError):
+    """A restriction string could not be read.
+
+    Attributes: ``text`` (the restriction), ``position`` (0-based character offset).
+    """
+
+    text: str | None = None
+    position: int | None = None
+
+
+__all__ += ["RestrictionError", "RestrictionSyntaxError"]
