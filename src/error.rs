@@ -45,6 +45,10 @@ pub enum SurError {
     #[error("{0}")]
     InvalidOption(String),
 
+    /// The caller asked to stop (Ctrl-C).
+    #[error("interrupted")]
+    Interrupted,
+
     /// A failure inside LAPACK that the checks above did not foresee.
     #[error("linear algebra failure in {context}: {detail}")]
     Numerical { context: String, detail: String },
@@ -63,6 +67,7 @@ impl SurError {
             SurError::InvalidRestriction { .. } => "RestrictionError",
             SurError::InvalidOption(_) => "InvalidOptionError",
             SurError::Numerical { .. } => "NumericalError",
+            SurError::Interrupted => "KeyboardInterrupt",
         }
     }
 

@@ -148,6 +148,9 @@ pub struct Estimate {
     pub criterion_path: Vec<f64>,
     /// Number of linearly independent restrictions imposed.
     pub n_restrictions: usize,
+    /// Condition number estimate of the Omega of the final GLS step, in correlation form
+    /// (NaN for OLS, which never inverts Omega).
+    pub omega_cond: f64,
     weight: Weight,
     restricted: Option<RestrictedParts>,
 }
@@ -234,12 +237,14 @@ impl Prepared {
     }
 
     /// One GLS step for a given Omega: the unrestricted delta and the weight.
-    fn gls_step(&self, omega: &Array2<f64>) -> Result<(Array1<f64>, Weight)> {
+    fn gls_step(&self, omega: &Array2<f64>) -> Result<(Array1<f64>, Weight, f64)> {
         let n = self.n_eq();
         let k = self.n_coef();
-        let sigma_inv = invert_omega(omega, &self.names, self.n_obs)?;
+        let (sigma_inv, cond) = invert_omega(omega, &self.names, self.n_obs)?;
         let gram = match &self.cross {
-            CrossProducts::SharedRegressors { .. } => return Ok((Array1::zeros(k), Weight::Shared(omega.clone()))),
+            CrossProducts::SharedRegressors { .. } => {
+                return Ok((Array1::zeros(k), Weight::Shared(omega.clone()), cond))
+            }
             CrossProducts::General { gram } => gram,
         };
         let rho = Array1::from_iter(self.factors.iter().map(|f| f.rho));
@@ -262,7 +267,7 @@ impl Prepared {
             SurError::numerical("Cholesky factorisation of the GLS normal matrix", "not positive definite")
         })?;
         let delta = chol_solve(&chol, &h)?;
-        Ok((delta, Weight::Chol(chol)))
+        Ok((delta, Weight::Chol(chol), cond))
     }
 
     /// W^-1 V for a K x m matrix V.
@@ -325,6 +330,17 @@ impl Prepared {
     /// Runs one estimation, imposing R b = q when given. Omega comes from residuals that satisfy
     /// the restrictions at every stage (restricted OLS for the first step).
     pub fn estimate_restricted(&self, opts: &FitOptions, restrictions: Option<&Restrictions>) -> Result<Estimate> {
+        self.estimate_with(opts, restrictions, &|| false)
+    }
+
+    /// As `estimate_restricted`, asking `cancel` before each GLS step whether to stop (then it
+    /// returns `SurError::Interrupted`).
+    pub fn estimate_with(
+        &self,
+        opts: &FitOptions,
+        restrictions: Option<&Restrictions>,
+        cancel: &(dyn Fn() -> bool + Sync),
+    ) -> Result<Estimate> {
         opts.validate()?;
         let k = self.n_coef();
         let z = self.z();
@@ -350,11 +366,16 @@ impl Prepared {
         let mut n_iter = 0;
         let mut converged = true;
         let mut path = Vec::new();
+        let mut omega_cond = f64::NAN;
         if opts.method != Method::Ols {
             let max_iter = if opts.method == Method::Fgls { 1 } else { opts.max_iter };
             converged = opts.method == Method::Fgls;
             while n_iter < max_iter {
-                let (unrestricted, w) = self.gls_step(&omega)?;
+                if cancel() {
+                    return Err(SurError::Interrupted);
+                }
+                let (unrestricted, w, cond) = self.gls_step(&omega)?;
+                omega_cond = cond;
                 let (new_delta, parts) = impose(unrestricted, &w)?;
                 n_iter += 1;
                 weight = w;
@@ -391,6 +412,7 @@ impl Prepared {
             converged,
             criterion_path: path,
             n_restrictions: restrictions.map_or(0, |r| r.r.nrows()),
+            omega_cond,
             weight,
             restricted,
         })
@@ -502,7 +524,7 @@ impl Prepared {
         }
         let sigma_inv = match &est.weight {
             Weight::Identity => None,
-            _ => Some(invert_omega(&est.omega, &self.names, t)?),
+            _ => Some(invert_omega(&est.omega, &self.names, t)?.0),
         };
         let rinv: Vec<Array2<f64>> = self.factors.iter().map(|f| upper_inverse(&f.r)).collect::<Result<_>>()?;
         let mut meat = Array2::<f64>::zeros((k, k));

@@ -2,48 +2,134 @@
 //! cross-equation covariance with a diagnosis when it is singular.
 
 use ndarray::{s, Array1, Array2, ArrayView2, ShapeBuilder};
-use ndarray_linalg::{Cholesky, Diag, Eigh, InverseC, SolveTriangular, UPLO};
+use ndarray_linalg::{Cholesky, Diag, Eigh, SolveTriangular, UPLO};
 
 use crate::error::{Result, SurError};
 
-/// W'W for a column-major (Fortran-order) T x P matrix, by one BLAS syrk (T P^2 flops, half of a
+/// W'W for a column-major (Fortran-order) T x P matrix, by BLAS syrk (T P^2 flops, half of a
 /// general product), returned full and symmetric.
 pub fn gram(w: ArrayView2<f64>) -> Array2<f64> {
+    gram_blocked(w, &|| false).expect("gram without cancellation cannot be interrupted")
+}
+
+/// W'W accumulated over row blocks sized so that each block takes a fraction of a second; between
+/// blocks `cancel` is asked whether to stop (it returns Err(Interrupted) when it says yes).
+pub fn gram_blocked(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
     let (t, p) = w.dim();
     let mut g = Array2::<f64>::zeros((p, p).f());
     if t == 0 || p == 0 {
-        return g;
+        return Ok(g);
     }
     let owned;
     let w = if w.t().is_standard_layout() {
         w
     } else {
-        owned = w.to_owned().reversed_axes().as_standard_layout().reversed_axes().to_owned();
+        owned = to_fortran(&w.to_owned());
         owned.view()
     };
-    debug_assert!(w.t().is_standard_layout());
-    // SAFETY: `w` is column-major with leading dimension t; `g` is a p x p column-major buffer.
-    unsafe {
-        cblas_sys::cblas_dsyrk(
-            cblas_sys::CBLAS_LAYOUT::CblasColMajor,
-            cblas_sys::CBLAS_UPLO::CblasUpper,
-            cblas_sys::CBLAS_TRANSPOSE::CblasTrans,
-            p as i32,
-            t as i32,
-            1.0,
-            w.as_ptr(),
-            t as i32,
-            0.0,
-            g.as_mut_ptr(),
-            p as i32,
-        );
+    let rows = ((4e9 / (p as f64 * p as f64)) as usize).clamp(256, t.max(256));
+    let mut start = 0;
+    while start < t {
+        let end = (start + rows).min(t);
+        if cancel() {
+            return Err(SurError::Interrupted);
+        }
+        // SAFETY: `w` is column-major with leading dimension t; rows start..end of it form a
+        // (end - start) x p block with the same leading dimension. `g` is p x p column-major.
+        unsafe {
+            cblas_sys::cblas_dsyrk(
+                cblas_sys::CBLAS_LAYOUT::CblasColMajor,
+                cblas_sys::CBLAS_UPLO::CblasUpper,
+                cblas_sys::CBLAS_TRANSPOSE::CblasTrans,
+                p as i32,
+                (end - start) as i32,
+                1.0,
+                w.as_ptr().add(start),
+                t as i32,
+                1.0,
+                g.as_mut_ptr(),
+                p as i32,
+            );
+        }
+        start = end;
     }
     for j in 0..p {
         for i in (j + 1)..p {
             g[[i, j]] = g[[j, i]];
         }
     }
-    g
+    Ok(g)
+}
+
+/// A column-major copy.
+pub fn to_fortran(a: &Array2<f64>) -> Array2<f64> {
+    let mut f = Array2::<f64>::zeros(a.dim().f());
+    f.assign(a);
+    f
+}
+
+/// Estimate of the 1-norm condition number of an upper-triangular matrix (LAPACK trcon).
+pub fn triangular_condition(r: &Array2<f64>) -> f64 {
+    let n = r.nrows() as i32;
+    if n == 0 {
+        return 1.0;
+    }
+    let f = to_fortran(r);
+    let (mut rcond, mut info) = (0.0, 0);
+    let mut work = vec![0.0; 3 * n as usize];
+    let mut iwork = vec![0i32; n as usize];
+    // SAFETY: `f` is n x n column-major; work sizes as LAPACK documents (3n, n).
+    unsafe {
+        lapack_sys::dtrcon_(
+            &(b'1' as std::ffi::c_char),
+            &(b'U' as std::ffi::c_char),
+            &(b'N' as std::ffi::c_char),
+            &n,
+            f.as_ptr(),
+            &n,
+            &mut rcond,
+            work.as_mut_ptr(),
+            iwork.as_mut_ptr(),
+            &mut info,
+        )
+    };
+    if info != 0 || rcond <= 0.0 {
+        f64::INFINITY
+    } else {
+        1.0 / rcond
+    }
+}
+
+/// Estimate of the 1-norm condition number of a symmetric positive definite matrix `a`, from its
+/// lower Cholesky factor `l` (LAPACK pocon).
+pub fn spd_condition(a: &Array2<f64>, l: &Array2<f64>) -> f64 {
+    let n = a.nrows() as i32;
+    if n == 0 {
+        return 1.0;
+    }
+    let anorm = a.columns().into_iter().map(|c| c.iter().map(|v| v.abs()).sum::<f64>()).fold(0.0, f64::max);
+    let (mut rcond, mut info) = (0.0, 0);
+    let mut work = vec![0.0; 3 * n as usize];
+    let mut iwork = vec![0i32; n as usize];
+    // SAFETY: `l` is n x n column-major (from chol_lower); work sizes as LAPACK documents.
+    unsafe {
+        lapack_sys::dpocon_(
+            &(b'L' as std::ffi::c_char),
+            &n,
+            l.as_ptr(),
+            &n,
+            &anorm,
+            &mut rcond,
+            work.as_mut_ptr(),
+            iwork.as_mut_ptr(),
+            &mut info,
+        )
+    };
+    if info != 0 || rcond <= 0.0 {
+        f64::INFINITY
+    } else {
+        1.0 / rcond
+    }
 }
 
 /// Lower Cholesky factor of a symmetric positive definite matrix (only its lower triangle is
@@ -129,10 +215,11 @@ fn singular_floor(n: usize) -> f64 {
     (64.0 * n as f64 * f64::EPSILON).max(1e-13)
 }
 
-/// The inverse of the cross-equation covariance Omega. A singular Omega (an equation that fits
-/// exactly, equations whose residuals are linearly dependent, more equations than observations)
-/// gets an error that names the equations involved and the remedy.
-pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize) -> Result<Array2<f64>> {
+/// The inverse of the cross-equation covariance Omega, and the condition number estimate of
+/// its correlation form. A singular Omega (an equation that fits exactly, equations whose
+/// residuals are linearly dependent, more equations than observations) gets an error that names
+/// the equations involved and the remedy.
+pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize) -> Result<(Array2<f64>, f64)> {
     let n = omega.nrows();
     let diag: Vec<f64> = (0..n).map(|i| omega[[i, i]]).collect();
     let scale = diag.iter().cloned().fold(0.0, f64::max);
@@ -151,22 +238,24 @@ pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize) -> Resu
     }
     // Work on the correlation matrix so the test below does not depend on the units.
     let d: Vec<f64> = diag.iter().map(|v| 1.0 / v.sqrt()).collect();
-    let corr = Array2::from_shape_fn((n, n), |(i, j)| omega[[i, j]] * d[i] * d[j]);
+    let corr = Array2::from_shape_fn((n, n).f(), |(i, j)| omega[[i, j]] * d[i] * d[j]);
     let floor = singular_floor(n);
-    let ok = match corr.cholesky(UPLO::Lower) {
-        Ok(l) => {
-            let lmin = (0..n).map(|i| l[[i, i]]).fold(f64::INFINITY, f64::min);
-            lmin * lmin > floor
+    let factor = chol_lower(corr.clone()).filter(|l| {
+        let lmin = (0..n).map(|i| l[[i, i]]).fold(f64::INFINITY, f64::min);
+        lmin * lmin > floor
+    });
+    let l = match factor {
+        Some(l) => l,
+        None => {
+            diagnose_singular(&corr, names, n_obs, floor)?;
+            chol_lower(corr.clone()).ok_or_else(|| SurError::numerical("Cholesky of Omega", "not positive definite"))?
         }
-        Err(_) => false,
     };
-    if !ok {
-        diagnose_singular(&corr, names, n_obs, floor)?;
-    }
-    let inv = corr.invc().map_err(|e| SurError::numerical("inverse of Omega", e))?;
+    let cond = spd_condition(&corr, &l);
+    let inv = chol_inverse(&l)?;
     let mut out = Array2::from_shape_fn((n, n), |(i, j)| inv[[i, j]] * d[i] * d[j]);
     symmetrize(&mut out);
-    Ok(out)
+    Ok((out, cond))
 }
 
 /// Looks at the smallest eigenvalue of the residual correlation matrix and, when it is below the

@@ -14,7 +14,7 @@ use ndarray::{s, Array1, Array2, ArrayView1, ShapeBuilder};
 use ndarray_linalg::QRInto;
 
 use crate::error::{Result, SurError};
-use crate::linalg::{fmt_num, gram, upper_solve};
+use crate::linalg::{fmt_num, gram, gram_blocked, triangular_condition, upper_solve};
 use crate::system::{Equation, SystemData};
 
 /// What one equation contributes after orthonormalisation.
@@ -31,8 +31,9 @@ pub struct EquationFactor {
     /// Sum of squares of y_i about its mean, and about zero.
     pub tss_centred: f64,
     pub tss_raw: f64,
-    /// Largest/smallest diagonal of the column-scaled R_i: a cheap lower bound on cond(X_i).
-    pub cond_bound: f64,
+    /// Condition number estimate (1-norm, LAPACK trcon) of the column-scaled X_i: about how
+    /// many digits least squares on this equation can lose (log10 of it).
+    pub cond: f64,
 }
 
 /// The cross-products of W = [Q_1 .. Q_N, q_1 .. q_N].
@@ -60,6 +61,12 @@ pub struct Prepared {
 impl Prepared {
     /// Validates the data and runs steps 0 and 1.
     pub fn new(data: &SystemData) -> Result<Prepared> {
+        Self::new_with(data, &|| false)
+    }
+
+    /// As `new`, asking `cancel` between equations and between row blocks of the Gram pass
+    /// whether to stop (then it returns `SurError::Interrupted`).
+    pub fn new_with(data: &SystemData, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Prepared> {
         let t = data.validate()?;
         let n = data.n_eq();
         let mut offsets = vec![0usize];
@@ -79,12 +86,15 @@ impl Prepared {
         let mut w = Array2::<f64>::zeros((t, p).f());
         let mut factors = Vec::with_capacity(n);
         for (i, eq) in data.equations.iter().enumerate() {
+            if cancel() {
+                return Err(SurError::Interrupted);
+            }
             let (q, qy, f) = factor_equation(eq, t)?;
             w.slice_mut(s![.., offsets[i]..offsets[i + 1]]).assign(&q);
             w.column_mut(k + i).assign(&qy);
             factors.push(f);
         }
-        let mut g = gram(w.view());
+        let mut g = gram_blocked(w.view(), cancel)?;
         // Exact by construction: orthonormal columns within an equation, q_i orthogonal to Q_i.
         for i in 0..n {
             let (a, b) = (offsets[i], offsets[i + 1]);
@@ -216,11 +226,8 @@ fn collinear_error(eq: &Equation, r: &Array2<f64>, norms: &[f64], j: usize) -> S
     SurError::Collinear { equation: eq.name.clone(), column: eq.regressors[j].clone(), detail }
 }
 
-fn cond_bound(r: &Array2<f64>, k: usize) -> f64 {
-    let d: Vec<f64> = (0..k).map(|j| r[[j, j]].abs()).collect();
-    let mx = d.iter().cloned().fold(0.0, f64::max);
-    let mn = d.iter().cloned().fold(f64::INFINITY, f64::min);
-    mx / mn
+fn cond_of_scaled(rs: &Array2<f64>, k: usize) -> f64 {
+    triangular_condition(&rs.slice(s![..k, ..k]).to_owned())
 }
 
 /// Step 0 for one equation: Q_i (T x K_i), q_i (T) and the factor.
@@ -240,9 +247,9 @@ fn factor_equation(eq: &Equation, t: usize) -> Result<(Array2<f64>, Array1<f64>,
     let rho = last.abs() * yscale;
     let qy = q.column(k).mapv(|v| v * sign);
     let (tss_centred, tss_raw) = tss(eq.y);
-    let cond = cond_bound(&rs, k);
+    let cond = cond_of_scaled(&rs, k);
     let qx = q.slice(s![.., ..k]).to_owned();
-    Ok((qx, qy, EquationFactor { r, z, rho, spans_constant: false, tss_centred, tss_raw, cond_bound: cond }))
+    Ok((qx, qy, EquationFactor { r, z, rho, spans_constant: false, tss_centred, tss_raw, cond }))
 }
 
 /// Steps 0 and 1 when every equation has the same regressors: one QR for X, and the residual
@@ -269,7 +276,7 @@ fn shared_regressors(data: &SystemData, t: usize) -> Result<(Vec<EquationFactor>
     let zmat = zmat + corr;
     let colsum = q.sum_axis(ndarray::Axis(0));
     let spans = (t as f64 - colsum.dot(&colsum)).abs() <= 1e-9 * t as f64;
-    let cond = cond_bound(&rs, k);
+    let cond = cond_of_scaled(&rs, k);
     let mut factors = Vec::with_capacity(n);
     let mut rho = Vec::with_capacity(n);
     for (i, eq) in data.equations.iter().enumerate() {
@@ -282,7 +289,7 @@ fn shared_regressors(data: &SystemData, t: usize) -> Result<(Vec<EquationFactor>
             spans_constant: spans,
             tss_centred,
             tss_raw,
-            cond_bound: cond,
+            cond,
         });
         rho.push(rh);
     }

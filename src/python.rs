@@ -43,6 +43,35 @@ fn raise(py: Python<'_>, err: SurError) -> PyErr {
     build().unwrap_or_else(|e| e)
 }
 
+/// Checks for Ctrl-C from inside released-GIL work: briefly takes the interpreter lock and runs
+/// Python's signal handlers; keeps the KeyboardInterrupt (or other error) they raise.
+#[derive(Default)]
+struct Interrupt {
+    error: std::sync::Mutex<Option<PyErr>>,
+}
+
+impl Interrupt {
+    fn requested(&self) -> bool {
+        Python::attach(|py| match py.check_signals() {
+            Ok(()) => false,
+            Err(e) => {
+                *self.error.lock().unwrap_or_else(|p| p.into_inner()) = Some(e);
+                true
+            }
+        })
+    }
+
+    fn raise(&self, py: Python<'_>, err: SurError) -> PyErr {
+        if err == SurError::Interrupted {
+            if let Some(e) = self.error.lock().unwrap_or_else(|p| p.into_inner()).take() {
+                return e;
+            }
+            return pyo3::exceptions::PyKeyboardInterrupt::new_err("interrupted");
+        }
+        raise(py, err)
+    }
+}
+
 fn equations<'a>(
     ys: &'a [PyReadonlyArray1<'_, f64>],
     xs: &'a [PyReadonlyArray2<'_, f64>],
@@ -85,8 +114,9 @@ fn prepare(
     regressors: Vec<Vec<String>>,
 ) -> PyResult<PyPrepared> {
     let data = equations(&ys, &xs, &names, &regressors)?;
-    let out = py.detach(|| Prepared::new(&data));
-    out.map(|inner| PyPrepared { inner }).map_err(|e| raise(py, e))
+    let stop = Interrupt::default();
+    let out = py.detach(|| Prepared::new_with(&data, &|| stop.requested()));
+    out.map(|inner| PyPrepared { inner }).map_err(|e| stop.raise(py, e))
 }
 
 /// Residuals y_i - X_i b_i (T x N) from the data.
@@ -137,8 +167,9 @@ impl PyPrepared {
             (None, None) => None,
             _ => return Err(PyValueError::new_err("give both r and q, or neither")),
         };
-        let out = py.detach(|| self.inner.estimate_restricted(&opts, restrictions.as_ref()));
-        out.map(|inner| PyEstimate { inner }).map_err(|e| raise(py, e))
+        let stop = Interrupt::default();
+        let out = py.detach(|| self.inner.estimate_with(&opts, restrictions.as_ref(), &|| stop.requested()));
+        out.map(|inner| PyEstimate { inner }).map_err(|e| stop.raise(py, e))
     }
 
     /// Covariance of the stacked coefficients (K x K): kind "classical", "hc0" or "hc1" (the
@@ -198,8 +229,8 @@ impl PyPrepared {
         self.inner.factors.iter().map(|f| f.tss_raw).collect()
     }
     #[getter]
-    fn cond_bounds(&self) -> Vec<f64> {
-        self.inner.factors.iter().map(|f| f.cond_bound).collect()
+    fn conditions(&self) -> Vec<f64> {
+        self.inner.factors.iter().map(|f| f.cond).collect()
     }
 }
 
@@ -228,6 +259,10 @@ impl PyEstimate {
     #[getter]
     fn criterion_path(&self) -> Vec<f64> {
         self.inner.criterion_path.clone()
+    }
+    #[getter]
+    fn omega_cond(&self) -> f64 {
+        self.inner.omega_cond
     }
     #[getter]
     fn n_restrictions(&self) -> usize {

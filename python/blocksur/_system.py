@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 
 from . import _core
-from .errors import InvalidOptionError, NotConvergedWarning, RestrictionError, ShapeMismatchError
+from .errors import IllConditionedWarning, InvalidOptionError, NotConvergedWarning, RestrictionError, ShapeMismatchError
 from ._fit import SystemFit
 from ._restrictions import parse_restrictions
 
@@ -19,6 +19,8 @@ __all__ = ["EquationSystem"]
 _METHODS = ("ols", "fgls", "ifgls")
 _DIVISORS = ("ml", "dof")
 _COVARIANCES = ("classical", "hc0", "hc1")
+# Condition number above which a warning is issued: about half of the 16 digits may be lost.
+_COND_WARN = 1e8
 
 
 def _as_float(name: str, what: str, value: Any, ndim: int) -> np.ndarray:
@@ -164,7 +166,18 @@ class EquationSystem:
     # -- estimation ----------------------------------------------------------------------------
     def _prepare(self) -> Any:
         if self._prepared is None:
-            self._prepared = _core.prepare(self._ys, self._xs, self._names, self._regressors)
+            prepared = _core.prepare(self._ys, self._xs, self._names, self._regressors)
+            for name, cond in zip(self._names, prepared.conditions):
+                if cond > _COND_WARN:
+                    warnings.warn(
+                        f"equation '{name}': the regressors are ill-conditioned (condition number "
+                        f"estimate {cond:.1e} after scaling each column to unit length), so about "
+                        f"{int(np.log10(cond))} of 16 significant digits of its coefficients may be "
+                        "lost; drop or combine nearly collinear regressors",
+                        IllConditionedWarning,
+                        stacklevel=3,
+                    )
+            self._prepared = prepared
         return self._prepared
 
     def fit(
@@ -252,6 +265,15 @@ class EquationSystem:
                 msg = str(err).split(" ", 2)[-1] if str(err).startswith("restriction ") else str(err)
                 raise RestrictionError(f"{where} {msg}", index=err.index) from None
             raise
+        if est.omega_cond > _COND_WARN:
+            warnings.warn(
+                f"the estimated cross-equation covariance is nearly singular (condition number "
+                f"estimate {est.omega_cond:.1e} of the residual correlation): the residuals of some "
+                "equations are almost linearly dependent, and the GLS weights amplify rounding; "
+                "check for equations that nearly add up to another",
+                IllConditionedWarning,
+                stacklevel=2,
+            )
         if not est.converged:
             path = est.criterion_path
             warnings.warn(

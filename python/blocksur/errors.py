@@ -30,6 +30,7 @@ __all__ = [
     "NumericalError",
     "BlocksurWarning",
     "NotConvergedWarning",
+    "IllConditionedWarning",
 ]
 
 
@@ -126,6 +127,11 @@ class NotConvergedWarning(BlocksurWarning):
     """An iterated fit stopped at ``max_iter`` before meeting ``tol``."""
 
 
+class IllConditionedWarning(BlocksurWarning):
+    """A regressor block or the estimated Omega is ill-conditioned enough to cost digits; the
+    message gives the condition number estimate."""
+
+
 class RestrictionError(InputError):
     """A restriction cannot be imposed: unknown names, no coefficient mentioned, redundant or
     inconsistent with the others.
@@ -147,3 +153,44 @@ class RestrictionSyntaxError(RestrictionError):
 
 
 __all__ += ["RestrictionError", "RestrictionSyntaxError"]
+
+
+class UnknownColumnError(InputError):
+    """An equation names a column that the data do not have.
+
+    Attributes: ``equation``; ``column`` (the missing name); ``suggestions`` (close matches among
+    the data's columns).
+    """
+
+    equation: str | None = None
+    column: str | None = None
+    suggestions: list[str] | None = None
+
+
+class FormulaError(InputError):
+    """An equation's formula could not be read or evaluated.
+
+    Attributes: ``equation``; ``formula`` (the text as given).
+    """
+
+    equation: str | None = None
+    formula: str | None = None
+
+
+class MissingDependencyError(BlocksurError, ImportError):
+    """An optional package needed by the feature used is not installed.
+
+    Attributes: ``package`` (the name to install with pip).
+    """
+
+    package: str | None = None
+
+
+class DataNotKeptError(BlocksurError, RuntimeError):
+    """The fit was restored (from a dict or a pickle) without the data this method needs.
+
+    Refit the system, or keep the regressors when saving (``to_dict(keep_data=True)``).
+    """
+
+
+__all__ += ["UnknownColumnError", "FormulaError", "MissingDependencyError", "DataNotKeptError"]
