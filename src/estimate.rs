@@ -11,6 +11,7 @@ use ndarray::{s, Array1, Array2, ShapeBuilder};
 use crate::error::{Result, SurError};
 use crate::linalg::{chol_inverse, chol_lower, chol_solve, gram, invert_omega, ln_det_spd, symmetrize, upper_inverse};
 use crate::prepare::{CrossProducts, Prepared};
+use crate::cg::{ledoit_wolf, OmegaOp};
 use crate::system::SystemData;
 
 /// The estimator.
@@ -52,6 +53,10 @@ pub enum Divisor {
     Ml,
     /// Omega_ij = S_ij / sqrt((T - K_i)(T - K_j)) (degrees-of-freedom corrected).
     Dof,
+    /// Ledoit-Wolf shrinkage of S/T towards its diagonal.
+    LedoitWolfDiagonal,
+    /// Ledoit-Wolf shrinkage of S/T towards a scaled identity.
+    LedoitWolfIdentity,
 }
 
 impl Divisor {
@@ -59,8 +64,11 @@ impl Divisor {
         match s {
             "ml" => Ok(Divisor::Ml),
             "dof" => Ok(Divisor::Dof),
+            "lw-diagonal" => Ok(Divisor::LedoitWolfDiagonal),
+            "lw-identity" => Ok(Divisor::LedoitWolfIdentity),
             _ => Err(SurError::InvalidOption(format!(
-                "unknown omega divisor '{s}': use 'ml' (divide by T) or 'dof' (divide by sqrt((T-K_i)(T-K_j)))"
+                "unknown omega estimator '{s}': use 'ml' (divide by T), 'dof' (divide by \
+                 sqrt((T-K_i)(T-K_j))), 'lw-diagonal' or 'lw-identity' (Ledoit-Wolf shrinkage)"
             ))),
         }
     }
@@ -68,6 +76,8 @@ impl Divisor {
         match self {
             Divisor::Ml => "ml",
             Divisor::Dof => "dof",
+            Divisor::LedoitWolfDiagonal => "lw-diagonal",
+            Divisor::LedoitWolfIdentity => "lw-identity",
         }
     }
 }
@@ -81,11 +91,15 @@ pub struct FitOptions {
     pub tol: f64,
     /// Iterated FGLS stops after this many GLS steps, converged or not.
     pub max_iter: usize,
+    /// Matrix-free path: conjugate gradients stop at this relative residual ...
+    pub cg_tol: f64,
+    /// ... or after this many iterations.
+    pub cg_max_iter: usize,
 }
 
 impl Default for FitOptions {
     fn default() -> Self {
-        FitOptions { method: Method::Fgls, divisor: Divisor::Ml, tol: 1e-10, max_iter: 1000 }
+        FitOptions { method: Method::Fgls, divisor: Divisor::Ml, tol: 1e-10, max_iter: 1000, cg_tol: 1e-10, cg_max_iter: 5000 }
     }
 }
 
@@ -96,6 +110,9 @@ impl FitOptions {
         }
         if self.max_iter == 0 {
             return Err(SurError::InvalidOption("max_iter must be at least 1".into()));
+        }
+        if !(self.cg_tol.is_finite() && self.cg_tol > 0.0) || self.cg_max_iter == 0 {
+            return Err(SurError::InvalidOption("cg_tol must be > 0 and cg_max_iter at least 1".into()));
         }
         Ok(())
     }
@@ -110,6 +127,8 @@ pub(crate) enum Weight {
     Chol(Array2<f64>),
     /// Shared regressors: M = Omega^-1 (x) I, so M^-1 = Omega (x) I (this Omega).
     Shared(Array2<f64>),
+    /// Matrix-free: M is never formed.
+    MatrixFree,
 }
 
 /// Linear restrictions R b = q on the stacked coefficients.
@@ -123,6 +142,8 @@ pub struct Restrictions {
 /// with Rg = R blockdiag(R_i^-1) and H = Rg W^-1 Rg'.
 #[derive(Debug, Clone)]
 struct RestrictedParts {
+    /// R in the coordinates of b.
+    r: Array2<f64>,
     rg: Array2<f64>,
     wirt: Array2<f64>,
     h_inv: Array2<f64>,
@@ -151,6 +172,12 @@ pub struct Estimate {
     /// Condition number estimate of the Omega of the final GLS step, in correlation form
     /// (NaN for OLS, which never inverts Omega).
     pub omega_cond: f64,
+    /// Ledoit-Wolf intensity of the final Omega (None without shrinkage).
+    pub shrinkage: Option<f64>,
+    /// Matrix-free path: conjugate-gradient iterations of each GLS step, and the relative
+    /// residual of the last solve (empty and NaN on the direct path).
+    pub cg_iterations: Vec<usize>,
+    pub cg_residual: f64,
     weight: Weight,
     restricted: Option<RestrictedParts>,
 }
@@ -187,6 +214,7 @@ impl Prepared {
         let rho: Vec<f64> = self.factors.iter().map(|f| f.rho).collect();
         let mut out = Array2::<f64>::zeros((n, n));
         match &self.cross {
+            CrossProducts::MatrixFree { .. } => return self.crossprod_w(delta),
             CrossProducts::SharedRegressors { qq } => {
                 for i in 0..n {
                     let di = delta.slice(s![self.offsets[i]..self.offsets[i + 1]]);
@@ -224,11 +252,12 @@ impl Prepared {
         self.residual_crossprod(&Array1::zeros(self.n_coef()))
     }
 
-    /// Omega from residual cross-products.
+    /// Omega from residual cross-products (the shrinkage estimators start from S/T and need
+    /// the residual rows as well: see `omega_at`).
     pub fn omega_from(&self, s: &Array2<f64>, divisor: Divisor) -> Array2<f64> {
         let t = self.n_obs as f64;
         match divisor {
-            Divisor::Ml => s / t,
+            Divisor::Ml | Divisor::LedoitWolfDiagonal | Divisor::LedoitWolfIdentity => s / t,
             Divisor::Dof => {
                 let df: Vec<f64> = (0..self.n_eq()).map(|i| t - self.k(i) as f64).collect();
                 Array2::from_shape_fn(s.dim(), |(i, j)| s[[i, j]] / (df[i] * df[j]).sqrt())
@@ -236,16 +265,58 @@ impl Prepared {
         }
     }
 
-    /// One GLS step for a given Omega: the unrestricted delta and the weight.
-    fn gls_step(&self, omega: &Array2<f64>) -> Result<(Array1<f64>, Weight, f64)> {
+    /// Omega at delta (with S = its residual cross-products) for the chosen estimator.
+    /// Shrinkage needs the residual rows: from W on the matrix-free path, else from `data`.
+    fn omega_at(&self, delta: &Array1<f64>, s: &Array2<f64>, divisor: Divisor, data: Option<&SystemData>) -> Result<OmegaEst> {
+        let identity = match divisor {
+            Divisor::Ml | Divisor::Dof => {
+                return Ok(OmegaEst { omega: self.omega_from(s, divisor), shrinkage: None, low_rank: None })
+            }
+            Divisor::LedoitWolfIdentity => true,
+            Divisor::LedoitWolfDiagonal => false,
+        };
+        let rows = match &self.cross {
+            CrossProducts::MatrixFree { .. } => self.residual_rows_w(delta),
+            _ => {
+                let data = data.ok_or_else(|| {
+                    SurError::InvalidOption("Ledoit-Wolf shrinkage needs the data (the residual rows)".into())
+                })?;
+                let coef = self.coef_from_gamma(&(&self.z() + delta))?;
+                data.residuals(coef.as_slice().expect("contiguous"))
+            }
+        };
+        let (omega, lambda, target) = ledoit_wolf(&rows, s, identity);
+        let t = self.n_obs as f64;
+        let low_rank = matches!(self.cross, CrossProducts::MatrixFree { .. })
+            .then(|| (target.mapv(|v| v * lambda), (1.0 - lambda) / t, rows));
+        Ok(OmegaEst { omega, shrinkage: Some(lambda), low_rank })
+    }
+
+    /// One GLS step for a given Omega: the unrestricted delta, the weight, the condition
+    /// estimate of Omega, and (matrix-free) the CG iterations and residual.
+    fn gls_step(
+        &self,
+        est: &OmegaEst,
+        start: &Array1<f64>,
+        opts: &FitOptions,
+        cancel: &(dyn Fn() -> bool + Sync),
+    ) -> Result<(Array1<f64>, Weight, f64, Option<(usize, f64)>)> {
         let n = self.n_eq();
         let k = self.n_coef();
+        let omega = &est.omega;
+        if let CrossProducts::MatrixFree { .. } = &self.cross {
+            let lr = est.low_rank.as_ref().map(|(d, c, e)| (d, *c, e));
+            let (op, cond) = OmegaOp::new(self, omega, lr)?;
+            let (delta, its, res) = self.cg_solve(&op, start, opts.cg_tol, opts.cg_max_iter, cancel)?;
+            return Ok((delta, Weight::MatrixFree, cond, Some((its, res))));
+        }
         let (sigma_inv, cond) = invert_omega(omega, &self.names, self.n_obs)?;
         let gram = match &self.cross {
             CrossProducts::SharedRegressors { .. } => {
-                return Ok((Array1::zeros(k), Weight::Shared(omega.clone()), cond))
+                return Ok((Array1::zeros(k), Weight::Shared(omega.clone()), cond, None))
             }
             CrossProducts::General { gram } => gram,
+            CrossProducts::MatrixFree { .. } => unreachable!(),
         };
         let rho = Array1::from_iter(self.factors.iter().map(|f| f.rho));
         let mut m = Array2::<f64>::zeros((k, k).f());
@@ -267,13 +338,14 @@ impl Prepared {
             SurError::numerical("Cholesky factorisation of the GLS normal matrix", "not positive definite")
         })?;
         let delta = chol_solve(&chol, &h)?;
-        Ok((delta, Weight::Chol(chol), cond))
+        Ok((delta, Weight::Chol(chol), cond, None))
     }
 
     /// W^-1 V for a K x m matrix V.
     fn weight_solve(&self, w: &Weight, v: &Array2<f64>) -> Result<Array2<f64>> {
         match w {
             Weight::Identity => Ok(v.clone()),
+            Weight::MatrixFree => Err(matrix_free_unsupported("this covariance or restriction")),
             Weight::Chol(l) => chol_solve_mat(l, v),
             Weight::Shared(omega) => {
                 let mut out = Array2::<f64>::zeros(v.dim());
@@ -319,7 +391,7 @@ impl Prepared {
         let h_inv = chol_inverse(&hl)?;
         let gap = rg.dot(delta) - qd;
         let out = delta - &wirt.dot(&h_inv.dot(&gap));
-        Ok((out, RestrictedParts { rg: rg.clone(), wirt, h_inv }))
+        Ok((out, RestrictedParts { r: Array2::zeros((0, 0)), rg: rg.clone(), wirt, h_inv }))
     }
 
     /// Runs one estimation without restrictions.
@@ -330,15 +402,17 @@ impl Prepared {
     /// Runs one estimation, imposing R b = q when given. Omega comes from residuals that satisfy
     /// the restrictions at every stage (restricted OLS for the first step).
     pub fn estimate_restricted(&self, opts: &FitOptions, restrictions: Option<&Restrictions>) -> Result<Estimate> {
-        self.estimate_with(opts, restrictions, &|| false)
+        self.estimate_with(opts, restrictions, None, &|| false)
     }
 
     /// As `estimate_restricted`, asking `cancel` before each GLS step whether to stop (then it
-    /// returns `SurError::Interrupted`).
+    /// returns `SurError::Interrupted`). `data` (the system's rows) is needed by Ledoit-Wolf
+    /// shrinkage on the direct path.
     pub fn estimate_with(
         &self,
         opts: &FitOptions,
         restrictions: Option<&Restrictions>,
+        data: Option<&SystemData>,
         cancel: &(dyn Fn() -> bool + Sync),
     ) -> Result<Estimate> {
         opts.validate()?;
@@ -346,6 +420,9 @@ impl Prepared {
         let z = self.z();
         let constraint = match restrictions {
             None => None,
+            Some(_) if matches!(self.cross, CrossProducts::MatrixFree { .. }) => {
+                return Err(matrix_free_unsupported("restrictions"))
+            }
             Some(rs) => {
                 rs.validate(k)?;
                 let rg = self.restrictions_in_basis(&rs.r)?;
@@ -362,11 +439,13 @@ impl Prepared {
         let (mut delta, mut restricted) = impose(Array1::zeros(k), &Weight::Identity)?;
         let mut weight = Weight::Identity;
         let mut s = self.residual_crossprod(&delta);
-        let mut omega = self.omega_from(&s, opts.divisor);
+        let mut oest = self.omega_at(&delta, &s, opts.divisor, data)?;
         let mut n_iter = 0;
         let mut converged = true;
         let mut path = Vec::new();
         let mut omega_cond = f64::NAN;
+        let mut cg_iterations = Vec::new();
+        let mut cg_residual = f64::NAN;
         if opts.method != Method::Ols {
             let max_iter = if opts.method == Method::Fgls { 1 } else { opts.max_iter };
             converged = opts.method == Method::Fgls;
@@ -374,8 +453,12 @@ impl Prepared {
                 if cancel() {
                     return Err(SurError::Interrupted);
                 }
-                let (unrestricted, w, cond) = self.gls_step(&omega)?;
+                let (unrestricted, w, cond, cg) = self.gls_step(&oest, &delta, opts, cancel)?;
                 omega_cond = cond;
+                if let Some((its, res)) = cg {
+                    cg_iterations.push(its);
+                    cg_residual = res;
+                }
                 let (new_delta, parts) = impose(unrestricted, &w)?;
                 n_iter += 1;
                 weight = w;
@@ -395,9 +478,13 @@ impl Prepared {
                     break;
                 }
                 if n_iter < max_iter {
-                    omega = self.omega_from(&s, opts.divisor);
+                    oest = self.omega_at(&delta, &s, opts.divisor, data)?;
                 }
             }
+        }
+        let OmegaEst { omega, shrinkage, .. } = oest;
+        if let (Some(p), Some(rs)) = (restricted.as_mut(), restrictions) {
+            p.r = rs.r.clone();
         }
         let gamma = &z + &delta;
         let coef = self.coef_from_gamma(&gamma)?;
@@ -413,6 +500,9 @@ impl Prepared {
             criterion_path: path,
             n_restrictions: restrictions.map_or(0, |r| r.r.nrows()),
             omega_cond,
+            shrinkage,
+            cg_iterations,
+            cg_residual,
             weight,
             restricted,
         })
@@ -434,6 +524,9 @@ impl Prepared {
 
     /// Classical covariance of gamma, unrestricted: W^-1 for GLS, omega_ij Q_i'Q_j for OLS.
     fn classical_gamma_cov(&self, est: &Estimate) -> Result<Array2<f64>> {
+        if matches!(self.cross, CrossProducts::MatrixFree { .. }) {
+            return Err(matrix_free_unsupported("the full covariance matrix"));
+        }
         if !matches!(est.weight, Weight::Identity) {
             return self.weight_inverse(&est.weight);
         }
@@ -451,6 +544,7 @@ impl Prepared {
                         blk *= est.omega[[i, j]];
                     }
                     CrossProducts::SharedRegressors { .. } => blk.diag_mut().fill(est.omega[[i, j]]),
+                    CrossProducts::MatrixFree { .. } => unreachable!(),
                 }
             }
         }
@@ -568,6 +662,11 @@ impl Prepared {
         let rinv: Vec<Array2<f64>> = self.factors.iter().map(|f| upper_inverse(&f.r)).collect::<Result<_>>()?;
         let left = self.block_left_multiply(&rinv, &v);
         let mut out = self.block_left_multiply(&rinv, &left.t().to_owned());
+        if let Some(p) = est.restricted.as_ref().filter(|p| p.r.nrows() > 0) {
+            // R V R' = 0 in exact arithmetic; projecting onto the null space of R removes the
+            // rounding, so a coefficient fixed by a restriction gets exactly zero variance.
+            out = project_out(&p.r, &out)?;
+        }
         symmetrize(&mut out);
         Ok(out)
     }
@@ -647,6 +746,44 @@ impl Restrictions {
         }
         Ok(())
     }
+}
+
+/// Omega and what the matrix-free path needs to apply its inverse cheaply.
+struct OmegaEst {
+    omega: Array2<f64>,
+    shrinkage: Option<f64>,
+    /// (diagonal part, weight c, residual rows E) when Omega = diag + c E'E.
+    low_rank: Option<(Array1<f64>, f64, Array2<f64>)>,
+}
+
+fn matrix_free_unsupported(what: &str) -> SurError {
+    SurError::InvalidOption(format!(
+        "{what} is not available on the matrix-free (conjugate-gradient) path, which never forms \
+         K x K matrices; use the direct solver (raise the memory limit) or, for standard errors, \
+         the per-equation conjugate-gradient standard errors"
+    ))
+}
+
+/// P V P' with P = I - R'(R R')^-1 R, the orthogonal projector onto the null space of R.
+fn project_out(r: &Array2<f64>, v: &Array2<f64>) -> Result<Array2<f64>> {
+    let mut rrt = r.dot(&r.t());
+    symmetrize(&mut rrt);
+    let l = chol_lower(crate::linalg::to_fortran(&rrt))
+        .ok_or_else(|| SurError::InvalidRestriction { index: None, detail: "the restrictions are linearly dependent".into() })?;
+    let a = chol_solve_mat(&l, r)?; // (R R')^-1 R, m x K
+    // P V = V - R' (a V); then (P V) P' = PV - (PV a') R
+    let pv = v - &r.t().dot(&a.dot(v));
+    let out = &pv - &pv.dot(&a.t()).dot(r);
+    // exact zeros where a restriction fixes a single coefficient
+    let mut out = out;
+    for row in r.rows() {
+        let nz: Vec<usize> = row.iter().enumerate().filter(|(_, x)| **x != 0.0).map(|(j, _)| j).collect();
+        if nz.len() == 1 {
+            out.row_mut(nz[0]).fill(0.0);
+            out.column_mut(nz[0]).fill(0.0);
+        }
+    }
+    Ok(out)
 }
 
 /// Solves (L L') X = B for a K x m right-hand side.

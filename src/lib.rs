@@ -20,10 +20,13 @@
 //! assert!(fit.converged);
 //! ```
 
+pub mod batch;
+pub mod cg;
 pub mod error;
 pub mod estimate;
 pub mod linalg;
 pub mod prepare;
+pub mod stream;
 pub mod system;
 
 #[cfg(feature = "python")]
@@ -32,6 +35,7 @@ mod python;
 pub use error::{Result, SurError};
 pub use estimate::{CovKind, Divisor, Estimate, FitOptions, Method, Restrictions};
 pub use prepare::{CrossProducts, EquationFactor, Prepared};
+pub use stream::{CrossStats, Pass2Basis, RowFactors};
 pub use system::{Equation, SystemData};
 
 // Link the BLAS/LAPACK implementation (system OpenBLAS).

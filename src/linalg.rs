@@ -2,7 +2,7 @@
 //! cross-equation covariance with a diagnosis when it is singular.
 
 use ndarray::{s, Array1, Array2, ArrayView2, ShapeBuilder};
-use ndarray_linalg::{Cholesky, Diag, Eigh, SolveTriangular, UPLO};
+use ndarray_linalg::{Eigh, UPLO};
 
 use crate::error::{Result, SurError};
 
@@ -197,17 +197,37 @@ pub fn chol_inverse(l: &Array2<f64>) -> Result<Array2<f64>> {
     Ok(a)
 }
 
-/// The inverse of an upper-triangular matrix.
+/// The inverse of an upper-triangular matrix (column by column back substitution).
 pub fn upper_inverse(r: &Array2<f64>) -> Result<Array2<f64>> {
-    let eye = Array2::<f64>::eye(r.nrows());
-    r.solve_triangular(UPLO::Upper, Diag::NonUnit, &eye)
-        .map_err(|e| SurError::numerical("triangular inverse", e))
+    let n = r.nrows();
+    let mut inv = Array2::<f64>::zeros((n, n));
+    for j in 0..n {
+        let mut e = Array1::<f64>::zeros(n);
+        e[j] = 1.0;
+        inv.column_mut(j).assign(&upper_solve(r, &e)?);
+    }
+    Ok(inv)
 }
 
-/// Solves R x = b for upper-triangular R.
+/// Solves R x = b for upper-triangular R by back substitution.
 pub fn upper_solve(r: &Array2<f64>, b: &Array1<f64>) -> Result<Array1<f64>> {
-    r.solve_triangular(UPLO::Upper, Diag::NonUnit, b)
-        .map_err(|e| SurError::numerical("triangular solve", e))
+    let n = r.nrows();
+    if r.ncols() != n || b.len() != n {
+        return Err(SurError::numerical("triangular solve", "shapes do not match"));
+    }
+    let mut x = b.clone();
+    for i in (0..n).rev() {
+        let mut acc = x[i];
+        for j in (i + 1)..n {
+            acc -= r[[i, j]] * x[j];
+        }
+        let d = r[[i, i]];
+        if d == 0.0 || !d.is_finite() {
+            return Err(SurError::numerical("triangular solve", "zero on the diagonal"));
+        }
+        x[i] = acc / d;
+    }
+    Ok(x)
 }
 
 /// Relative eigenvalue floor below which Omega counts as singular.
@@ -310,7 +330,7 @@ pub fn symmetrize(a: &mut Array2<f64>) {
 
 /// ln det of a symmetric positive definite matrix by Cholesky; None when it is not PD.
 pub fn ln_det_spd(a: &Array2<f64>) -> Option<f64> {
-    let l = a.cholesky(UPLO::Lower).ok()?;
+    let l = chol_lower(to_fortran(a))?;
     Some((0..a.nrows()).map(|i| 2.0 * l[[i, i]].ln()).sum())
 }
 

@@ -41,6 +41,9 @@ pub struct EquationFactor {
 pub enum CrossProducts {
     /// The full P x P Gram matrix W'W.
     General { gram: Array2<f64> },
+    /// W itself (T x P, column-major), for systems whose K x K matrices would not fit in
+    /// memory: every product with the GLS matrix goes through W (conjugate gradients).
+    MatrixFree { w: Array2<f64> },
     /// All equations share one regressor matrix: Q_i'Q_j = I and Q_i'q_j = 0, so only the N x N
     /// matrix q_i'q_j is needed.
     SharedRegressors { qq: Array2<f64> },
@@ -67,6 +70,16 @@ impl Prepared {
     /// As `new`, asking `cancel` between equations and between row blocks of the Gram pass
     /// whether to stop (then it returns `SurError::Interrupted`).
     pub fn new_with(data: &SystemData, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Prepared> {
+        Self::build(data, cancel, false)
+    }
+
+    /// As `new_with`, but keeps W (T x P) instead of forming the P x P Gram matrix: the
+    /// matrix-free path for systems too large for K x K matrices.
+    pub fn new_matrix_free(data: &SystemData, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Prepared> {
+        Self::build(data, cancel, true)
+    }
+
+    fn build(data: &SystemData, cancel: &(dyn Fn() -> bool + Sync), matrix_free: bool) -> Result<Prepared> {
         let t = data.validate()?;
         let n = data.n_eq();
         let mut offsets = vec![0usize];
@@ -77,7 +90,7 @@ impl Prepared {
         let names: Vec<String> = data.equations.iter().map(|e| e.name.clone()).collect();
         let regressors: Vec<Vec<String>> = data.equations.iter().map(|e| e.regressors.clone()).collect();
 
-        if n > 1 && data.identical_regressors() {
+        if n > 1 && !matrix_free && data.identical_regressors() {
             let (factors, qq) = shared_regressors(data, t)?;
             return Ok(Prepared { n_obs: t, names, regressors, offsets, factors, cross: CrossProducts::SharedRegressors { qq } });
         }
@@ -94,7 +107,16 @@ impl Prepared {
             w.column_mut(k + i).assign(&qy);
             factors.push(f);
         }
+        let colsum = w.sum_axis(ndarray::Axis(0));
+        for (i, f) in factors.iter_mut().enumerate() {
+            let s2: f64 = colsum.slice(s![offsets[i]..offsets[i + 1]]).iter().map(|v| v * v).sum();
+            f.spans_constant = (t as f64 - s2).abs() <= 1e-9 * t as f64;
+        }
+        if matrix_free {
+            return Ok(Prepared { n_obs: t, names, regressors, offsets, factors, cross: CrossProducts::MatrixFree { w } });
+        }
         let mut g = gram_blocked(w.view(), cancel)?;
+        drop(w);
         // Exact by construction: orthonormal columns within an equation, q_i orthogonal to Q_i.
         for i in 0..n {
             let (a, b) = (offsets[i], offsets[i + 1]);
@@ -102,12 +124,6 @@ impl Prepared {
             g.slice_mut(s![a..b, k + i]).fill(0.0);
             g.slice_mut(s![k + i, a..b]).fill(0.0);
             g[[k + i, k + i]] = 1.0;
-        }
-        let colsum = w.sum_axis(ndarray::Axis(0));
-        drop(w);
-        for (i, f) in factors.iter_mut().enumerate() {
-            let s2: f64 = colsum.slice(s![offsets[i]..offsets[i + 1]]).iter().map(|v| v * v).sum();
-            f.spans_constant = (t as f64 - s2).abs() <= 1e-9 * t as f64;
         }
         Ok(Prepared { n_obs: t, names, regressors, offsets, factors, cross: CrossProducts::General { gram: g } })
     }
@@ -146,7 +162,7 @@ impl Prepared {
 }
 
 /// Column 2-norm, computed with scaling so that huge or tiny columns neither overflow nor underflow.
-fn norm(v: ArrayView1<f64>) -> f64 {
+pub(crate) fn norm(v: ArrayView1<f64>) -> f64 {
     let m = v.iter().fold(0.0f64, |a, b| a.max(b.abs()));
     if m == 0.0 {
         return 0.0;
@@ -178,11 +194,7 @@ fn scaled_qr(eq: &Equation, extra: &[ArrayView1<f64>], t: usize) -> Result<(Arra
         let col = eq.x.column(j);
         let nj = norm(col);
         if nj == 0.0 {
-            return Err(SurError::Collinear {
-                equation: eq.name.clone(),
-                column: eq.regressors[j].clone(),
-                detail: "is zero in every row".into(),
-            });
+            return Err(zero_column(&eq.name, &eq.regressors[j]));
         }
         a.column_mut(j).zip_mut_with(&col, |d, s| *d = s / nj);
         norms.push(nj);
@@ -191,17 +203,33 @@ fn scaled_qr(eq: &Equation, extra: &[ArrayView1<f64>], t: usize) -> Result<(Arra
         a.column_mut(k + m).assign(e);
     }
     let (q, r) = a.qr_into().map_err(|e| SurError::numerical(&format!("QR of equation '{}'", eq.name), e))?;
-    let tol = rank_tol(t, k);
-    for j in 0..k {
-        if r[[j, j]].abs() <= tol {
-            return Err(collinear_error(eq, &r, &norms, j));
-        }
-    }
+    check_rank(&eq.name, &eq.regressors, &r, &norms, t)?;
     Ok((q, r, norms))
 }
 
+fn zero_column(name: &str, column: &str) -> SurError {
+    SurError::Collinear { equation: name.to_string(), column: column.to_string(), detail: "is zero in every row".into() }
+}
+
+/// Rank check on the R factor of the column-scaled regressors (its first K columns).
+pub(crate) fn check_rank(name: &str, regressors: &[String], rs: &Array2<f64>, norms: &[f64], t: usize) -> Result<()> {
+    let k = norms.len();
+    for (j, nj) in norms.iter().enumerate() {
+        if *nj == 0.0 {
+            return Err(zero_column(name, &regressors[j]));
+        }
+    }
+    let tol = rank_tol(t, k);
+    for j in 0..k {
+        if rs[[j, j]].abs() <= tol {
+            return Err(collinear_error(name, regressors, rs, norms, j));
+        }
+    }
+    Ok(())
+}
+
 /// Names the earlier columns that column j is a combination of, with the weights in data units.
-fn collinear_error(eq: &Equation, r: &Array2<f64>, norms: &[f64], j: usize) -> SurError {
+fn collinear_error(name: &str, regressors: &[String], r: &Array2<f64>, norms: &[f64], j: usize) -> SurError {
     let detail = if j == 0 {
         "is numerically zero".to_string()
     } else {
@@ -213,7 +241,7 @@ fn collinear_error(eq: &Equation, r: &Array2<f64>, norms: &[f64], j: usize) -> S
                 let wmax = w.iter().fold(0.0f64, |a, b| a.max(b.abs()));
                 let terms: Vec<String> = (0..j)
                     .filter(|&l| w[l].abs() > 1e-8 * wmax)
-                    .map(|l| format!("{} * '{}'", fmt_num(w[l]), eq.regressors[l]))
+                    .map(|l| format!("{} * '{}'", fmt_num(w[l]), regressors[l]))
                     .collect();
                 format!(
                     "is a linear combination of earlier regressors (column {j} = {})",
@@ -223,10 +251,10 @@ fn collinear_error(eq: &Equation, r: &Array2<f64>, norms: &[f64], j: usize) -> S
             Err(_) => "is a linear combination of earlier regressors".to_string(),
         }
     };
-    SurError::Collinear { equation: eq.name.clone(), column: eq.regressors[j].clone(), detail }
+    SurError::Collinear { equation: name.to_string(), column: regressors[j].clone(), detail }
 }
 
-fn cond_of_scaled(rs: &Array2<f64>, k: usize) -> f64 {
+pub(crate) fn cond_of_scaled(rs: &Array2<f64>, k: usize) -> f64 {
     triangular_condition(&rs.slice(s![..k, ..k]).to_owned())
 }
 

@@ -9,6 +9,7 @@ use pyo3::types::PyDict;
 use crate::error::SurError;
 use crate::estimate::{CovKind, Divisor, Estimate, FitOptions, Method, Restrictions};
 use crate::prepare::Prepared;
+use crate::stream::{CrossStats, Pass2Basis, RowFactors};
 use crate::system::{Equation, SystemData};
 
 /// Raises the blocksur exception class for a core error, with its details as attributes.
@@ -161,6 +162,7 @@ impl PyPrepared {
             divisor: Divisor::parse(divisor).map_err(|e| raise(py, e))?,
             tol,
             max_iter,
+            ..Default::default()
         };
         let restrictions = match (r, q) {
             (Some(r), Some(q)) => Some(Restrictions { r: r.as_array().to_owned(), q: q.as_array().to_owned() }),
@@ -168,7 +170,7 @@ impl PyPrepared {
             _ => return Err(PyValueError::new_err("give both r and q, or neither")),
         };
         let stop = Interrupt::default();
-        let out = py.detach(|| self.inner.estimate_with(&opts, restrictions.as_ref(), &|| stop.requested()));
+        let out = py.detach(|| self.inner.estimate_with(&opts, restrictions.as_ref(), None, &|| stop.requested()));
         out.map(|inner| PyEstimate { inner }).map_err(|e| stop.raise(py, e))
     }
 
@@ -278,10 +280,200 @@ impl PyEstimate {
     }
 }
 
+type Factors<'py> = (usize, Vec<PyReadonlyArray2<'py, f64>>);
+
+fn factors_from_py(f: &Factors<'_>) -> RowFactors {
+    RowFactors { n_rows: f.0, r: f.1.iter().map(|a| a.as_array().to_owned()).collect() }
+}
+
+fn factors_to_py<'py>(py: Python<'py>, f: RowFactors) -> (usize, Vec<Bound<'py, PyArray2<f64>>>) {
+    (f.n_rows, f.r.into_iter().map(|a| a.into_pyarray(py)).collect())
+}
+
+fn stats_from_py(d: &Bound<'_, PyDict>) -> PyResult<CrossStats> {
+    let get = |k: &str| -> PyResult<Bound<'_, pyo3::PyAny>> {
+        d.get_item(k)?.ok_or_else(|| PyValueError::new_err(format!("pass-2 summary lacks '{k}'")))
+    };
+    Ok(CrossStats {
+        n_rows: get("n_rows")?.extract()?,
+        gram: get("gram")?.extract::<PyReadonlyArray2<f64>>()?.as_array().to_owned(),
+        colsum: get("colsum")?.extract::<PyReadonlyArray1<f64>>()?.as_array().to_owned(),
+        y_mean: get("y_mean")?.extract()?,
+        y_m2: get("y_m2")?.extract()?,
+        y_raw: get("y_raw")?.extract()?,
+    })
+}
+
+fn stats_to_py(py: Python<'_>, s: CrossStats) -> PyResult<Bound<'_, PyDict>> {
+    let d = PyDict::new(py);
+    d.set_item("n_rows", s.n_rows)?;
+    d.set_item("gram", s.gram.into_pyarray(py))?;
+    d.set_item("colsum", s.colsum.into_pyarray(py))?;
+    d.set_item("y_mean", s.y_mean)?;
+    d.set_item("y_m2", s.y_m2)?;
+    d.set_item("y_raw", s.y_raw)?;
+    Ok(d)
+}
+
+fn default_names(n: usize, xs: &[PyReadonlyArray2<'_, f64>]) -> (Vec<String>, Vec<Vec<String>>) {
+    let names = (0..n).map(|i| format!("eq{i}")).collect();
+    let regs = xs.iter().map(|x| (0..x.as_array().ncols()).map(|j| format!("x{j}")).collect()).collect();
+    (names, regs)
+}
+
+/// Pass 1 of a chunked fit on one chunk: (n_rows, [R of [X_i | y_i] per equation]).
+#[pyfunction]
+#[pyo3(signature = (ys, xs, names, regressors, row_offset=0))]
+fn pass1_chunk<'py>(
+    py: Python<'py>,
+    ys: Vec<PyReadonlyArray1<'py, f64>>,
+    xs: Vec<PyReadonlyArray2<'py, f64>>,
+    names: Vec<String>,
+    regressors: Vec<Vec<String>>,
+    row_offset: usize,
+) -> PyResult<(usize, Vec<Bound<'py, PyArray2<f64>>>)> {
+    let data = equations(&ys, &xs, &names, &regressors)?;
+    let out = py.detach(|| RowFactors::from_chunk(&data, row_offset)).map_err(|e| raise(py, e))?;
+    Ok(factors_to_py(py, out))
+}
+
+/// Merges two pass-1 summaries.
+#[pyfunction]
+fn pass1_merge<'py>(py: Python<'py>, a: Factors<'py>, b: Factors<'py>) -> PyResult<(usize, Vec<Bound<'py, PyArray2<f64>>>)> {
+    let (a, b) = (factors_from_py(&a), factors_from_py(&b));
+    let out = py.detach(|| a.merge(b)).map_err(|e| raise(py, e))?;
+    Ok(factors_to_py(py, out))
+}
+
+/// Pass 2 of a chunked fit on one chunk, given the merged pass-1 summary: a dict of sums.
+#[pyfunction]
+#[pyo3(signature = (ys, xs, factors, row_offset=0))]
+fn pass2_chunk<'py>(
+    py: Python<'py>,
+    ys: Vec<PyReadonlyArray1<'py, f64>>,
+    xs: Vec<PyReadonlyArray2<'py, f64>>,
+    factors: Factors<'py>,
+    row_offset: usize,
+) -> PyResult<Bound<'py, PyDict>> {
+    let (names, regs) = default_names(ys.len(), &xs);
+    let data = equations(&ys, &xs, &names, &regs)?;
+    let f = factors_from_py(&factors);
+    let out = py
+        .detach(|| Pass2Basis::new(&f).and_then(|b| CrossStats::from_chunk(&data, &b, row_offset)))
+        .map_err(|e| raise(py, e))?;
+    stats_to_py(py, out)
+}
+
+/// Merges two pass-2 summaries.
+#[pyfunction]
+fn pass2_merge<'py>(py: Python<'py>, a: Bound<'py, PyDict>, b: Bound<'py, PyDict>) -> PyResult<Bound<'py, PyDict>> {
+    let (a, b) = (stats_from_py(&a)?, stats_from_py(&b)?);
+    let out = py.detach(|| a.merge(b)).map_err(|e| raise(py, e))?;
+    stats_to_py(py, out)
+}
+
+/// The prepared system from merged pass-1 and pass-2 summaries of all rows.
+#[pyfunction]
+fn prepare_from_summaries(
+    py: Python<'_>,
+    names: Vec<String>,
+    regressors: Vec<Vec<String>>,
+    factors: Factors<'_>,
+    stats: Bound<'_, PyDict>,
+) -> PyResult<PyPrepared> {
+    let f = factors_from_py(&factors);
+    let st = stats_from_py(&stats)?;
+    py.detach(|| Prepared::from_summaries(names, regressors, &f, &st))
+        .map(|inner| PyPrepared { inner })
+        .map_err(|e| raise(py, e))
+}
+
+/// Fits many independent systems on `threads` threads. Returns a dict of arrays (coef, se:
+/// G x K; omega: G x N x N; n_iter, converged, loglik: G) with NaN rows for failed systems, and
+/// `errors`: a list with None or (exception class name, message) per system.
+#[pyfunction]
+#[pyo3(signature = (ys, xs, method, divisor, tol, max_iter, threads))]
+#[allow(clippy::too_many_arguments)]
+fn fit_many<'py>(
+    py: Python<'py>,
+    ys: Vec<Vec<PyReadonlyArray1<'py, f64>>>,
+    xs: Vec<Vec<PyReadonlyArray2<'py, f64>>>,
+    method: &str,
+    divisor: &str,
+    tol: f64,
+    max_iter: usize,
+    threads: usize,
+) -> PyResult<Bound<'py, PyDict>> {
+    let opts = FitOptions {
+        method: Method::parse(method).map_err(|e| raise(py, e))?,
+        divisor: Divisor::parse(divisor).map_err(|e| raise(py, e))?,
+        tol,
+        max_iter,
+        ..Default::default()
+    };
+    if ys.len() != xs.len() {
+        return Err(PyValueError::new_err("ys and xs must list the same number of systems"));
+    }
+    let g = ys.len();
+    let (n, k) = match xs.first() {
+        Some(x) => (x.len(), x.iter().map(|a| a.as_array().ncols()).sum::<usize>()),
+        None => (0, 0),
+    };
+    let mut systems = Vec::with_capacity(g);
+    for (y, x) in ys.iter().zip(&xs) {
+        if y.len() != n || x.len() != n || x.iter().map(|a| a.as_array().ncols()).sum::<usize>() != k {
+            return Err(PyValueError::new_err("every system must have the same equations and regressor counts"));
+        }
+        let (names, regs) = default_names(n, x);
+        systems.push(equations(y, x, &names, &regs)?);
+    }
+    let stop = Interrupt::default();
+    let results = py.detach(|| crate::batch::fit_many(&systems, &opts, threads, &|| stop.requested()));
+    if results.iter().any(|r| matches!(r, Err(SurError::Interrupted))) {
+        return Err(stop.raise(py, SurError::Interrupted));
+    }
+    let mut coef = ndarray::Array2::<f64>::from_elem((g, k), f64::NAN);
+    let mut se = ndarray::Array2::<f64>::from_elem((g, k), f64::NAN);
+    let mut omega = ndarray::Array3::<f64>::from_elem((g, n, n), f64::NAN);
+    let mut n_iter = vec![0usize; g];
+    let mut converged = vec![false; g];
+    let mut loglik = vec![f64::NAN; g];
+    let errors = pyo3::types::PyList::empty(py);
+    for (i, r) in results.into_iter().enumerate() {
+        match r {
+            Ok(f) => {
+                coef.row_mut(i).assign(&f.estimate.coef);
+                se.row_mut(i).assign(&f.se);
+                omega.index_axis_mut(ndarray::Axis(0), i).assign(&f.estimate.omega);
+                n_iter[i] = f.estimate.n_iter;
+                converged[i] = f.estimate.converged;
+                loglik[i] = f.loglik.unwrap_or(f64::NEG_INFINITY);
+                errors.append(py.None())?;
+            }
+            Err(e) => errors.append((e.kind(), e.to_string()))?,
+        }
+    }
+    let d = PyDict::new(py);
+    d.set_item("coef", coef.into_pyarray(py))?;
+    d.set_item("se", se.into_pyarray(py))?;
+    d.set_item("omega", omega.into_pyarray(py))?;
+    d.set_item("n_iter", n_iter)?;
+    d.set_item("converged", converged)?;
+    d.set_item("loglik", loglik)?;
+    d.set_item("errors", errors)?;
+    Ok(d)
+}
+
 #[pymodule]
 fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(prepare, m)?)?;
     m.add_function(wrap_pyfunction!(residuals, m)?)?;
+    m.add_function(wrap_pyfunction!(pass1_chunk, m)?)?;
+    m.add_function(wrap_pyfunction!(pass1_merge, m)?)?;
+    m.add_function(wrap_pyfunction!(pass2_chunk, m)?)?;
+    m.add_function(wrap_pyfunction!(pass2_merge, m)?)?;
+    m.add_function(wrap_pyfunction!(prepare_from_summaries, m)?)?;
+    m.add_function(wrap_pyfunction!(fit_many, m)?)?;
     m.add_class::<PyPrepared>()?;
     m.add_class::<PyEstimate>()?;
     m.add("__version__", env!("CARGO_PKG_VERSION"))?;

@@ -50,6 +50,12 @@ impl<'a> SystemData<'a> {
     /// Checks shapes, names and finiteness; returns T. The checks run in this order so that the
     /// first message a user sees is the most basic problem.
     pub fn validate(&self) -> Result<usize> {
+        self.validate_chunk(0, true)
+    }
+
+    /// Validation of a block of rows that starts at `row_offset` of the whole sample (rows in
+    /// messages count from the start of the sample). `whole` also requires T > K_i.
+    pub fn validate_chunk(&self, row_offset: usize, whole: bool) -> Result<usize> {
         let first = self.equations.first().ok_or(SurError::EmptySystem)?;
         let t = first.y.len();
         let mut seen = std::collections::HashSet::new();
@@ -90,7 +96,7 @@ impl<'a> SystemData<'a> {
                     return Err(shape(format!("regressor name '{r}' appears twice")));
                 }
             }
-            if t <= eq.x.ncols() {
+            if whole && t <= eq.x.ncols() {
                 return Err(SurError::TooFewObservations {
                     equation: eq.name.clone(),
                     n_obs: t,
@@ -99,7 +105,7 @@ impl<'a> SystemData<'a> {
             }
         }
         for eq in &self.equations {
-            check_finite(eq)?;
+            check_finite(eq, row_offset)?;
         }
         Ok(t)
     }
@@ -133,7 +139,7 @@ impl<'a> SystemData<'a> {
 }
 
 /// The first non-finite value of an equation, by row (then y before the regressors).
-fn check_finite(eq: &Equation) -> Result<()> {
+fn check_finite(eq: &Equation, row_offset: usize) -> Result<()> {
     let first_bad = |v: ArrayView1<f64>| v.iter().position(|a| !a.is_finite());
     let mut worst: Option<(usize, Option<usize>)> = first_bad(eq.y.view()).map(|r| (r, None));
     for (j, col) in eq.x.axis_iter(Axis(1)).enumerate() {
@@ -152,7 +158,7 @@ fn check_finite(eq: &Equation) -> Result<()> {
             };
             Err(SurError::NonFinite {
                 equation: eq.name.clone(),
-                row,
+                row: row + row_offset,
                 column: col.map(|j| eq.regressors[j].clone()),
                 value: if value.is_nan() { "NaN".into() } else { format!("{value}") },
             })

@@ -318,3 +318,100 @@ fn log_likelihood_formula_and_maximum() {
     let det2 = s2[[0, 0]] * s2[[1, 1]] - s2[[0, 1]] * s2[[1, 0]];
     assert!(det2 > det);
 }
+
+fn chunked_prepared(ys: &[Array1<f64>], xs: &[Array2<f64>], bounds: &[usize]) -> Prepared {
+    use crate::{CrossStats, Pass2Basis, RowFactors};
+    let names: Vec<String> = (0..ys.len()).map(|i| format!("e{i}")).collect();
+    let regs: Vec<Vec<String>> = xs.iter().map(|x| (0..x.ncols()).map(|j| format!("x{j}")).collect()).collect();
+    let chunk = |a: usize, b: usize| {
+        SystemData::new(
+            ys.iter()
+                .zip(xs)
+                .enumerate()
+                .map(|(i, (y, x))| Equation::new(format!("e{i}"), y.slice(s![a..b]), x.slice(s![a..b, ..])))
+                .collect(),
+        )
+    };
+    let pieces: Vec<(usize, usize)> = bounds.windows(2).map(|w| (w[0], w[1])).collect();
+    // pass 1, merged as a tree (pairs), to exercise associativity
+    let mut level: Vec<RowFactors> = pieces.iter().map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap()).collect();
+    while level.len() > 1 {
+        let mut next = Vec::new();
+        let mut it = level.into_iter();
+        while let Some(a) = it.next() {
+            next.push(match it.next() {
+                Some(b) => a.merge(b).unwrap(),
+                None => a,
+            });
+        }
+        level = next;
+    }
+    let factors = level.pop().unwrap();
+    let basis = Pass2Basis::new(&factors).unwrap();
+    let mut stats: Option<CrossStats> = None;
+    for &(a, b) in pieces.iter().rev() {
+        let c = CrossStats::from_chunk(&chunk(a, b), &basis, a).unwrap();
+        stats = Some(match stats {
+            None => c,
+            Some(s) => s.merge(c).unwrap(),
+        });
+    }
+    Prepared::from_summaries(names, regs, &factors, &stats.unwrap()).unwrap()
+}
+
+#[test]
+fn chunked_passes_equal_the_in_memory_fit() {
+    let (ys, xs) = system(&[3, 2, 4], 53, 31);
+    let full = Prepared::new(&data(&ys, &xs)).unwrap();
+    let opts = opts(Method::IteratedFgls, Divisor::Ml);
+    let a = full.estimate(&opts).unwrap();
+    let va = full.coef_covariance(&a).unwrap();
+    for bounds in [vec![0, 53], vec![0, 1, 2, 3, 53], vec![0, 10, 11, 40, 53], (0..=53).collect::<Vec<_>>()] {
+        let prep = chunked_prepared(&ys, &xs, &bounds);
+        let b = prep.estimate(&opts).unwrap();
+        let vb = prep.coef_covariance(&b).unwrap();
+        for j in 0..a.coef.len() {
+            assert_relative_eq!(a.coef[j], b.coef[j], max_relative = 1e-11);
+            assert_relative_eq!(va[[j, j]], vb[[j, j]], max_relative = 1e-10);
+        }
+        for i in 0..3 {
+            assert_relative_eq!(full.factors[i].tss_centred, prep.factors[i].tss_centred, max_relative = 1e-12);
+            assert_eq!(full.factors[i].spans_constant, prep.factors[i].spans_constant);
+        }
+    }
+}
+
+#[test]
+fn chunk_errors_count_rows_from_the_start_of_the_sample() {
+    let (mut ys, xs) = system(&[2, 2], 30, 37);
+    ys[1][17] = f64::NAN;
+    let chunk = SystemData::new(vec![
+        Equation::new("e0", ys[0].slice(s![10..20]), xs[0].slice(s![10..20, ..])),
+        Equation::new("e1", ys[1].slice(s![10..20]), xs[1].slice(s![10..20, ..])),
+    ]);
+    match crate::RowFactors::from_chunk(&chunk, 10) {
+        Err(SurError::NonFinite { row, equation, .. }) => assert_eq!((row, equation.as_str()), (17, "e1")),
+        other => panic!("expected NonFinite, got {other:?}"),
+    }
+}
+
+#[test]
+fn batch_equals_single_fits_and_isolates_errors() {
+    let mut systems_data = Vec::new();
+    for seed in 0..20u64 {
+        systems_data.push(system(&[3, 3, 2], 40, 100 + seed));
+    }
+    // system 5 gets a NaN
+    systems_data[5].0[1][3] = f64::NAN;
+    let systems: Vec<SystemData> = systems_data.iter().map(|(y, x)| data(y, x)).collect();
+    let o = opts(Method::IteratedFgls, Divisor::Ml);
+    let out = crate::batch::fit_many(&systems, &o, 2, &|| false);
+    for (i, r) in out.iter().enumerate() {
+        if i == 5 {
+            assert!(matches!(r, Err(SurError::NonFinite { row: 3, .. })));
+            continue;
+        }
+        let single = Prepared::new(&systems[i]).unwrap().estimate(&o).unwrap();
+        assert_eq!(r.as_ref().unwrap().estimate.coef, single.coef);
+    }
+}

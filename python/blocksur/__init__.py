@@ -17,14 +17,18 @@ from ._core import __version__
 from ._fit import SystemFit
 from ._tests import HypothesisTestResult
 from ._system import EquationSystem
+from ._frame import SampleInfo
 from .errors import (
     BlocksurError,
     BlocksurWarning,
     CollinearityError,
+    DataNotKeptError,
     EmptySystemError,
+    FormulaError,
     IllConditionedWarning,
     InputError,
     InvalidOptionError,
+    MissingDependencyError,
     NonFiniteError,
     NotConvergedWarning,
     NumericalError,
@@ -33,12 +37,14 @@ from .errors import (
     ShapeMismatchError,
     SingularOmegaError,
     TooFewObservationsError,
+    UnknownColumnError,
 )
 
 __all__ = [
     "__version__",
     "EquationSystem",
     "SystemFit",
+    "SampleInfo",
     "BlocksurError",
     "BlocksurWarning",
     "CollinearityError",
@@ -55,4 +61,8 @@ __all__ = [
     "ShapeMismatchError",
     "SingularOmegaError",
     "TooFewObservationsError",
+    "UnknownColumnError",
+    "FormulaError",
+    "MissingDependencyError",
+    "DataNotKeptError",
 ]

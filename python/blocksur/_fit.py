@@ -10,6 +10,7 @@ import pandas as pd
 from scipy import stats
 
 from ._restrictions import parse_restrictions
+from ._frame import expand_new
 from ._tests import HypothesisTestResult
 from .errors import InvalidOptionError, ShapeMismatchError
 
@@ -266,16 +267,25 @@ class SystemFit:
             raise InvalidOptionError(f"form must be 'chi2' or 'F', got {form!r}")
         rset = parse_restrictions(restrictions, self._names, self._system._regressors)
         r, q = rset.r, rset.q
+        m = len(q)
+        if np.linalg.matrix_rank(r) < m:
+            raise InvalidOptionError("the restrictions to test are linearly dependent: drop the redundant ones")
+        if self.restrictions is not None:
+            both = np.vstack([self.restrictions.r, r])
+            if np.linalg.matrix_rank(both) < np.linalg.matrix_rank(self.restrictions.r) + m:
+                raise InvalidOptionError(
+                    "a restriction to test is implied by (or combines with) the restrictions "
+                    "imposed at fit time, so R V R' is singular: test it on the unrestricted fit"
+                )
         gap = r @ self.coef.to_numpy() - q
         rvr = r @ self.vcov.to_numpy() @ r.T
-        m = len(q)
-        try:
-            w = float(gap @ np.linalg.solve(rvr, gap))
-        except np.linalg.LinAlgError:
+        ev = np.linalg.eigvalsh((rvr + rvr.T) / 2)
+        if not ev[0] > 1e-12 * max(ev[-1], 0.0):
             raise InvalidOptionError(
-                "R V R' is singular: the restrictions are redundant, or one of them concerns "
-                "coefficients already fixed by the restrictions imposed at fit time"
-            ) from None
+                "R V R' is singular: the restrictions concern coefficients whose covariance is "
+                "(numerically) degenerate"
+            )
+        w = float(gap @ np.linalg.solve(rvr, gap))
         null = "; ".join(rset.texts)
         if form == "chi2":
             return HypothesisTestResult("Wald", null, w, "chi2", m, None, float(stats.chi2.sf(w, m)))
@@ -468,6 +478,7 @@ class SystemFit:
     def predict(self, new: Any) -> pd.DataFrame:
         """Predicted means X_new,i b_i for new regressor values: ``new`` maps each equation to
         an (m, K_i) array or DataFrame (or is a list in equation order). Returns m x N."""
+        new = expand_new(self._system, new)  # one table for a table-built system
         xs = self._new_x(new)
         offs = np.asarray(self._prepared.offsets)
         b = self.coef.to_numpy()
@@ -477,6 +488,7 @@ class SystemFit:
     def prediction_se(self, new: Any) -> pd.DataFrame:
         """Standard errors of the predicted means, sqrt(diag(X_new V_ii X_new')), with V this
         fit's covariance. (For a new observation add the error variance omega_ii.)"""
+        new = expand_new(self._system, new)  # one table for a table-built system
         xs = self._new_x(new)
         offs = np.asarray(self._prepared.offsets)
         v = self.vcov.to_numpy()
@@ -485,6 +497,199 @@ class SystemFit:
             vi = v[offs[i] : offs[i + 1], offs[i] : offs[i + 1]]
             cols.append(np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", x, vi, x), 0.0)))
         return pd.DataFrame(np.column_stack(cols), index=self._new_index(new), columns=self._names)
+
+    # -- tables, saving, reports and plots (see _tidy.py, _report.py, _plots.py) ---------------
+    @property
+    def rows_used(self) -> pd.Index:
+        """Index labels of the rows in the common sample (those of residuals and fitted values)."""
+        return self._row_index
+
+    @property
+    def rows_dropped(self) -> pd.Index:
+        """Index labels of the table rows dropped for a missing value (systems built by
+        :meth:`EquationSystem.from_table`; empty otherwise)."""
+        info = getattr(self._system, "_sample", None)
+        return info.rows_dropped if info is not None else self._row_index[:0]
+
+    def long_table(self, level: float = 0.95) -> pd.DataFrame:
+        """All coefficients in one long DataFrame: ``equation, regressor, estimate, se, stat,
+        pval, lower, upper`` (interval at ``level``).
+
+        Example
+        -------
+        >>> fit.long_table().query("pval < 0.01")      # doctest: +SKIP
+        """
+        from ._tidy import long_table
+
+        return long_table(self, level)
+
+    def wide_table(self, quantity: str = "estimate", level: float = 0.95) -> pd.DataFrame:
+        """One quantity (``estimate``, ``se``, ``stat``, ``pval``, ``lower``, ``upper``) with
+        regressors down and equations across; NaN where an equation lacks a regressor.
+
+        Example
+        -------
+        >>> fit.wide_table("se")                       # doctest: +SKIP
+        """
+        from ._tidy import wide_table
+
+        return wide_table(self, quantity, level)
+
+    def equation_stats(self) -> pd.DataFrame:
+        """Per-equation statistics: ``n_regressors, df_resid, r2, r2_adj, resid_se, ssr``.
+
+        Example
+        -------
+        >>> fit.equation_stats()["r2"]                 # doctest: +SKIP
+        """
+        from ._tidy import equation_stats
+
+        return equation_stats(self)
+
+    def forecast_table(self, new: Any, level: float = 0.95, interval: str = "mean") -> pd.DataFrame:
+        """Predictions for new rows in long form, indexed by (row label, equation), with
+        ``predicted, se, lower, upper``; ``interval="observation"`` widens the bounds by the
+        error variance to cover a new observation rather than its mean.
+
+        Example
+        -------
+        >>> fit.forecast_table(next_week, interval="observation")   # doctest: +SKIP
+        """
+        from ._tidy import forecast_table
+
+        return forecast_table(self, new, level, interval)
+
+    def to_dict(self, keep_data: bool = False) -> dict[str, Any]:
+        """The fit as a dict of plain JSON types, for pipelines; rebuild it with
+        :meth:`from_dict`. ``keep_data=True`` also stores the regressors.
+
+        Example
+        -------
+        >>> import json
+        >>> text = json.dumps(fit.to_dict())           # doctest: +SKIP
+        >>> same = SystemFit.from_dict(json.loads(text))   # doctest: +SKIP
+        """
+        from ._tidy import fit_to_dict
+
+        return fit_to_dict(self, keep_data)
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> "SystemFit":
+        """Rebuilds a fit saved by :meth:`to_dict`: identical coefficients, covariance, Omega,
+        residuals and fit measures. Methods that go back to the data raise
+        :class:`~blocksur.errors.DataNotKeptError` unless the dict kept the regressors.
+
+        Example
+        -------
+        >>> SystemFit.from_dict(saved).coef            # doctest: +SKIP
+        """
+        from ._tidy import fit_from_dict
+
+        return fit_from_dict(cls, data)
+
+    def __getstate__(self) -> dict[str, Any]:
+        from ._tidy import pickle_state
+
+        return pickle_state(self)
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        from ._tidy import restore_pickle
+
+        restore_pickle(self, state)
+
+    def report(self, level: float = 0.95, max_equations: int = 12, width: int = 100) -> str:
+        """A plain-text report for terminals and logs: header (method, sample, iterations,
+        Omega divisor, covariance), one block per equation, the residual correlations and the
+        system-wide statistics, at most ``width`` columns.
+
+        Example
+        -------
+        >>> print(fit.report())                        # doctest: +SKIP
+        """
+        from ._report import text_report
+
+        return text_report(self, level=level, max_equations=max_equations, width=width)
+
+    def report_html(self, level: float = 0.95, max_equations: int = 12) -> str:
+        """The report as an HTML fragment (what Jupyter shows for a fit).
+
+        Example
+        -------
+        >>> from IPython.display import HTML; HTML(fit.report_html())   # doctest: +SKIP
+        """
+        from ._report import html_report
+
+        return html_report(self, level=level, max_equations=max_equations)
+
+    def __str__(self) -> str:
+        return self.report()
+
+    def _repr_html_(self) -> str:
+        return self.report_html()
+
+    def to_markdown(self, level: float = 0.95, digits: int = 4) -> str:
+        """The coefficient table as a Markdown (pipe) table.
+
+        Example
+        -------
+        >>> print(fit.to_markdown(digits=3))           # doctest: +SKIP
+        """
+        from ._report import markdown_table
+
+        return markdown_table(self, level=level, digits=digits)
+
+    def to_latex(self, level: float = 0.95, digits: int = 4, caption: str | None = None,
+                 label: str | None = None) -> str:
+        """The coefficient table as a LaTeX ``table`` with a ``tabular`` (booktabs rules).
+
+        Example
+        -------
+        >>> open("coef.tex", "w").write(fit.to_latex(caption="Load equations"))   # doctest: +SKIP
+        """
+        from ._report import latex_table
+
+        return latex_table(self, level=level, digits=digits, caption=caption, label=label)
+
+    def plot_resid_corr(self, ax: Any = None, annotate: bool | None = None, equations: Any = None) -> Any:
+        """Heatmap of the residual correlation matrix (matplotlib), of all equations or of
+        those listed in ``equations``; returns the Figure.
+
+        Example
+        -------
+        >>> fit.plot_resid_corr()                      # doctest: +SKIP
+        """
+        from ._plots import plot_resid_corr
+
+        return plot_resid_corr(self, ax=ax, annotate=annotate, equations=equations)
+
+    def plot_coef(self, by: str = "regressor", *, regressors: Any = None, equations: Any = None,
+                  level: float = 0.95, compare: Any = None, ncols: int = 3, rename: Any = None,
+                  label: str | None = None) -> Any:
+        """Coefficients with intervals: one panel per regressor across equations
+        (``by="regressor"``) or per equation (``by="equation"``); ``compare={"OLS": other_fit}``
+        draws other fits beside this one; ``rename(equation, regressor)`` groups regressors
+        named after their equation into one panel. Returns the Figure.
+
+        Example
+        -------
+        >>> fit.plot_coef(regressors=["hdd_harbour"], compare={"OLS": ols})   # doctest: +SKIP
+        """
+        from ._plots import plot_coef
+
+        return plot_coef(self, by=by, regressors=regressors, equations=equations, level=level,
+                         compare=compare, ncols=ncols, rename=rename, label=label)
+
+    def plot_convergence(self, ax: Any = None) -> Any:
+        """The convergence criterion after each GLS step (log scale) against ``tol``; returns
+        the Figure.
+
+        Example
+        -------
+        >>> fit.plot_convergence()                     # doctest: +SKIP
+        """
+        from ._plots import plot_convergence
+
+        return plot_convergence(self, ax=ax)
 
     def __repr__(self) -> str:
         state = ""

@@ -153,6 +153,12 @@ class _Parser:
                     idx = self.coefficient()
                     row[idx] += sign * s * c
                 else:
+                    while self.peek()[1] == "/":
+                        self.take()
+                        d = self.number()
+                        if d == 0:
+                            self.fail(self.tokens[self.i - 1][2], "division by zero")
+                        c /= d
                     const += s * c
             elif kind in ("name", "quoted"):
                 idx = self.coefficient()

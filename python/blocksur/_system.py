@@ -137,6 +137,51 @@ class EquationSystem:
             self._regressors.append(regs)
         self._names = names
         self._prepared: Any = None
+        self._sample: Any = None  # SampleInfo when built by from_table
+
+    @classmethod
+    def from_table(
+        cls,
+        data: Any,
+        equations: Any,
+        *,
+        constant: bool = False,
+        context: Mapping[str, Any] | None = None,
+    ) -> "EquationSystem":
+        """Builds a system from one table (pandas, polars, pyarrow, or a dict of columns).
+
+        ``equations`` is a list (equations named after their dependent variable) or a dict
+        ``{name: spec}``; each spec is a Wilkinson formula parsed by ``formulaic``
+        (``"load ~ heating_dd + C(day_type) + np.log(visitors)"``) or a pair
+        ``(dependent column, [regressor columns])``; ``constant=True`` puts a column of ones
+        named ``Intercept`` first in the pair form (formulas carry their own intercept; remove
+        it with ``- 1``). ``context`` adds names (functions) the formulas may call; ``np`` is
+        always there. Rows with a missing value in any column used, or where a transform gives
+        NaN/inf, are dropped for every equation: see :attr:`sample_info`. A wrong column name
+        raises :class:`~blocksur.errors.UnknownColumnError`, an unreadable formula
+        :class:`~blocksur.errors.FormulaError`, both naming the equation.
+
+        Example
+        -------
+        >>> system = EquationSystem.from_table(frame, {                  # doctest: +SKIP
+        ...     "north": "load_north ~ heating_dd + C(day_type)",
+        ...     "south": ("load_south", ["heating_dd", "visitors"])}, constant=True)
+        >>> system.sample_info.rows_dropped                              # doctest: +SKIP
+        """
+        from ._frame import build_system
+
+        return build_system(data, equations, constant=constant, context=context, cls=cls)
+
+    def __getstate__(self) -> dict[str, Any]:
+        state = self.__dict__.copy()
+        state["_prepared"] = None  # compiled; rebuilt by the next fit
+        return state
+
+    @property
+    def sample_info(self) -> Any:
+        """How the common sample was formed (a :class:`blocksur.SampleInfo`: rows read, used,
+        dropped and why) for a system built by :meth:`from_table`; ``None`` otherwise."""
+        return self._sample
 
     # -- description -------------------------------------------------------------------------
     @property

@@ -1,0 +1,157 @@
+"""Type stubs of the compiled core (src/python.rs). The bindings only convert arrays and map
+errors; the statistics live in the Rust core.
+
+Example
+-------
+>>> import numpy as np
+>>> from blocksur import _core
+>>> X = np.column_stack([np.ones(30), np.arange(30.0)])
+>>> prepared = _core.prepare([X @ [1.0, 2.0] + np.sin(np.arange(30.0))], [X], ["a"], [["c", "x"]])
+>>> prepared.estimate("ols", "ml", 1e-10, 100).n_iter
+0
+"""
+
+from collections.abc import Sequence
+
+import numpy as np
+import numpy.typing as npt
+
+__version__: str
+
+_F64_1D = npt.NDArray[np.float64]
+_F64_2D = npt.NDArray[np.float64]
+
+def prepare(
+    ys: Sequence[_F64_1D],
+    xs: Sequence[_F64_2D],
+    names: Sequence[str],
+    regressors: Sequence[Sequence[str]],
+) -> Prepared:
+    """Validates the system and runs the data pass (QR per equation, one Gram matrix), with the
+    interpreter lock released. Raises the blocksur error classes (ShapeMismatchError,
+    NonFiniteError, TooFewObservationsError, CollinearityError, ...)."""
+
+def residuals(ys: Sequence[_F64_1D], xs: Sequence[_F64_2D], coef: _F64_1D) -> _F64_2D:
+    """Residuals y_i - X_i b_i as a T x N array, for stacked coefficients ``coef``."""
+
+_Factors = tuple[int, list[_F64_2D]]
+
+def pass1_chunk(
+    ys: Sequence[_F64_1D],
+    xs: Sequence[_F64_2D],
+    names: Sequence[str],
+    regressors: Sequence[Sequence[str]],
+    row_offset: int = 0,
+) -> _Factors:
+    """Pass 1 of a chunked fit on one chunk of rows: (n_rows, [R of [X_i | y_i] per equation])."""
+
+def pass1_merge(a: _Factors, b: _Factors) -> _Factors:
+    """Merges two pass-1 summaries."""
+
+def pass2_chunk(
+    ys: Sequence[_F64_1D],
+    xs: Sequence[_F64_2D],
+    factors: _Factors,
+    row_offset: int = 0,
+) -> dict[str, object]:
+    """Pass 2 of a chunked fit on one chunk, given the merged pass-1 summary: a dict of sums
+    (``n_rows``, ``gram``, ``colsum``, ``y_mean``, ``y_m2``, ``y_raw``)."""
+
+def pass2_merge(a: dict[str, object], b: dict[str, object]) -> dict[str, object]:
+    """Merges two pass-2 summaries."""
+
+def prepare_from_summaries(
+    names: Sequence[str],
+    regressors: Sequence[Sequence[str]],
+    factors: _Factors,
+    stats: dict[str, object],
+) -> Prepared:
+    """The prepared system from merged pass-1 and pass-2 summaries of all rows."""
+
+def fit_many(
+    ys: Sequence[Sequence[_F64_1D]],
+    xs: Sequence[Sequence[_F64_2D]],
+    method: str,
+    divisor: str,
+    tol: float,
+    max_iter: int,
+    threads: int,
+) -> dict[str, object]:
+    """Fits many independent systems of the same shape on ``threads`` threads: a dict of
+    arrays (``coef``, ``se``: G x K; ``omega``: G x N x N; ``n_iter``, ``converged``,
+    ``loglik``: G) and ``errors`` (None or (error class name, message) per system)."""
+
+class Prepared:
+    """The system after the data pass; estimations from it never touch the data again."""
+
+    def estimate(
+        self,
+        method: str,
+        divisor: str,
+        tol: float,
+        max_iter: int,
+        r: _F64_2D | None = None,
+        q: _F64_1D | None = None,
+    ) -> Estimate:
+        """One estimation: method "ols", "fgls" or "ifgls"; divisor "ml" or "dof"; imposes
+        R b = q when ``r`` and ``q`` are given."""
+
+    def coef_covariance(
+        self,
+        est: Estimate,
+        kind: str = "classical",
+        ys: Sequence[_F64_1D] | None = None,
+        xs: Sequence[_F64_2D] | None = None,
+    ) -> _F64_2D:
+        """Covariance of the stacked coefficients (K x K): "classical", "hc0" or "hc1" (the
+        robust kinds need the data as given to :func:`prepare`)."""
+
+    def ols_crossprod(self) -> _F64_2D:
+        """Residual cross-products of unrestricted equation-by-equation OLS (N x N)."""
+
+    def log_likelihood(self, est: Estimate) -> float | None:
+        """Gaussian log-likelihood at Omega = S/T of the estimate's residuals; None if S is
+        singular."""
+
+    @property
+    def n_obs(self) -> int: ...
+    @property
+    def offsets(self) -> list[int]:
+        """Start of each equation's coefficients in the stacked vector, plus the total K."""
+    @property
+    def shared_regressors(self) -> bool:
+        """Whether every equation has the same regressors (the fast path: GLS = OLS)."""
+    @property
+    def spans_constant(self) -> list[bool]: ...
+    @property
+    def tss_centred(self) -> list[float]: ...
+    @property
+    def tss_raw(self) -> list[float]: ...
+    @property
+    def conditions(self) -> list[float]:
+        """Condition-number estimate of each equation's regressor matrix (column-scaled)."""
+
+class Estimate:
+    """One estimation's raw results (stacked, equation by equation)."""
+
+    @property
+    def coef(self) -> _F64_1D: ...
+    @property
+    def omega(self) -> _F64_2D: ...
+    @property
+    def resid_crossprod(self) -> _F64_2D: ...
+    @property
+    def n_iter(self) -> int: ...
+    @property
+    def converged(self) -> bool: ...
+    @property
+    def criterion_path(self) -> list[float]: ...
+    @property
+    def omega_cond(self) -> float:
+        """Condition-number estimate of the Omega used in the last GLS step."""
+    @property
+    def n_restrictions(self) -> int: ...
+    @property
+    def method(self) -> str: ...
+    @property
+    def divisor(self) -> str: ...

@@ -1,0 +1,245 @@
+//! Steps 0 and 1 over rows that arrive in chunks (streams, files, cluster partitions).
+//!
+//! Pass 1 reduces each chunk to the R factor of every equation's [X_i | y_i] (tall-skinny QR:
+//! the R of two stacked chunks is the R of their two stacked R factors), so only (K_i + 1)^2
+//! numbers per equation travel. Pass 2 turns each chunk into its rows of
+//! W = [Q_1 .. Q_N, q_1 .. q_N] with [Q_i | q_i] = [X_i | y_i] R_i^+^-1 and sums the chunk Gram
+//! matrices W_c'W_c (P x P). Both summaries merge associatively, in any order and any tree, and
+//! `Prepared::from_summaries` finishes exactly as the in-memory path does.
+
+use ndarray::{concatenate, s, Array1, Array2, Axis, ShapeBuilder};
+use ndarray_linalg::QRInto;
+
+use crate::error::{Result, SurError};
+use crate::linalg::{gram, symmetrize, upper_inverse};
+use crate::prepare::{check_rank, cond_of_scaled, CrossProducts, EquationFactor, Prepared};
+use crate::system::SystemData;
+
+/// Pass-1 summary of some rows: per equation the upper-triangular R of [X_i | y_i].
+#[derive(Debug, Clone)]
+pub struct RowFactors {
+    pub n_rows: usize,
+    pub r: Vec<Array2<f64>>,
+}
+
+fn square_r(r: Array2<f64>, m: usize) -> Array2<f64> {
+    let mut out = Array2::<f64>::zeros((m, m));
+    let rows = r.nrows().min(m);
+    out.slice_mut(s![..rows, ..]).assign(&r.slice(s![..rows, ..m]));
+    out
+}
+
+fn qr_r(a: Array2<f64>, what: &str) -> Result<Array2<f64>> {
+    let m = a.ncols();
+    let (_, r) = a.qr_into().map_err(|e| SurError::numerical(what, e))?;
+    Ok(square_r(r, m))
+}
+
+impl RowFactors {
+    /// Pass 1 on one chunk whose first row is row `row_offset` of the sample.
+    pub fn from_chunk(data: &SystemData, row_offset: usize) -> Result<RowFactors> {
+        let rows = data.validate_chunk(row_offset, false)?;
+        let mut r = Vec::with_capacity(data.n_eq());
+        for eq in &data.equations {
+            let k = eq.n_regressors();
+            let mut a = Array2::<f64>::zeros((rows, k + 1).f());
+            a.slice_mut(s![.., ..k]).assign(&eq.x);
+            a.column_mut(k).assign(&eq.y);
+            r.push(if rows == 0 { Array2::zeros((k + 1, k + 1)) } else { qr_r(a, "QR of a chunk")? });
+        }
+        Ok(RowFactors { n_rows: rows, r })
+    }
+
+    /// The summary of the union of two sets of rows.
+    pub fn merge(self, other: RowFactors) -> Result<RowFactors> {
+        if self.r.len() != other.r.len() {
+            return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
+        }
+        let mut r = Vec::with_capacity(self.r.len());
+        for (a, b) in self.r.into_iter().zip(other.r) {
+            if a.dim() != b.dim() {
+                return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
+            }
+            let stacked = concatenate(Axis(0), &[a.view(), b.view()]).expect("same widths");
+            let mut f = Array2::<f64>::zeros(stacked.dim().f());
+            f.assign(&stacked);
+            r.push(qr_r(f, "QR of stacked chunk factors")?);
+        }
+        Ok(RowFactors { n_rows: self.n_rows + other.n_rows, r })
+    }
+}
+
+/// Pass-2 summary of some rows.
+#[derive(Debug, Clone)]
+pub struct CrossStats {
+    pub n_rows: usize,
+    /// W_c'W_c summed over chunks (P x P).
+    pub gram: Array2<f64>,
+    /// Column sums of W (P).
+    pub colsum: Array1<f64>,
+    /// Per equation: mean of y and sum of squares about it (merged by Chan's formula), and the
+    /// raw sum of squares.
+    pub y_mean: Vec<f64>,
+    pub y_m2: Vec<f64>,
+    pub y_raw: Vec<f64>,
+}
+
+/// The inverses of the merged pass-1 factors, computed once and shared by every chunk of pass 2.
+#[derive(Debug, Clone)]
+pub struct Pass2Basis {
+    rinv: Vec<Array2<f64>>,
+    sign: Vec<f64>,
+}
+
+impl Pass2Basis {
+    pub fn new(factors: &RowFactors) -> Result<Pass2Basis> {
+        let mut rinv = Vec::new();
+        let mut sign = Vec::new();
+        for r in &factors.r {
+            let m = r.nrows();
+            let mut safe = r.clone();
+            // A perfect fit leaves r[m-1, m-1] = 0; its q column is then immaterial (rho = 0).
+            if safe[[m - 1, m - 1]] == 0.0 {
+                safe[[m - 1, m - 1]] = 1.0;
+            }
+            for j in 0..m - 1 {
+                if safe[[j, j]] == 0.0 {
+                    safe[[j, j]] = 1.0; // rank is checked, with names, when finishing
+                }
+            }
+            sign.push(if r[[m - 1, m - 1]] < 0.0 { -1.0 } else { 1.0 });
+            rinv.push(upper_inverse(&safe)?);
+        }
+        Ok(Pass2Basis { rinv, sign })
+    }
+}
+
+impl CrossStats {
+    /// Pass 2 on one chunk.
+    pub fn from_chunk(data: &SystemData, basis: &Pass2Basis, row_offset: usize) -> Result<CrossStats> {
+        let rows = data.validate_chunk(row_offset, false)?;
+        let n = data.n_eq();
+        if basis.rinv.len() != n {
+            return Err(SurError::InvalidOption("the chunk does not match the pass-1 summary".into()));
+        }
+        let k: usize = data.equations.iter().map(|e| e.n_regressors()).sum();
+        let p = k + n;
+        let mut w = Array2::<f64>::zeros((rows, p).f());
+        let mut off = 0;
+        let (mut y_mean, mut y_m2, mut y_raw) = (Vec::new(), Vec::new(), Vec::new());
+        for (i, eq) in data.equations.iter().enumerate() {
+            let ki = eq.n_regressors();
+            if basis.rinv[i].nrows() != ki + 1 {
+                return Err(SurError::InvalidOption("the chunk does not match the pass-1 summary".into()));
+            }
+            let mut a = Array2::<f64>::zeros((rows, ki + 1));
+            a.slice_mut(s![.., ..ki]).assign(&eq.x);
+            a.column_mut(ki).assign(&eq.y);
+            let qa = a.dot(&basis.rinv[i]);
+            w.slice_mut(s![.., off..off + ki]).assign(&qa.slice(s![.., ..ki]));
+            w.column_mut(k + i).assign(&qa.column(ki).mapv(|v| v * basis.sign[i]));
+            off += ki;
+            let mean = if rows > 0 { eq.y.sum() / rows as f64 } else { 0.0 };
+            y_mean.push(mean);
+            y_m2.push(eq.y.iter().map(|v| (v - mean) * (v - mean)).sum());
+            y_raw.push(eq.y.iter().map(|v| v * v).sum());
+        }
+        Ok(CrossStats { n_rows: rows, gram: gram(w.view()), colsum: w.sum_axis(Axis(0)), y_mean, y_m2, y_raw })
+    }
+
+    /// The summary of the union of two sets of rows.
+    pub fn merge(self, other: CrossStats) -> Result<CrossStats> {
+        if self.gram.dim() != other.gram.dim() {
+            return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
+        }
+        let (na, nb) = (self.n_rows as f64, other.n_rows as f64);
+        let n = na + nb;
+        let mut y_mean = Vec::new();
+        let mut y_m2 = Vec::new();
+        for i in 0..self.y_mean.len() {
+            let d = other.y_mean[i] - self.y_mean[i];
+            let mean = if n > 0.0 { self.y_mean[i] + d * nb / n } else { 0.0 };
+            let m2 = self.y_m2[i] + other.y_m2[i] + if n > 0.0 { d * d * na * nb / n } else { 0.0 };
+            y_mean.push(mean);
+            y_m2.push(m2);
+        }
+        let y_raw = self.y_raw.iter().zip(&other.y_raw).map(|(a, b)| a + b).collect();
+        Ok(CrossStats {
+            n_rows: self.n_rows + other.n_rows,
+            gram: self.gram + other.gram,
+            colsum: self.colsum + other.colsum,
+            y_mean,
+            y_m2,
+            y_raw,
+        })
+    }
+}
+
+impl Prepared {
+    /// Finishes steps 0 and 1 from merged pass-1 and pass-2 summaries of all rows.
+    pub fn from_summaries(
+        names: Vec<String>,
+        regressors: Vec<Vec<String>>,
+        factors: &RowFactors,
+        stats: &CrossStats,
+    ) -> Result<Prepared> {
+        let n = names.len();
+        if n == 0 {
+            return Err(SurError::EmptySystem);
+        }
+        if factors.r.len() != n || regressors.len() != n || factors.n_rows != stats.n_rows {
+            return Err(SurError::InvalidOption("the summaries do not match the system".into()));
+        }
+        let t = factors.n_rows;
+        let mut offsets = vec![0usize];
+        for regs in &regressors {
+            offsets.push(offsets.last().unwrap() + regs.len());
+        }
+        let k = offsets[n];
+        let mut out = Vec::with_capacity(n);
+        for i in 0..n {
+            let ki = regressors[i].len();
+            let rp = &factors.r[i];
+            if rp.nrows() != ki + 1 {
+                return Err(SurError::InvalidOption("the summaries do not match the system".into()));
+            }
+            if t <= ki {
+                return Err(SurError::TooFewObservations { equation: names[i].clone(), n_obs: t, n_regressors: ki });
+            }
+            // Column norms of [X_i | y_i] are the column norms of R (Q has orthonormal columns).
+            let norms: Vec<f64> = (0..=ki).map(|j| rp.column(j).dot(&rp.column(j)).sqrt()).collect();
+            let yscale = if norms[ki] > 0.0 { norms[ki] } else { 1.0 };
+            let mut rs = rp.clone();
+            for j in 0..ki {
+                if norms[j] > 0.0 {
+                    rs.column_mut(j).mapv_inplace(|v| v / norms[j]);
+                }
+            }
+            rs.column_mut(ki).mapv_inplace(|v| v / yscale);
+            check_rank(&names[i], &regressors[i], &rs, &norms[..ki], t)?;
+            let r = rp.slice(s![..ki, ..ki]).to_owned();
+            let z = rp.slice(s![..ki, ki]).to_owned();
+            let rho = rp[[ki, ki]].abs();
+            let s2: f64 = stats.colsum.slice(s![offsets[i]..offsets[i + 1]]).iter().map(|v| v * v).sum();
+            out.push(EquationFactor {
+                r,
+                z,
+                rho,
+                spans_constant: (t as f64 - s2).abs() <= 1e-9 * t as f64,
+                tss_centred: stats.y_m2[i],
+                tss_raw: stats.y_raw[i],
+                cond: cond_of_scaled(&rs, ki),
+            });
+        }
+        let mut g = stats.gram.clone();
+        symmetrize(&mut g);
+        for i in 0..n {
+            let (a, b) = (offsets[i], offsets[i + 1]);
+            g.slice_mut(s![a..b, a..b]).assign(&Array2::eye(b - a));
+            g.slice_mut(s![a..b, k + i]).fill(0.0);
+            g.slice_mut(s![k + i, a..b]).fill(0.0);
+            g[[k + i, k + i]] = 1.0;
+        }
+        Ok(Prepared { n_obs: t, names, regressors, offsets, factors: out, cross: CrossProducts::General { gram: g } })
+    }
+}
