@@ -106,17 +106,27 @@ struct PyEstimate {
 }
 
 /// Validates the system and runs the data pass, with the interpreter lock released.
+/// `matrix_free=True` keeps the T x P basis instead of the P x P cross-products (for systems
+/// whose K x K matrices would not fit in memory).
 #[pyfunction]
+#[pyo3(signature = (ys, xs, names, regressors, matrix_free=false))]
 fn prepare(
     py: Python<'_>,
     ys: Vec<PyReadonlyArray1<'_, f64>>,
     xs: Vec<PyReadonlyArray2<'_, f64>>,
     names: Vec<String>,
     regressors: Vec<Vec<String>>,
+    matrix_free: bool,
 ) -> PyResult<PyPrepared> {
     let data = equations(&ys, &xs, &names, &regressors)?;
     let stop = Interrupt::default();
-    let out = py.detach(|| Prepared::new_with(&data, &|| stop.requested()));
+    let out = py.detach(|| {
+        if matrix_free {
+            Prepared::new_matrix_free(&data, &|| stop.requested())
+        } else {
+            Prepared::new_with(&data, &|| stop.requested())
+        }
+    });
     out.map(|inner| PyPrepared { inner }).map_err(|e| stop.raise(py, e))
 }
 
@@ -143,35 +153,70 @@ fn residuals<'py>(
 
 #[pymethods]
 impl PyPrepared {
-    /// Runs one estimation ("ols", "fgls", "ifgls"; divisor "ml" or "dof"), imposing R b = q
-    /// when `r` and `q` are given.
-    #[pyo3(signature = (method, divisor, tol, max_iter, r=None, q=None))]
+    /// Runs one estimation ("ols", "fgls", "ifgls"; omega "ml", "dof", "lw-diagonal" or
+    /// "lw-identity"), imposing R b = q when `r` and `q` are given. Shrinkage on the direct path
+    /// needs the data (`ys`, `xs`).
+    #[pyo3(signature = (method, divisor, tol, max_iter, r=None, q=None, ys=None, xs=None, cg_tol=1e-10, cg_max_iter=5000))]
     #[allow(clippy::too_many_arguments)]
-    fn estimate(
+    fn estimate<'py>(
         &self,
-        py: Python<'_>,
+        py: Python<'py>,
         method: &str,
         divisor: &str,
         tol: f64,
         max_iter: usize,
-        r: Option<PyReadonlyArray2<'_, f64>>,
-        q: Option<PyReadonlyArray1<'_, f64>>,
+        r: Option<PyReadonlyArray2<'py, f64>>,
+        q: Option<PyReadonlyArray1<'py, f64>>,
+        ys: Option<Vec<PyReadonlyArray1<'py, f64>>>,
+        xs: Option<Vec<PyReadonlyArray2<'py, f64>>>,
+        cg_tol: f64,
+        cg_max_iter: usize,
     ) -> PyResult<PyEstimate> {
         let opts = FitOptions {
             method: Method::parse(method).map_err(|e| raise(py, e))?,
             divisor: Divisor::parse(divisor).map_err(|e| raise(py, e))?,
             tol,
             max_iter,
-            ..Default::default()
+            cg_tol,
+            cg_max_iter,
         };
         let restrictions = match (r, q) {
             (Some(r), Some(q)) => Some(Restrictions { r: r.as_array().to_owned(), q: q.as_array().to_owned() }),
             (None, None) => None,
             _ => return Err(PyValueError::new_err("give both r and q, or neither")),
         };
+        let (ys, xs) = (ys.unwrap_or_default(), xs.unwrap_or_default());
+        let data = if ys.is_empty() {
+            None
+        } else {
+            Some(equations(&ys, &xs, &self.inner.names, &self.inner.regressors)?)
+        };
         let stop = Interrupt::default();
-        let out = py.detach(|| self.inner.estimate_with(&opts, restrictions.as_ref(), None, &|| stop.requested()));
+        let out = py.detach(|| self.inner.estimate_with(&opts, restrictions.as_ref(), data.as_ref(), &|| stop.requested()));
         out.map(|inner| PyEstimate { inner }).map_err(|e| stop.raise(py, e))
+    }
+
+    /// Matrix-free path: standard errors of the coefficients of the given equations (by index)
+    /// from conjugate-gradient solves, one array per equation.
+    #[pyo3(signature = (est, equations, cg_tol=1e-10, cg_max_iter=5000))]
+    fn cg_standard_errors<'py>(
+        &self,
+        py: Python<'py>,
+        est: &PyEstimate,
+        equations: Vec<usize>,
+        cg_tol: f64,
+        cg_max_iter: usize,
+    ) -> PyResult<Vec<Bound<'py, PyArray1<f64>>>> {
+        let stop = Interrupt::default();
+        let out = py.detach(|| {
+            self.inner.cg_standard_errors(&est.inner.omega, &equations, cg_tol, cg_max_iter, &|| stop.requested())
+        });
+        out.map(|v| v.into_iter().map(|a| a.into_pyarray(py)).collect()).map_err(|e| stop.raise(py, e))
+    }
+
+    #[getter]
+    fn matrix_free(&self) -> bool {
+        matches!(self.inner.cross, crate::prepare::CrossProducts::MatrixFree { .. })
     }
 
     /// Covariance of the stacked coefficients (K x K): kind "classical", "hc0" or "hc1" (the
@@ -261,6 +306,18 @@ impl PyEstimate {
     #[getter]
     fn criterion_path(&self) -> Vec<f64> {
         self.inner.criterion_path.clone()
+    }
+    #[getter]
+    fn shrinkage(&self) -> Option<f64> {
+        self.inner.shrinkage
+    }
+    #[getter]
+    fn cg_iterations(&self) -> Vec<usize> {
+        self.inner.cg_iterations.clone()
+    }
+    #[getter]
+    fn cg_residual(&self) -> f64 {
+        self.inner.cg_residual
     }
     #[getter]
     fn omega_cond(&self) -> f64 {

@@ -83,7 +83,7 @@ fn ols(y: &Array1<f64>, x: &Array2<f64>) -> Array1<f64> {
 }
 
 fn opts(method: Method, divisor: Divisor) -> FitOptions {
-    FitOptions { method, divisor, tol: 1e-12, max_iter: 500 }
+    FitOptions { method, divisor, tol: 1e-12, max_iter: 500, ..Default::default() }
 }
 
 #[test]
@@ -290,7 +290,7 @@ fn budget_shares_give_a_singular_omega_naming_the_equations() {
 fn iteration_cap_is_reported() {
     let (ys, xs) = system(&[2, 4, 3], 30, 17);
     let prep = Prepared::new(&data(&ys, &xs)).unwrap();
-    let est = prep.estimate(&FitOptions { method: Method::IteratedFgls, divisor: Divisor::Ml, tol: 0.0, max_iter: 3 }).unwrap();
+    let est = prep.estimate(&FitOptions { method: Method::IteratedFgls, divisor: Divisor::Ml, tol: 0.0, max_iter: 3, ..Default::default() }).unwrap();
     assert!(!est.converged);
     assert_eq!(est.n_iter, 3);
     assert_eq!(est.criterion_path.len(), 3);
@@ -414,4 +414,61 @@ fn batch_equals_single_fits_and_isolates_errors() {
         let single = Prepared::new(&systems[i]).unwrap().estimate(&o).unwrap();
         assert_eq!(r.as_ref().unwrap().estimate.coef, single.coef);
     }
+}
+
+#[test]
+fn matrix_free_cg_equals_direct() {
+    let (ys, xs) = system(&[3, 2, 4, 3], 60, 41);
+    let d = data(&ys, &xs);
+    let direct = Prepared::new(&d).unwrap();
+    let free = Prepared::new_matrix_free(&d, &|| false).unwrap();
+    for div in [Divisor::Ml, Divisor::LedoitWolfDiagonal, Divisor::LedoitWolfIdentity] {
+        let o = FitOptions { method: Method::IteratedFgls, divisor: div, tol: 1e-11, max_iter: 200, cg_tol: 1e-13, cg_max_iter: 500 };
+        let a = direct.estimate_with(&o, None, Some(&d), &|| false).unwrap();
+        let b = free.estimate_with(&o, None, None, &|| false).unwrap();
+        assert!(b.cg_residual <= 1e-13 && !b.cg_iterations.is_empty());
+        assert_eq!(a.shrinkage.is_some(), div != Divisor::Ml);
+        for j in 0..a.coef.len() {
+            assert_relative_eq!(a.coef[j], b.coef[j], max_relative = 1e-9);
+        }
+        // per-equation CG standard errors equal the direct ones
+        let va = direct.coef_covariance(&a).unwrap();
+        let se = free.cg_standard_errors(&b.omega, &[1, 3], 1e-13, 500, &|| false).unwrap();
+        let (o1, o3) = (direct.offsets[1], direct.offsets[3]);
+        for j in 0..2 {
+            assert_relative_eq!(se[0][j], va[[o1 + j, o1 + j]].sqrt(), max_relative = 1e-8);
+        }
+        for j in 0..3 {
+            assert_relative_eq!(se[1][j], va[[o3 + j, o3 + j]].sqrt(), max_relative = 1e-8);
+        }
+    }
+}
+
+#[test]
+fn ledoit_wolf_diagonal_target_formula() {
+    // Intensity = sum_{i != j} Var(s_ij) / (T sum_{i != j} s_ij^2), Var from the rows (Ledoit &
+    // Wolf 2004 estimator of the variance of a sample covariance, target = diagonal).
+    let mut rng = Rng(5);
+    let (t, n) = (30, 6);
+    let e = Array2::from_shape_fn((t, n), |_| rng.normal());
+    let s = e.t().dot(&e);
+    let (omega, lambda, _) = crate::cg::ledoit_wolf(&e, &s, false);
+    let sml = &s / t as f64;
+    let (mut num, mut den) = (0.0, 0.0);
+    for i in 0..n {
+        for j in 0..n {
+            if i != j {
+                let mut v = 0.0;
+                for r in 0..t {
+                    v += (e[[r, i]] * e[[r, j]] - sml[[i, j]]).powi(2);
+                }
+                num += v / t as f64;
+                den += sml[[i, j]].powi(2);
+            }
+        }
+    }
+    let expect = (num / (t as f64 * den)).clamp(0.0, 1.0);
+    assert_relative_eq!(lambda, expect, max_relative = 1e-12);
+    assert_relative_eq!(omega[[0, 1]], (1.0 - expect) * sml[[0, 1]], max_relative = 1e-12);
+    assert_relative_eq!(omega[[2, 2]], sml[[2, 2]], max_relative = 1e-14);
 }

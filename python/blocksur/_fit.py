@@ -19,6 +19,9 @@ if TYPE_CHECKING:  # pragma: no cover
 
 __all__ = ["SystemFit"]
 
+# Largest system whose standard errors the matrix-free path computes without being asked.
+_CG_SE_LIMIT = 5000
+
 
 class SystemFit:
     """Estimates of a system of equations, with labels.
@@ -78,8 +81,38 @@ class SystemFit:
 
     @property
     def omega_divisor(self) -> str:
-        """How Omega was scaled from the residual cross-products: ``"ml"`` or ``"dof"``."""
-        return self._est.divisor
+        """How Omega was estimated from the residual cross-products: ``"ml"``, ``"dof"`` or
+        ``"ledoit-wolf"``."""
+        d = self._est.divisor
+        return "ledoit-wolf" if d.startswith("lw-") else d
+
+    @property
+    def shrink_target(self) -> str | None:
+        """Target of the Ledoit-Wolf shrinkage (``"diagonal"`` or ``"identity"``), else None."""
+        d = self._est.divisor
+        return d[3:] if d.startswith("lw-") else None
+
+    @property
+    def shrinkage(self) -> float | None:
+        """Ledoit-Wolf intensity of the Omega used in the final step (0 = sample covariance,
+        1 = target), None without shrinkage."""
+        return self._est.shrinkage
+
+    @property
+    def solver(self) -> str:
+        """``"direct"`` (Cholesky of the K x K GLS matrix) or ``"cg"`` (matrix-free)."""
+        return "cg" if getattr(self._prepared, "matrix_free", False) else "direct"
+
+    @property
+    def cg_iterations(self) -> list[int]:
+        """Matrix-free solver: conjugate-gradient iterations of each GLS step (else empty)."""
+        return list(self._est.cg_iterations)
+
+    @property
+    def cg_residual(self) -> float:
+        """Matrix-free solver: relative residual ||h - M delta|| / ||h|| of the last GLS solve
+        (NaN for the direct solver)."""
+        return float(self._est.cg_residual)
 
     @property
     def n_iter(self) -> int:
@@ -137,8 +170,36 @@ class SystemFit:
 
     @cached_property
     def se(self) -> pd.Series:
-        """Standard errors (square roots of the diagonal of :attr:`vcov`)."""
+        """Standard errors (square roots of the diagonal of :attr:`vcov`). With the matrix-free
+        solver they come from conjugate-gradient solves, one per coefficient, when the system
+        has at most 5,000 coefficients; beyond that use :meth:`se_of` for chosen equations."""
+        if self.solver == "cg":
+            if self.n_coef > _CG_SE_LIMIT:
+                raise InvalidOptionError(
+                    f"standard errors of all {self.n_coef} coefficients would take {self.n_coef} "
+                    "conjugate-gradient solves on the matrix-free path; call se_of([...]) for the "
+                    "equations you need, or refit with solver='direct' if memory allows"
+                )
+            return self.se_of(self._names)
         return pd.Series(np.sqrt(np.diag(self.vcov.to_numpy())), index=self._coef_index, name="se")
+
+    def se_of(self, equations: Any) -> pd.Series:
+        """Exact standard errors of the coefficients of some equations (names). On the
+        matrix-free path each coefficient costs one conjugate-gradient solve; on the direct
+        path this is a slice of :attr:`se`."""
+        eqs = [equations] if isinstance(equations, str) else list(equations)
+        unknown = [e for e in eqs if e not in self._names]
+        if unknown:
+            raise InvalidOptionError(f"unknown equations {unknown}; the equations are {self._names}")
+        if self.solver != "cg":
+            return self.se.loc[eqs]
+        pos = [self._names.index(e) for e in eqs]
+        parts = self._prepared.cg_standard_errors(self._est, pos)
+        idx = pd.MultiIndex.from_tuples(
+            [(e, r) for e, p in zip(eqs, pos) for r in self._system._regressors[p]],
+            names=["equation", "regressor"],
+        )
+        return pd.Series(np.concatenate(parts), index=idx, name="se")
 
     @cached_property
     def omega(self) -> pd.DataFrame:
@@ -160,7 +221,7 @@ class SystemFit:
     @cached_property
     def ssr(self) -> pd.Series:
         """Sum of squared residuals per equation."""
-        return pd.Series((self._resid**2).sum(axis=0), index=self._names, name="ssr")
+        return pd.Series(np.diag(self._est.resid_crossprod).copy(), index=self._names, name="ssr")
 
     def _k(self) -> np.ndarray:
         return np.diff(np.asarray(self._prepared.offsets))

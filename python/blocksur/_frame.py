@@ -17,11 +17,13 @@ Example
 >>> from blocksur.scenarios import grid_load_table
 >>> data = grid_load_table(n_districts=2, n_days=120, seed=3)
 >>> system = blocksur.EquationSystem.from_table(data.frame, [
-...     "load_d1 ~ heating_dd_d1 + cooling_dd_d1 + C(day_type)",
-...     ("load_d2", ["heating_dd_d2", "cooling_dd_d2"]),
+...     "load_harbour ~ hdd_harbour + C(day_type) + np.log(industry_harbour)",
+...     ("load_hillside", ["hdd_hillside", "visitors_hillside"]),
 ... ], constant=True)
 >>> system.equation_names
-['load_d1', 'load_d2']
+['load_harbour', 'load_hillside']
+>>> system.sample_info.n_dropped
+8
 """
 
 from __future__ import annotations
@@ -226,11 +228,12 @@ def _formulaic() -> Any:
     return formulaic
 
 
-def _unknown(table: _Table, equation: str, column: str, what: str) -> UnknownColumnError:
+def _unknown(table: _Table, equation: str, column: str, what: str,
+             where: str = "is not a column of the data") -> UnknownColumnError:
     close = difflib.get_close_matches(column, list(table.columns), n=3, cutoff=0.6)
     hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
     return UnknownColumnError(
-        f"equation '{equation}': {what} {column!r} is not a column of the data{hint}",
+        f"equation '{equation}': {what} {column!r} {where}{hint}",
         equation=equation,
         column=column,
         suggestions=close,
@@ -270,7 +273,7 @@ def _parse_formula(text: str, label: str | None, table: _Table) -> _Spec:
     required.sort(key=lambda v: (text.find(v) if v in text else len(text), v))
     for v in required:
         if v not in table.columns:
-            raise _unknown(table, name, v, "the formula uses")
+            raise _unknown(table, name, v, "the name", "in the formula is not a column of the data")
     return _Spec(name=name, formula=text, dependent=None, regressors=[], needs=required)
 
 
@@ -286,10 +289,10 @@ def _parse_columns(spec: Sequence[Any], label: str | None, table: _Table) -> _Sp
     regs = [regs] if isinstance(regs, str) else [str(r) for r in regs]
     name = label if label is not None else dep
     if dep not in table.columns:
-        raise _unknown(table, name, dep, "the dependent column")
+        raise _unknown(table, name, dep, "the dependent variable")
     for r in regs:
         if r not in table.columns:
-            raise _unknown(table, name, r, "the regressor column")
+            raise _unknown(table, name, r, "the regressor")
     if len(set(regs)) != len(regs):
         dup = sorted({r for r in regs if regs.count(r) > 1})
         raise ShapeMismatchError(f"equation '{name}': regressors {dup} are listed twice", equation=name)
@@ -487,7 +490,7 @@ def expand_new(system: Any, new: Any) -> Any:
         if s.formula is None:
             for c in s.regressors:
                 if c not in table.columns:
-                    raise _unknown(table, s.name, c, "the new data lack the regressor column")
+                    raise _unknown(table, s.name, c, "the regressor", "is not a column of the new data")
             cols = {c: np.asarray(table.values(c), dtype=float) for c in s.regressors}
             X = pd.DataFrame(cols, index=table.index)
             if info.constant:
@@ -504,7 +507,7 @@ def expand_new(system: Any, new: Any) -> Any:
         rhs_vars = [str(v) for v in s.model_spec.required_variables]
         for v in rhs_vars:
             if v not in table.columns:
-                raise _unknown(table, s.name, v, "the new data lack the column")
+                raise _unknown(table, s.name, v, "the name", "used in the formula is not a column of the new data")
         frame = table.frame([v for v in rhs_vars], None)
         try:
             X = s.model_spec.get_model_matrix(frame, na_action="ignore")

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import warnings
 from collections.abc import Mapping, Sequence
 from typing import Any
@@ -17,7 +18,14 @@ from ._restrictions import parse_restrictions
 __all__ = ["EquationSystem"]
 
 _METHODS = ("ols", "fgls", "ifgls")
-_DIVISORS = ("ml", "dof")
+_DIVISORS = ("ml", "dof", "ledoit-wolf")
+
+
+def _default_memory_limit() -> float:
+    try:
+        return 0.5 * os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):  # pragma: no cover - non-POSIX
+        return 8e9
 _COVARIANCES = ("classical", "hc0", "hc1")
 # Condition number above which a warning is issued: about half of the 16 digits may be lost.
 _COND_WARN = 1e8
@@ -209,9 +217,13 @@ class EquationSystem:
         return f"<EquationSystem N={self.n_eq} T={self.n_obs} regressors {{{ks}}}>"
 
     # -- estimation ----------------------------------------------------------------------------
-    def _prepare(self) -> Any:
-        if self._prepared is None:
-            prepared = _core.prepare(self._ys, self._xs, self._names, self._regressors)
+    def _prepare(self, matrix_free: bool = False) -> Any:
+        if self._prepared is None or not isinstance(self._prepared, dict):
+            self._prepared = {}
+        if matrix_free not in self._prepared:
+            prepared = _core.prepare(
+                self._ys, self._xs, self._names, self._regressors, matrix_free=matrix_free
+            )
             for name, cond in zip(self._names, prepared.conditions):
                 if cond > _COND_WARN:
                     warnings.warn(
@@ -222,8 +234,15 @@ class EquationSystem:
                         IllConditionedWarning,
                         stacklevel=3,
                     )
-            self._prepared = prepared
-        return self._prepared
+            self._prepared[matrix_free] = prepared
+        return self._prepared[matrix_free]
+
+    def direct_memory(self) -> int:
+        """Bytes the direct solver needs beyond the data: the (K+N)^2 cross-products plus
+        three K x K matrices (the GLS matrix, its factor, the covariance)."""
+        k = sum(len(r) for r in self._regressors)
+        p = k + self.n_eq
+        return 8 * (p * p + 3 * k * k)
 
     def fit(
         self,
@@ -235,6 +254,11 @@ class EquationSystem:
         restrictions: Any = None,
         covariance: str = "classical",
         inference: str = "z",
+        shrink_target: str = "diagonal",
+        solver: str = "auto",
+        memory_limit: float | None = None,
+        cg_tol: float = 1e-10,
+        cg_max_iter: int = 5000,
     ) -> SystemFit:
         """Estimate the system.
 
@@ -246,8 +270,11 @@ class EquationSystem:
             GLS until the coefficients settle; with ``omega="ml"`` its fixed point is the
             Gaussian maximum-likelihood estimator).
         omega
-            Divisor of the residual cross-products S that estimate Omega: ``"ml"`` divides by T,
-            ``"dof"`` divides S_ij by sqrt((T - K_i)(T - K_j)).
+            How Omega is estimated from the residual cross-products S: ``"ml"`` divides by T,
+            ``"dof"`` divides S_ij by sqrt((T - K_i)(T - K_j)), ``"ledoit-wolf"`` shrinks S/T
+            towards ``shrink_target`` with the Ledoit & Wolf (2004) intensity (reported as
+            :attr:`SystemFit.shrinkage`): for systems with about as many equations as
+            observations, or more, where S/T is singular.
         tol
             Iterated FGLS stops when the largest relative change of an equation's fitted values
             between two GLS steps is at most ``tol``.
@@ -266,6 +293,19 @@ class EquationSystem:
         inference
             Reference distribution for coefficient tests and intervals: ``"z"`` (standard normal,
             asymptotic) or ``"t"`` (Student t with T - K_i degrees of freedom for equation i).
+        shrink_target
+            With ``omega="ledoit-wolf"``: ``"diagonal"`` (keeps each equation's variance,
+            shrinks the covariances towards zero) or ``"identity"`` (towards mu I, mu the mean
+            variance, as in Ledoit & Wolf 2004).
+        solver
+            ``"direct"`` (Cholesky of the K x K GLS matrix), ``"cg"`` (matrix-free conjugate
+            gradients: memory O(T (K + N)), no K x K matrix; standard errors per equation on
+            request, see :meth:`SystemFit.se_of`) or ``"auto"``: direct unless
+            :meth:`direct_memory` exceeds ``memory_limit``.
+        memory_limit
+            Bytes the direct solver may use (default: half of the machine's memory).
+        cg_tol, cg_max_iter
+            Conjugate gradients stop at this relative residual or iteration count.
 
         Example
         -------
@@ -278,9 +318,24 @@ class EquationSystem:
             )
         if omega not in _DIVISORS:
             raise InvalidOptionError(
-                f"unknown omega divisor {omega!r}: use 'ml' (divide by T) or 'dof' "
-                "(divide by sqrt((T-K_i)(T-K_j)))"
+                f"unknown omega estimator {omega!r}: use 'ml' (divide by T), 'dof' "
+                "(divide by sqrt((T-K_i)(T-K_j))) or 'ledoit-wolf' (shrinkage)"
             )
+        if shrink_target not in ("diagonal", "identity"):
+            raise InvalidOptionError(
+                f"unknown shrink_target {shrink_target!r}: use 'diagonal' or 'identity'"
+            )
+        if solver not in ("auto", "direct", "cg"):
+            raise InvalidOptionError(f"unknown solver {solver!r}: use 'auto', 'direct' or 'cg'")
+        if memory_limit is None:
+            memory_limit = _default_memory_limit()
+        matrix_free = solver == "cg" or (solver == "auto" and self.direct_memory() > memory_limit)
+        if matrix_free and covariance != "classical":
+            raise InvalidOptionError(
+                "robust covariances need the direct solver (they form K x K matrices); "
+                "use solver='direct' or covariance='classical'"
+            )
+        core_omega = {"ledoit-wolf": f"lw-{shrink_target}"}.get(omega, omega)
         if isinstance(max_iter, bool) or not isinstance(max_iter, (int, np.integer)) or max_iter < 1:
             raise InvalidOptionError(f"max_iter must be a whole number >= 1, got {max_iter!r}")
         try:
@@ -295,15 +350,23 @@ class EquationSystem:
             )
         if inference not in ("z", "t"):
             raise InvalidOptionError(f"unknown inference {inference!r}: use 'z' (normal) or 't'")
-        prepared = self._prepare()
+        prepared = self._prepare(matrix_free)
         rset = None
         if restrictions is not None:
             rset = parse_restrictions(restrictions, self._names, self._regressors)
         try:
-            if rset is None:
-                est = prepared.estimate(method, omega, tol, int(max_iter))
-            else:
-                est = prepared.estimate(method, omega, tol, int(max_iter), rset.r, rset.q)
+            est = prepared.estimate(
+                method,
+                core_omega,
+                tol,
+                int(max_iter),
+                None if rset is None else rset.r,
+                None if rset is None else rset.q,
+                self._ys if omega == "ledoit-wolf" and not matrix_free else None,
+                self._xs if omega == "ledoit-wolf" and not matrix_free else None,
+                cg_tol=float(cg_tol),
+                cg_max_iter=int(cg_max_iter),
+            )
         except RestrictionError as err:
             where = rset.describe(getattr(err, "index", None)) if rset is not None else ""
             if where:
