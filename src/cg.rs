@@ -216,6 +216,9 @@ impl Prepared {
         if !matches!(self.cross, CrossProducts::MatrixFree { .. }) {
             return Err(SurError::InvalidOption("cg_standard_errors is for the matrix-free path".into()));
         }
+        if omega.dim() != (self.n_eq(), self.n_eq()) {
+            return Err(SurError::InvalidOption("Omega does not belong to this system".into()));
+        }
         let (op, _) = OmegaOp::new(self, omega, None)?;
         let k = self.n_coef();
         let mut out = Vec::new();

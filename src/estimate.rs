@@ -416,6 +416,7 @@ impl Prepared {
         cancel: &(dyn Fn() -> bool + Sync),
     ) -> Result<Estimate> {
         opts.validate()?;
+        self.check_matches(None, data)?;
         let k = self.n_coef();
         let z = self.z();
         let constraint = match restrictions {
@@ -570,8 +571,30 @@ impl Prepared {
         }
     }
 
+    /// Checks that an estimate (and data, if given) belong to this prepared system.
+    pub fn check_matches(&self, est: Option<&Estimate>, data: Option<&SystemData>) -> Result<()> {
+        let n = self.n_eq();
+        let bad = |what: &str| SurError::InvalidOption(format!("{what} does not belong to this system"));
+        if let Some(est) = est {
+            if est.coef.len() != self.n_coef() || est.omega.dim() != (n, n) || est.resid_crossprod.dim() != (n, n) {
+                return Err(bad("the estimate"));
+            }
+        }
+        if let Some(data) = data {
+            if data.n_eq() != n
+                || data.equations.iter().enumerate().any(|(i, e)| {
+                    e.y.len() != self.n_obs || e.x.nrows() != self.n_obs || e.x.ncols() != self.k(i)
+                })
+            {
+                return Err(bad("the data"));
+            }
+        }
+        Ok(())
+    }
+
     /// Covariance of gamma (K x K) of the given kind. Robust kinds need the data.
     pub fn gamma_covariance(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array2<f64>> {
+        self.check_matches(Some(est), data)?;
         let v = match kind {
             CovKind::Classical => {
                 if matches!(est.weight, Weight::Identity) || est.restricted.is_none() {
@@ -613,9 +636,7 @@ impl Prepared {
         let t = self.n_obs;
         let k = self.n_coef();
         let n = self.n_eq();
-        if data.n_eq() != n || data.equations.iter().any(|e| e.y.len() != t) {
-            return Err(SurError::InvalidOption("the data do not match the prepared system".into()));
-        }
+        self.check_matches(Some(est), Some(data))?;
         let sigma_inv = match &est.weight {
             Weight::Identity => None,
             _ => Some(invert_omega(&est.omega, &self.names, t)?.0),
@@ -688,6 +709,9 @@ impl Prepared {
     /// Gaussian log-likelihood at Omega = S/T: -(NT/2)(1 + ln 2 pi) - (T/2) ln det(S/T).
     /// None when S/T is singular (an equation that fits exactly).
     pub fn log_likelihood(&self, s: &Array2<f64>) -> Option<f64> {
+        if s.dim() != (self.n_eq(), self.n_eq()) {
+            return None;
+        }
         let t = self.n_obs as f64;
         let n = self.n_eq() as f64;
         let ld = ln_det_spd(&(s / t))?;

@@ -57,7 +57,7 @@ impl RowFactors {
         }
         let mut r = Vec::with_capacity(self.r.len());
         for (a, b) in self.r.into_iter().zip(other.r) {
-            if a.dim() != b.dim() {
+            if a.dim() != b.dim() || a.nrows() != a.ncols() || a.nrows() == 0 {
                 return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
             }
             let stacked = concatenate(Axis(0), &[a.view(), b.view()]).expect("same widths");
@@ -97,6 +97,9 @@ impl Pass2Basis {
         let mut sign = Vec::new();
         for r in &factors.r {
             let m = r.nrows();
+            if m < 2 || r.ncols() != m || r.iter().any(|v| !v.is_finite()) {
+                return Err(SurError::InvalidOption("a pass-1 factor is not a finite square matrix of size K_i + 1".into()));
+            }
             let mut safe = r.clone();
             // A perfect fit leaves r[m-1, m-1] = 0; its q column is then immaterial (rho = 0).
             if safe[[m - 1, m - 1]] == 0.0 {
@@ -149,7 +152,12 @@ impl CrossStats {
 
     /// The summary of the union of two sets of rows.
     pub fn merge(self, other: CrossStats) -> Result<CrossStats> {
-        if self.gram.dim() != other.gram.dim() {
+        if self.gram.dim() != other.gram.dim()
+            || self.colsum.len() != other.colsum.len()
+            || self.y_mean.len() != other.y_mean.len()
+            || self.y_m2.len() != other.y_m2.len()
+            || self.y_raw.len() != other.y_raw.len()
+        {
             return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
         }
         let (na, nb) = (self.n_rows as f64, other.n_rows as f64);
@@ -196,11 +204,19 @@ impl Prepared {
             offsets.push(offsets.last().unwrap() + regs.len());
         }
         let k = offsets[n];
+        if stats.gram.dim() != (k + n, k + n)
+            || stats.colsum.len() != k + n
+            || stats.y_mean.len() != n
+            || stats.y_m2.len() != n
+            || stats.y_raw.len() != n
+        {
+            return Err(SurError::InvalidOption("the pass-2 summary does not match the system".into()));
+        }
         let mut out = Vec::with_capacity(n);
         for i in 0..n {
             let ki = regressors[i].len();
             let rp = &factors.r[i];
-            if rp.nrows() != ki + 1 {
+            if rp.nrows() != ki + 1 || rp.ncols() != ki + 1 {
                 return Err(SurError::InvalidOption("the summaries do not match the system".into()));
             }
             if t <= ki {
