@@ -55,7 +55,8 @@ def make_sur_data(
     """Seeded SUR system with cross-correlated errors and unequal K_i.
 
     Returns {name: (y, X)} with y shape (T,), X shape (T, K_i), float64, C order.
-    If const[i] is True the first column of X_i is a column of ones.
+    If const[i] is True the first column of X_i is a column of ones; if it is
+    False the regressors have large positive means (so uncentred R^2 matters).
     Regressors of different equations share a common factor (so they are
     correlated but not identical), which makes FGLS differ visibly from OLS.
     Coefficients are drawn away from zero (|beta| in [0.5, 2]).
@@ -85,6 +86,12 @@ def make_sur_data(
         if c:
             X[:, 0] = 1.0
         beta = rng.uniform(0.5, 2.0, k) * rng.choice([-1.0, 1.0], k)
+        if not c:
+            # No constant: regressors with large positive means and positive
+            # coefficients, so mean(y) is far from zero and the uncentred and
+            # centred R^2 differ clearly (the model stays correctly specified).
+            X = X - X.min(axis=0) + 5.0
+            beta = np.abs(beta)
         y = X @ beta + E[:, i]
         out[nm] = (np.ascontiguousarray(y), np.ascontiguousarray(X))
     return out
