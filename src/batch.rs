@@ -45,7 +45,7 @@ pub fn fit_many(
     let work = |checks: bool| {
         let mut done = 0usize;
         loop {
-            if checks && done % 32 == 0 && cancel() {
+            if checks && done.is_multiple_of(32) && cancel() {
                 stop.store(true, Ordering::Relaxed);
             }
             if stop.load(Ordering::Relaxed) {

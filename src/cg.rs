@@ -182,7 +182,7 @@ impl Prepared {
             }
             let mp = self.apply_m(op, &p);
             let pmp = p.dot(&mp);
-            if !(pmp > 0.0) {
+            if pmp.is_nan() || pmp <= 0.0 {
                 return Err(SurError::numerical("conjugate gradients", "the GLS matrix lost positive definiteness"));
             }
             let alpha = rz / pmp;

@@ -300,7 +300,7 @@ impl Prepared {
         start: &Array1<f64>,
         opts: &FitOptions,
         cancel: &(dyn Fn() -> bool + Sync),
-    ) -> Result<(Array1<f64>, Weight, f64, Option<(usize, f64)>)> {
+    ) -> Result<GlsStep> {
         let n = self.n_eq();
         let k = self.n_coef();
         let omega = &est.omega;
@@ -596,17 +596,15 @@ impl Prepared {
     pub fn gamma_covariance(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array2<f64>> {
         self.check_matches(Some(est), data)?;
         let v = match kind {
-            CovKind::Classical => {
-                if matches!(est.weight, Weight::Identity) || est.restricted.is_none() {
-                    self.classical_gamma_cov(est)?
-                } else {
+            CovKind::Classical => match (&est.weight, &est.restricted) {
+                (Weight::Identity, _) | (_, None) => self.classical_gamma_cov(est)?,
+                (w, Some(p)) => {
                     // GLS classical, restricted: A M^-1 A' = M^-1 - W^-1 Rg' H^-1 Rg W^-1.
-                    let p = est.restricted.as_ref().unwrap();
-                    let mut v = self.weight_inverse(&est.weight)? - p.wirt.dot(&p.h_inv).dot(&p.wirt.t());
+                    let mut v = self.weight_inverse(w)? - p.wirt.dot(&p.h_inv).dot(&p.wirt.t());
                     symmetrize(&mut v);
                     return Ok(v);
                 }
-            }
+            },
             CovKind::Hc0 | CovKind::Hc1 => {
                 let data = data.ok_or_else(|| SurError::InvalidOption("a robust covariance needs the data".into()))?;
                 let meat = self.score_outer_product(est, data)?;
@@ -771,6 +769,10 @@ impl Restrictions {
         Ok(())
     }
 }
+
+/// One GLS step: delta, the weight, the condition estimate of Omega, and (matrix-free) the CG
+/// iterations and final relative residual.
+type GlsStep = (Array1<f64>, Weight, f64, Option<(usize, f64)>);
 
 /// Omega and what the matrix-free path needs to apply its inverse cheaply.
 struct OmegaEst {

@@ -1,7 +1,7 @@
 //! Dense kernels: the Gram matrix by BLAS syrk, triangular inverses, and the inverse of the
 //! cross-equation covariance with a diagnosis when it is singular.
 
-use ndarray::{s, Array1, Array2, ArrayView2, ShapeBuilder};
+use ndarray::{Array1, Array2, ArrayView2, ShapeBuilder};
 use ndarray_linalg::{Eigh, UPLO};
 
 use crate::error::{Result, SurError};
@@ -244,7 +244,7 @@ pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize) -> Resu
     let diag: Vec<f64> = (0..n).map(|i| omega[[i, i]]).collect();
     let scale = diag.iter().cloned().fold(0.0, f64::max);
     for (i, &d) in diag.iter().enumerate() {
-        if !(d > scale * 1e-28) || !d.is_finite() {
+        if d.is_nan() || d <= scale * 1e-28 || !d.is_finite() {
             return Err(SurError::SingularOmega {
                 equations: vec![names[i].clone()],
                 detail: format!(
@@ -344,9 +344,4 @@ pub fn fmt_num(x: f64) -> String {
         let s = s.trim_end_matches('0').trim_end_matches('.');
         s.to_string()
     }
-}
-
-/// The columns of a block, as a sub-view of a bigger matrix.
-pub fn block(g: &Array2<f64>, r0: usize, r1: usize, c0: usize, c1: usize) -> ArrayView2<'_, f64> {
-    g.slice(s![r0..r1, c0..c1])
 }
