@@ -47,17 +47,33 @@ fn raise(py: Python<'_>, err: SurError) -> PyErr {
 /// Checks for Ctrl-C from inside released-GIL work: briefly takes the interpreter lock and runs
 /// Python's signal handlers; keeps the KeyboardInterrupt (or other error) they raise.
 #[derive(Default)]
+/// With a `callback`, each check also calls it with the number of checks so far (a progress
+/// hook: one call per equation and row block of the data pass, per GLS step of a fit); an
+/// exception it raises stops the work and is re-raised.
 struct Interrupt {
     error: std::sync::Mutex<Option<PyErr>>,
+    callback: Option<Py<PyAny>>,
+    count: std::sync::atomic::AtomicUsize,
 }
 
 impl Interrupt {
+    fn with_callback(callback: Option<Py<PyAny>>) -> Self {
+        Interrupt { callback, ..Default::default() }
+    }
+
     fn requested(&self) -> bool {
-        Python::attach(|py| match py.check_signals() {
-            Ok(()) => false,
-            Err(e) => {
-                *self.error.lock().unwrap_or_else(|p| p.into_inner()) = Some(e);
-                true
+        Python::attach(|py| {
+            let mut outcome = py.check_signals();
+            if let (Ok(()), Some(cb)) = (&outcome, &self.callback) {
+                let n = self.count.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
+                outcome = cb.call1(py, (n,)).map(|_| ());
+            }
+            match outcome {
+                Ok(()) => false,
+                Err(e) => {
+                    *self.error.lock().unwrap_or_else(|p| p.into_inner()) = Some(e);
+                    true
+                }
             }
         })
     }
@@ -109,7 +125,7 @@ struct PyEstimate {
 /// `matrix_free=True` keeps the T x P basis instead of the P x P cross-products (for systems
 /// whose K x K matrices would not fit in memory).
 #[pyfunction]
-#[pyo3(signature = (ys, xs, names, regressors, matrix_free=false))]
+#[pyo3(signature = (ys, xs, names, regressors, matrix_free=false, progress=None))]
 fn prepare(
     py: Python<'_>,
     ys: Vec<PyReadonlyArray1<'_, f64>>,
@@ -117,9 +133,10 @@ fn prepare(
     names: Vec<String>,
     regressors: Vec<Vec<String>>,
     matrix_free: bool,
+    progress: Option<Py<PyAny>>,
 ) -> PyResult<PyPrepared> {
     let data = equations(&ys, &xs, &names, &regressors)?;
-    let stop = Interrupt::default();
+    let stop = Interrupt::with_callback(progress);
     let out = py.detach(|| {
         if matrix_free {
             Prepared::new_matrix_free(&data, &|| stop.requested())
@@ -156,7 +173,7 @@ impl PyPrepared {
     /// Runs one estimation ("ols", "fgls", "ifgls"; omega "ml", "dof", "lw-diagonal" or
     /// "lw-identity"), imposing R b = q when `r` and `q` are given. Shrinkage on the direct path
     /// needs the data (`ys`, `xs`).
-    #[pyo3(signature = (method, divisor, tol, max_iter, r=None, q=None, ys=None, xs=None, cg_tol=1e-10, cg_max_iter=5000))]
+    #[pyo3(signature = (method, divisor, tol, max_iter, r=None, q=None, ys=None, xs=None, cg_tol=1e-10, cg_max_iter=5000, progress=None))]
     #[allow(clippy::too_many_arguments)]
     fn estimate<'py>(
         &self,
@@ -171,6 +188,7 @@ impl PyPrepared {
         xs: Option<Vec<PyReadonlyArray2<'py, f64>>>,
         cg_tol: f64,
         cg_max_iter: usize,
+        progress: Option<Py<PyAny>>,
     ) -> PyResult<PyEstimate> {
         let opts = FitOptions {
             method: Method::parse(method).map_err(|e| raise(py, e))?,
@@ -191,7 +209,7 @@ impl PyPrepared {
         } else {
             Some(equations(&ys, &xs, &self.inner.names, &self.inner.regressors)?)
         };
-        let stop = Interrupt::default();
+        let stop = Interrupt::with_callback(progress);
         let out = py.detach(|| self.inner.estimate_with(&opts, restrictions.as_ref(), data.as_ref(), &|| stop.requested()));
         out.map(|inner| PyEstimate { inner }).map_err(|e| stop.raise(py, e))
     }

@@ -13,6 +13,8 @@ import pandas as pd
 from . import _core
 from .errors import IllConditionedWarning, InvalidOptionError, NotConvergedWarning, RestrictionError, ShapeMismatchError
 from ._fit import SystemFit
+from ._progress import close as close_hook
+from ._progress import progress_hook
 from ._restrictions import parse_restrictions
 
 __all__ = ["EquationSystem"]
@@ -217,13 +219,18 @@ class EquationSystem:
         return f"<EquationSystem N={self.n_eq} T={self.n_obs} regressors {{{ks}}}>"
 
     # -- estimation ----------------------------------------------------------------------------
-    def _prepare(self, matrix_free: bool = False) -> Any:
+    def _prepare(self, matrix_free: bool = False, progress: bool | None = False) -> Any:
         if self._prepared is None or not isinstance(self._prepared, dict):
             self._prepared = {}
         if matrix_free not in self._prepared:
-            prepared = _core.prepare(
-                self._ys, self._xs, self._names, self._regressors, matrix_free=matrix_free
-            )
+            hook = progress_hook(progress, "data pass", None, "block")
+            try:
+                prepared = _core.prepare(
+                    self._ys, self._xs, self._names, self._regressors,
+                    matrix_free=matrix_free, progress=hook,
+                )
+            finally:
+                close_hook(hook)
             for name, cond in zip(self._names, prepared.conditions):
                 if cond > _COND_WARN:
                     warnings.warn(
@@ -259,6 +266,7 @@ class EquationSystem:
         memory_limit: float | None = None,
         cg_tol: float = 1e-10,
         cg_max_iter: int = 5000,
+        progress: bool | None = None,
     ) -> SystemFit:
         """Estimate the system.
 
@@ -306,6 +314,9 @@ class EquationSystem:
             Bytes the direct solver may use (default: half of the machine's memory).
         cg_tol, cg_max_iter
             Conjugate gradients stop at this relative residual or iteration count.
+        progress
+            Progress bars (tqdm) for the data pass and the GLS steps of an iterated fit:
+            ``True``, ``False``, or ``None`` for on only when standard error is a terminal.
 
         Example
         -------
@@ -350,10 +361,11 @@ class EquationSystem:
             )
         if inference not in ("z", "t"):
             raise InvalidOptionError(f"unknown inference {inference!r}: use 'z' (normal) or 't'")
-        prepared = self._prepare(matrix_free)
+        prepared = self._prepare(matrix_free, progress)
         rset = None
         if restrictions is not None:
             rset = parse_restrictions(restrictions, self._names, self._regressors)
+        hook = progress_hook(progress, "iterated FGLS", int(max_iter)) if method == "ifgls" else None
         try:
             est = prepared.estimate(
                 method,
@@ -366,6 +378,7 @@ class EquationSystem:
                 self._xs if omega == "ledoit-wolf" and not matrix_free else None,
                 cg_tol=float(cg_tol),
                 cg_max_iter=int(cg_max_iter),
+                progress=hook,
             )
         except RestrictionError as err:
             where = rset.describe(getattr(err, "index", None)) if rset is not None else ""
@@ -373,6 +386,8 @@ class EquationSystem:
                 msg = str(err).split(" ", 2)[-1] if str(err).startswith("restriction ") else str(err)
                 raise RestrictionError(f"{where} {msg}", index=err.index) from None
             raise
+        finally:
+            close_hook(hook)
         if est.omega_cond > _COND_WARN:
             warnings.warn(
                 f"the estimated cross-equation covariance is nearly singular (condition number "
