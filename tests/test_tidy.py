@@ -33,7 +33,13 @@ def _system(seed=1):
 def _same(a, b):
     """Value-for-value identity of every number and label a reader can ask for."""
     for name in MEASURES:
-        x, y = getattr(a, name), getattr(b, name)
+        try:
+            x = getattr(a, name)
+        except blocksur.BlocksurError as err:  # e.g. vcov on the matrix-free path
+            with pytest.raises(type(err)):
+                getattr(b, name)
+            continue
+        y = getattr(b, name)
         assert x.equals(y), name
         assert x.index.equals(y.index), name
     for name in SCALARS:

@@ -18,6 +18,9 @@ from ._fit import SystemFit
 from ._tests import HypothesisTestResult
 from ._system import EquationSystem
 from ._frame import SampleInfo
+from ._stream import RowlessFit, StreamInfo, fit_chunks, fit_parquet
+from ._dask import fit_dask
+from ._many import ManyFits, fit_groups, fit_stacked
 from .errors import (
     BlocksurError,
     BlocksurWarning,
@@ -65,4 +68,12 @@ __all__ = [
     "FormulaError",
     "MissingDependencyError",
     "DataNotKeptError",
+    "fit_chunks",
+    "fit_parquet",
+    "fit_dask",
+    "fit_groups",
+    "fit_stacked",
+    "RowlessFit",
+    "StreamInfo",
+    "ManyFits",
 ]

@@ -26,10 +26,12 @@ def prepare(
     xs: Sequence[_F64_2D],
     names: Sequence[str],
     regressors: Sequence[Sequence[str]],
+    matrix_free: bool = False,
 ) -> Prepared:
-    """Validates the system and runs the data pass (QR per equation, one Gram matrix), with the
-    interpreter lock released. Raises the blocksur error classes (ShapeMismatchError,
-    NonFiniteError, TooFewObservationsError, CollinearityError, ...)."""
+    """Validates the system and runs the data pass (QR per equation, and one Gram matrix
+    unless ``matrix_free``), with the interpreter lock released. Raises the blocksur error
+    classes (ShapeMismatchError, NonFiniteError, TooFewObservationsError, CollinearityError,
+    ...)."""
 
 def residuals(ys: Sequence[_F64_1D], xs: Sequence[_F64_2D], coef: _F64_1D) -> _F64_2D:
     """Residuals y_i - X_i b_i as a T x N array, for stacked coefficients ``coef``."""
@@ -92,9 +94,24 @@ class Prepared:
         max_iter: int,
         r: _F64_2D | None = None,
         q: _F64_1D | None = None,
+        ys: Sequence[_F64_1D] | None = None,
+        xs: Sequence[_F64_2D] | None = None,
+        cg_tol: float = 1e-10,
+        cg_max_iter: int = 5000,
     ) -> Estimate:
-        """One estimation: method "ols", "fgls" or "ifgls"; divisor "ml" or "dof"; imposes
-        R b = q when ``r`` and ``q`` are given."""
+        """One estimation: method "ols", "fgls" or "ifgls"; divisor "ml", "dof",
+        "lw-diagonal" or "lw-identity" (Ledoit-Wolf shrinkage, which on the direct path needs
+        the data ``ys``, ``xs``); imposes R b = q when ``r`` and ``q`` are given."""
+
+    def cg_standard_errors(
+        self, est: Estimate, equations: Sequence[int], cg_tol: float = 1e-10, cg_max_iter: int = 5000
+    ) -> list[_F64_1D]:
+        """Matrix-free path: standard errors of the coefficients of the given equations (by
+        position), one array per equation, from conjugate-gradient solves."""
+
+    @property
+    def matrix_free(self) -> bool:
+        """Whether this object was prepared for the matrix-free (conjugate-gradient) path."""
 
     def coef_covariance(
         self,
@@ -146,6 +163,15 @@ class Estimate:
     def converged(self) -> bool: ...
     @property
     def criterion_path(self) -> list[float]: ...
+    @property
+    def shrinkage(self) -> float | None:
+        """Ledoit-Wolf intensity of the final Omega (None without shrinkage)."""
+    @property
+    def cg_iterations(self) -> list[int]:
+        """Conjugate-gradient iterations of each GLS step (empty on the direct path)."""
+    @property
+    def cg_residual(self) -> float:
+        """Relative residual of the last conjugate-gradient solve (NaN on the direct path)."""
     @property
     def omega_cond(self) -> float:
         """Condition-number estimate of the Omega used in the last GLS step."""

@@ -113,7 +113,18 @@ def _header(fit: "SystemFit", level: float) -> list[tuple[str, str]]:
     if info is not None:
         sample += "; " + info.describe()
     rows.append(("sample", sample))
-    rows.append(("Omega", _DIVISOR.get(fit.omega_divisor, fit.omega_divisor)))
+    divisor = fit.omega_divisor
+    if divisor == "ledoit-wolf":
+        target = getattr(fit, "shrink_target", None) or "target"
+        amount = getattr(fit, "shrinkage", None)
+        how = f"intensity {amount:.3f}" if amount is not None else "estimated intensity"
+        rows.append(("Omega", f"residual covariance shrunk toward its {target} (Ledoit-Wolf, {how})"))
+    else:
+        rows.append(("Omega", _DIVISOR.get(divisor, divisor)))
+    if getattr(fit, "solver", "direct") == "cg":
+        its = list(getattr(fit, "cg_iterations", []))
+        rows.append(("solver", "matrix-free conjugate gradients"
+                     + (f" ({sum(its)} iterations over {len(its)} GLS steps)" if its else "")))
     dist = "z (standard normal)" if fit.inference == "z" else "t (T - K_i degrees of freedom)"
     rows.append(("covariance", f"{_COVARIANCE.get(fit.covariance, fit.covariance)}; {dist} tests; "
                  f"{_level(level)} intervals"))
@@ -164,6 +175,20 @@ def _corr_summary(fit: "SystemFit", top: int = 3) -> str:
             f"{vals.max():+.2f}], mean |r| {np.mean(np.abs(vals)):.2f}; strongest: {pairs}")
 
 
+def _coef_table(fit: "SystemFit", level: float) -> tuple[Any, str | None]:
+    """The coefficient table, or the estimates alone (NaN elsewhere) with a note when the
+    standard errors are not available (matrix-free path beyond its limit)."""
+    from .errors import BlocksurError
+
+    try:
+        return fit.coef_table(level), None
+    except BlocksurError as err:
+        t = fit.coef.to_frame("estimate")
+        for col in ("se", "stat", "pval", "lower", "upper"):
+            t[col] = np.nan
+        return t, f"standard errors not computed: {err}"
+
+
 def _caution(fit: "SystemFit") -> str:
     robust = "" if fit.covariance == "classical" else "; the robust covariance relaxes this for the standard errors"
     return CAUTION.format(robust=robust)
@@ -189,7 +214,9 @@ def text_report(fit: "SystemFit", level: float = 0.95, max_equations: int = 12, 
     for label, value in _header(fit, level):
         kv(label, value)
 
-    table = fit.coef_table(level)
+    table, missing = _coef_table(fit, level)
+    if missing:
+        kv("note", missing)
     stats = fit.equation_stats()
     shown = min(fit.n_eq, max_equations)
     stat_name = "z" if fit.inference == "z" else "t"
@@ -277,7 +304,9 @@ def html_report(fit: "SystemFit", level: float = 0.95, max_equations: int = 12, 
         h.append(f"<tr><th>{_e(label)}</th><td>{_e(value)}</td></tr>")
     h.append("</tbody></table>")
 
-    table = fit.coef_table(level)
+    table, missing = _coef_table(fit, level)
+    if missing:
+        h.append(f"<p>{_e(missing)}</p>")
     stats = fit.equation_stats()
     stat_name = "z" if fit.inference == "z" else "t"
     shown = min(fit.n_eq, max_equations)

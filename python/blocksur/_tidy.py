@@ -198,39 +198,67 @@ def _index_from_json(d: dict[str, Any]) -> pd.Index:
 
 
 # -- stand-ins for the compiled objects of a restored fit --------------------------------------------
+def _attrs(obj: Any) -> dict[str, Any]:
+    """The public data attributes of a compiled object as plain values (float arrays stay
+    numpy arrays), so that fields added to the core later are saved without code here."""
+    out: dict[str, Any] = {}
+    for name in dir(obj):
+        if name.startswith("_"):
+            continue
+        try:
+            v = getattr(obj, name)
+        except Exception:  # a property that cannot be computed for this object
+            continue
+        if callable(v):
+            continue
+        if isinstance(v, np.ndarray):
+            out[name] = np.array(v, dtype=float) if v.dtype.kind == "f" else v.tolist()
+        elif isinstance(v, (list, tuple)):
+            if all(isinstance(e, (bool, int, float, str, type(None), np.generic)) for e in v):
+                out[name] = [e.item() if isinstance(e, np.generic) else e for e in v]
+        elif isinstance(v, (bool, int, float, str, type(None))):
+            out[name] = v
+        elif isinstance(v, np.generic):
+            out[name] = v.item()
+    return out
+
+
+def _plain(obj: Any) -> Any:
+    """Undoes the JSON encoding: ``{"shape", "data"}`` dicts to arrays, NaN tokens to floats."""
+    if isinstance(obj, dict):
+        if set(obj) == {"shape", "data"}:
+            return _unarr(obj)
+        return {k: _plain(v) for k, v in obj.items()}
+    if isinstance(obj, list):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, str) and obj in _NONFINITE:
+        return _NONFINITE[obj]
+    return obj
+
+
 class _FrozenEstimate:
-    """The numbers of one estimation, without the compiled object."""
+    """The numbers of one estimation (every public field of the compiled estimate), without
+    the compiled object."""
 
     def __init__(self, d: dict[str, Any]) -> None:
-        self.coef = np.asarray(d["coef"], dtype=float)
-        self.omega = np.asarray(d["omega"], dtype=float)
-        self.resid_crossprod = np.asarray(d["resid_crossprod"], dtype=float)
-        self.n_iter = int(d["n_iter"])
-        self.converged = bool(d["converged"])
-        self.criterion_path = [float(v) for v in d["criterion_path"]]
-        self.n_restrictions = int(d["n_restrictions"])
-        self.omega_cond = _unnum(d.get("omega_cond", "NaN"))
-        self.method = str(d["method"])
-        self.divisor = str(d["divisor"])
+        self.__dict__.update(d)
+        for key in ("coef", "omega", "resid_crossprod"):
+            self.__dict__[key] = np.asarray(d[key], dtype=float)
 
 
 class _RestoredCore:
     """Answers what SystemFit asks of the compiled ``Prepared`` from stored numbers; anything
     that needs a new pass over the data goes to the system's own data when it was kept."""
 
-    def __init__(self, d: dict[str, Any], system: Any, est: _FrozenEstimate, vcov: np.ndarray) -> None:
-        self.n_obs = int(d["n_obs"])
-        self.offsets = [int(v) for v in d["offsets"]]
-        self.shared_regressors = bool(d["shared_regressors"])
-        self.spans_constant = [bool(v) for v in d["spans_constant"]]
-        self.tss_centred = [float(v) for v in d["tss_centred"]]
-        self.tss_raw = [float(v) for v in d["tss_raw"]]
-        self.conditions = [_unnum(v) for v in d.get("conditions", [])]
+    def __init__(self, d: dict[str, Any], system: Any, est: _FrozenEstimate, vcov: np.ndarray | None) -> None:
+        fields = {k: v for k, v in d.items() if k not in ("ols_crossprod", "loglik")}
+        self.__dict__.update(fields)
         self._ols_crossprod = np.asarray(d["ols_crossprod"], dtype=float)
         self._loglik = d["loglik"]
         self._system = system
         self._est = est
         self._vcov = vcov
+        self._vcov_error: str | None = None
         self._live: Any = None
 
     def _core(self) -> Any:
@@ -246,13 +274,22 @@ class _RestoredCore:
             return self._loglik
         return self._core().log_likelihood(est)
 
-    def coef_covariance(self, est: Any, *args: Any) -> np.ndarray:
-        if est is self._est:
+    def coef_covariance(self, est: Any, *args: Any, **kwargs: Any) -> np.ndarray:
+        if est is self._est and self._vcov is not None:
             return self._vcov
-        return self._core().coef_covariance(est, *args)
+        if est is self._est and getattr(self, "_vcov_error", None):
+            raise InvalidOptionError(self._vcov_error)
+        return self._core().coef_covariance(est, *args, **kwargs)
 
-    def estimate(self, *args: Any) -> Any:
-        return self._core().estimate(*args)
+    def estimate(self, *args: Any, **kwargs: Any) -> Any:
+        return self._core().estimate(*args, **kwargs)
+
+    def __getattr__(self, name: str) -> Any:
+        # methods of the compiled object not stored here (only called on the paths that need
+        # the data): go to the rebuilt core, or say that the data were not kept
+        if name.startswith("_"):
+            raise AttributeError(name)
+        return getattr(self._core(), name)
 
 
 class _RestoredSystem:
@@ -302,21 +339,39 @@ class _RestoredSystem:
     def n_eq(self) -> int:
         return len(self._names)
 
-    def _prepare(self) -> Any:
+    def _prepare(self, *args: Any, **kwargs: Any) -> Any:
         if self._prepared is None:
-            from . import _core
+            from ._system import EquationSystem
 
-            self._prepared = _core.prepare(self._ys, self._xs, self._names, self._regressors)
-        return self._prepared
+            # a real system on the kept data: the same checks and options as the original
+            eqs = {n: (y, x) for n, y, x in zip(self._names, self._ys, self._xs)}
+            self._prepared = EquationSystem(eqs, regressor_names=self._regressors)
+        return self._prepared._prepare(*args, **kwargs)
 
 
 # -- saving ------------------------------------------------------------------------------------------
 def _numbers(fit: "SystemFit") -> dict[str, Any]:
     """Everything a restored fit needs, as numpy arrays and plain Python values."""
+    from .errors import BlocksurError
+
     est, core = fit._est, fit._prepared
     loglik = fit.loglik
     y = np.column_stack(fit._system._ys)
     rs = fit.restrictions
+    core_fields = _attrs(core)
+    core_fields["ols_crossprod"] = np.asarray(core.ols_crossprod(), dtype=float)
+    core_fields["loglik"] = None if not math.isfinite(loglik) else float(loglik)
+    vcov_error = None
+    try:
+        vcov = fit.vcov.to_numpy()
+    except BlocksurError as err:  # not formed on the matrix-free path: keep the standard errors
+        vcov, vcov_error = None, str(err)
+    se = None
+    if vcov is None:
+        try:
+            se = fit.se.to_numpy()
+        except BlocksurError:
+            se = None
     return {
         "format": FORMAT,
         "version": VERSION,
@@ -328,30 +383,11 @@ def _numbers(fit: "SystemFit") -> dict[str, Any]:
             "covariance": fit.covariance,
             "inference": fit.inference,
         },
-        "estimate": {
-            "coef": np.asarray(est.coef, dtype=float),
-            "omega": np.asarray(est.omega, dtype=float),
-            "resid_crossprod": np.asarray(est.resid_crossprod, dtype=float),
-            "n_iter": int(est.n_iter),
-            "converged": bool(est.converged),
-            "criterion_path": [float(v) for v in est.criterion_path],
-            "n_restrictions": int(est.n_restrictions),
-            "omega_cond": float(getattr(est, "omega_cond", math.nan)),
-            "method": str(est.method),
-            "divisor": str(est.divisor),
-        },
-        "core": {
-            "n_obs": int(fit.n_obs),
-            "offsets": [int(v) for v in core.offsets],
-            "shared_regressors": bool(core.shared_regressors),
-            "spans_constant": [bool(v) for v in core.spans_constant],
-            "tss_centred": [float(v) for v in core.tss_centred],
-            "tss_raw": [float(v) for v in core.tss_raw],
-            "conditions": [float(v) for v in getattr(core, "conditions", [])],
-            "ols_crossprod": np.asarray(core.ols_crossprod(), dtype=float),
-            "loglik": None if not math.isfinite(loglik) else float(loglik),
-        },
-        "vcov": fit.vcov.to_numpy(),
+        "estimate": _attrs(est),
+        "core": core_fields,
+        "vcov": vcov,
+        "vcov_error": vcov_error,
+        "se": se,
         "dependent": y,
         "resid": np.asarray(fit._resid, dtype=float),
         "restrictions": None
@@ -429,8 +465,9 @@ def _build(cls: type, d: dict[str, Any], system: Any) -> "SystemFit":
     from ._restrictions import RestrictionSet
 
     est = _FrozenEstimate(d["estimate"])
-    vcov = np.asarray(d["vcov"], dtype=float)
+    vcov = None if d.get("vcov") is None else np.asarray(d["vcov"], dtype=float)
     core = _RestoredCore(d["core"], system, est, vcov)
+    core._vcov_error = d.get("vcov_error")
     rs = d["restrictions"]
     rset = None if rs is None else RestrictionSet(np.asarray(rs["r"], float), np.asarray(rs["q"], float), tuple(rs["texts"]))
     opts = d["options"]
@@ -445,7 +482,10 @@ def _build(cls: type, d: dict[str, Any], system: Any) -> "SystemFit":
         covariance=opts["covariance"],
         inference=opts["inference"],
     )
-    fit.__dict__["vcov"] = pd.DataFrame(vcov, index=fit._coef_index, columns=fit._coef_index)
+    if vcov is not None:
+        fit.__dict__["vcov"] = pd.DataFrame(vcov, index=fit._coef_index, columns=fit._coef_index)
+    elif d.get("se") is not None:
+        fit.__dict__["se"] = pd.Series(np.asarray(d["se"], dtype=float), index=fit._coef_index, name="se")
     return fit
 
 
@@ -458,32 +498,15 @@ def fit_from_dict(cls: type, d: dict[str, Any]) -> "SystemFit":
             f"this fit dict has format version {d['version']}; this blocksur reads up to {VERSION}: upgrade blocksur"
         )
 
-    def arr(v: Any) -> np.ndarray:
-        return _unarr(v)
-
-    e = dict(d["estimate"])
-    for k in ("coef", "omega", "resid_crossprod"):
-        e[k] = arr(e[k])
-    e["criterion_path"] = [_unnum(v) for v in e["criterion_path"]]
-    core = dict(d["core"])
-    core["ols_crossprod"] = arr(core["ols_crossprod"])
-    core["loglik"] = None if core["loglik"] is None else _unnum(core["loglik"])
-    core["conditions"] = [_unnum(v) for v in core.get("conditions", [])]
-    rs = d["restrictions"]
-    if rs is not None:
-        rs = {"r": arr(rs["r"]), "q": arr(rs["q"]), "texts": rs["texts"]}
+    labels = ("rows", "sample", "equations", "regressors", "restrictions")  # kept as written
+    p = _plain({k: v for k, v in d.items() if k not in labels})
     rows = _index_from_json(d["rows"])
-    y = arr(d["dependent"])
-    xs = None if d.get("regressor_data") is None else [np.asfortranarray(arr(x)) for x in d["regressor_data"]]
-    system = _RestoredSystem(d["equations"], d["regressors"], rows, y, xs, _sample_from_json(d.get("sample"), rows))
-    plain = {
-        "estimate": e,
-        "core": core,
-        "vcov": arr(d["vcov"]),
-        "resid": arr(d["resid"]),
-        "restrictions": rs,
-        "options": d["options"],
-    }
+    xs = None if p.get("regressor_data") is None else [np.asfortranarray(x) for x in p["regressor_data"]]
+    system = _RestoredSystem(d["equations"], d["regressors"], rows, np.asarray(p["dependent"], dtype=float),
+                             xs, _sample_from_json(d.get("sample"), rows))
+    plain = {k: p.get(k) for k in ("estimate", "core", "vcov", "vcov_error", "se", "resid", "options")}
+    rs = d.get("restrictions")
+    plain["restrictions"] = None if rs is None else {"r": _unarr(rs["r"]), "q": _unarr(rs["q"]), "texts": rs["texts"]}
     return _build(cls, plain, system)
 
 
