@@ -345,3 +345,69 @@ pub fn fmt_num(x: f64) -> String {
         s.to_string()
     }
 }
+
+/// Thin QR of a tall column-major T x m matrix by Householder reflections: Q (T x m, orthonormal
+/// columns) and upper-triangular R (m x m) with A = Q R. The unblocked algorithm of LAPACK's
+/// geqr2/org2r, written out: for the narrow blocks of a system (a few regressors) it avoids
+/// LAPACK's per-call overhead, which dominates there. Wider blocks go to LAPACK.
+pub fn thin_qr(a: Array2<f64>) -> Result<(Array2<f64>, Array2<f64>)> {
+    let (t, m) = a.dim();
+    if m > 24 || t < m {
+        use ndarray_linalg::QRInto;
+        return a.qr_into().map_err(|e| SurError::numerical("QR", e));
+    }
+    let mut a = if a.t().is_standard_layout() { a } else { to_fortran(&a) };
+    let mut r = Array2::<f64>::zeros((m, m));
+    let mut vs: Vec<(Vec<f64>, f64)> = Vec::with_capacity(m);
+    {
+        let buf = a.as_slice_memory_order_mut().expect("column-major and contiguous");
+        for j in 0..m {
+            let (left, right) = buf.split_at_mut((j + 1) * t);
+            let col = &mut left[j * t..];
+            let x = &col[j..];
+            let scale = x.iter().fold(0.0f64, |s, v| s.max(v.abs()));
+            let mut v: Vec<f64> = x.to_vec();
+            let (alpha, beta) = if scale == 0.0 {
+                (0.0, 0.0)
+            } else {
+                let norm = scale * x.iter().map(|e| (e / scale) * (e / scale)).sum::<f64>().sqrt();
+                let alpha = if x[0] > 0.0 { -norm } else { norm };
+                v[0] -= alpha;
+                let vn2: f64 = v.iter().map(|e| e * e).sum();
+                (alpha, if vn2 > 0.0 { 2.0 / vn2 } else { 0.0 })
+            };
+            r[[j, j]] = alpha;
+            for c in 0..(m - j - 1) {
+                let other = &mut right[c * t + j..(c + 1) * t];
+                let d: f64 = v.iter().zip(other.iter()).map(|(p, q)| p * q).sum::<f64>() * beta;
+                for (o, p) in other.iter_mut().zip(&v) {
+                    *o -= d * p;
+                }
+                r[[j, j + 1 + c]] = other[0];
+            }
+            vs.push((v, beta));
+        }
+    }
+    // Q = H_0 H_1 .. H_{m-1} [I_m; 0], accumulated backwards.
+    let mut q = Array2::<f64>::zeros((t, m).f());
+    {
+        let qb = q.as_slice_memory_order_mut().expect("column-major and contiguous");
+        for j in 0..m {
+            qb[j * t + j] = 1.0;
+        }
+        for j in (0..m).rev() {
+            let (v, beta) = &vs[j];
+            if *beta == 0.0 {
+                continue;
+            }
+            for c in j..m {
+                let col = &mut qb[c * t + j..(c + 1) * t];
+                let d: f64 = v.iter().zip(col.iter()).map(|(p, q)| p * q).sum::<f64>() * beta;
+                for (o, p) in col.iter_mut().zip(v) {
+                    *o -= d * p;
+                }
+            }
+        }
+    }
+    Ok((q, r))
+}

@@ -11,10 +11,9 @@
 //! After this pass nothing depends on T.
 
 use ndarray::{s, Array1, Array2, ArrayView1, ShapeBuilder};
-use ndarray_linalg::QRInto;
 
 use crate::error::{Result, SurError};
-use crate::linalg::{fmt_num, gram, gram_blocked, triangular_condition, upper_solve};
+use crate::linalg::{fmt_num, gram, gram_blocked, thin_qr, triangular_condition, upper_solve};
 use crate::system::{Equation, SystemData};
 
 /// What one equation contributes after orthonormalisation.
@@ -202,7 +201,7 @@ fn scaled_qr(eq: &Equation, extra: &[ArrayView1<f64>], t: usize) -> Result<(Arra
     for (m, e) in extra.iter().enumerate() {
         a.column_mut(k + m).assign(e);
     }
-    let (q, r) = a.qr_into().map_err(|e| SurError::numerical(&format!("QR of equation '{}'", eq.name), e))?;
+    let (q, r) = thin_qr(a).map_err(|e| SurError::numerical(&format!("QR of equation '{}'", eq.name), e))?;
     check_rank(&eq.name, &eq.regressors, &r, &norms, t)?;
     Ok((q, r, norms))
 }

@@ -2,7 +2,7 @@
 //! and LAPACK, never through the blockwise code) and against theorems of the field.
 
 use approx::assert_relative_eq;
-use ndarray::{s, Array1, Array2};
+use ndarray::{s, Array1, Array2, ShapeBuilder};
 use ndarray_linalg::Inverse;
 
 use crate::{Divisor, Equation, FitOptions, Method, Prepared, SurError, SystemData};
@@ -471,4 +471,29 @@ fn ledoit_wolf_diagonal_target_formula() {
     assert_relative_eq!(lambda, expect, max_relative = 1e-12);
     assert_relative_eq!(omega[[0, 1]], (1.0 - expect) * sml[[0, 1]], max_relative = 1e-12);
     assert_relative_eq!(omega[[2, 2]], sml[[2, 2]], max_relative = 1e-14);
+}
+
+#[test]
+fn householder_qr_matches_lapack() {
+    use ndarray_linalg::QR;
+    let mut rng = Rng(77);
+    for &(t, m) in &[(7usize, 1usize), (50, 5), (200, 12), (9, 9)] {
+        let a = Array2::from_shape_fn((t, m).f(), |_| rng.normal());
+        let (q, r) = crate::linalg::thin_qr(a.clone()).unwrap();
+        let (_, rl) = a.qr().unwrap();
+        // A = Q R, Q'Q = I, R equals LAPACK's up to the signs of its rows
+        let back = q.dot(&r);
+        for (x, y) in back.iter().zip(a.iter()) {
+            assert_relative_eq!(*x, *y, epsilon = 1e-13);
+        }
+        let qtq = q.t().dot(&q);
+        for i in 0..m {
+            for j in 0..m {
+                assert_relative_eq!(qtq[[i, j]], if i == j { 1.0 } else { 0.0 }, epsilon = 1e-14);
+            }
+            for j in i..m {
+                assert_relative_eq!(r[[i, j]].abs(), rl[[i, j]].abs(), max_relative = 1e-12, epsilon = 1e-14);
+            }
+        }
+    }
 }

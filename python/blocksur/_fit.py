@@ -23,6 +23,23 @@ __all__ = ["SystemFit"]
 _CG_SE_LIMIT = 5000
 
 
+def coef_index(names: list[str], regressors: list[list[str]]) -> pd.MultiIndex:
+    """The (equation, regressor) MultiIndex, built from codes (from_tuples costs ~0.5 ms)."""
+    reg_level: dict[str, int] = {}
+    eq_codes: list[int] = []
+    reg_codes: list[int] = []
+    for i, regs in enumerate(regressors):
+        for r in regs:
+            eq_codes.append(i)
+            reg_codes.append(reg_level.setdefault(r, len(reg_level)))
+    return pd.MultiIndex(
+        levels=[pd.Index(list(names), dtype=object), pd.Index(list(reg_level), dtype=object)],
+        codes=[np.asarray(eq_codes, dtype=np.intp), np.asarray(reg_codes, dtype=np.intp)],
+        names=["equation", "regressor"],
+        verify_integrity=False,
+    )
+
+
 class SystemFit:
     """Estimates of a system of equations, with labels.
 
@@ -66,10 +83,14 @@ class SystemFit:
         self.inference = inference
         names = system.equation_names
         self._names = names
-        self._coef_index = pd.MultiIndex.from_tuples(
-            [(n, r) for n, regs in zip(names, system._regressors) for r in regs],
-            names=["equation", "regressor"],
-        )
+        cached = getattr(system, "_coef_index_cache", None)
+        if cached is None:
+            cached = coef_index(names, system._regressors)
+            try:
+                system._coef_index_cache = cached
+            except AttributeError:  # pragma: no cover - read-only stand-ins
+                pass
+        self._coef_index = cached
         idx = system._index
         self._row_index = idx if idx is not None else pd.RangeIndex(system.n_obs)
 
@@ -157,16 +178,18 @@ class SystemFit:
         return pd.Series(self._est.coef, index=self._coef_index, name="coef")
 
     @cached_property
+    def _vcov_array(self) -> np.ndarray:
+        if self.covariance == "classical":
+            return np.asarray(self._prepared.coef_covariance(self._est))
+        return np.asarray(
+            self._prepared.coef_covariance(self._est, self.covariance, self._system._ys, self._system._xs)
+        )
+
+    @cached_property
     def vcov(self) -> pd.DataFrame:
         """Covariance of all coefficients, cross-equation blocks included, of the kind chosen
         at fit time (:attr:`covariance`: classical, hc0 or hc1)."""
-        if self.covariance == "classical":
-            v = self._prepared.coef_covariance(self._est)
-        else:
-            v = self._prepared.coef_covariance(
-                self._est, self.covariance, self._system._ys, self._system._xs
-            )
-        return pd.DataFrame(v, index=self._coef_index, columns=self._coef_index)
+        return pd.DataFrame(self._vcov_array, index=self._coef_index, columns=self._coef_index)
 
     @cached_property
     def se(self) -> pd.Series:
@@ -181,7 +204,7 @@ class SystemFit:
                     "equations you need, or refit with solver='direct' if memory allows"
                 )
             return self.se_of(self._names)
-        return pd.Series(np.sqrt(np.diag(self.vcov.to_numpy())), index=self._coef_index, name="se")
+        return pd.Series(np.sqrt(np.diag(self._vcov_array)), index=self._coef_index, name="se")
 
     def se_of(self, equations: Any) -> pd.Series:
         """Exact standard errors of the coefficients of some equations (names). On the
@@ -210,13 +233,21 @@ class SystemFit:
     @cached_property
     def resid(self) -> pd.DataFrame:
         """Residuals y_i - X_i b_i (T x N), one column per equation."""
-        return pd.DataFrame(self._resid, index=self._row_index, columns=self._names)
+        return pd.DataFrame(self._residuals(), index=self._row_index, columns=self._names)
+
+    def _residuals(self) -> np.ndarray:
+        """The T x N residual array, computed from the data on first use."""
+        if self._resid is None:
+            from . import _core
+
+            self._resid = _core.residuals(self._system._ys, self._system._xs, self._est.coef)
+        return self._resid
 
     @cached_property
     def fitted(self) -> pd.DataFrame:
         """Fitted values X_i b_i (T x N), one column per equation."""
         y = np.column_stack(self._system._ys)
-        return pd.DataFrame(y - self._resid, index=self._row_index, columns=self._names)
+        return pd.DataFrame(y - self._residuals(), index=self._row_index, columns=self._names)
 
     @cached_property
     def ssr(self) -> pd.Series:
@@ -463,7 +494,7 @@ class SystemFit:
         oinv = np.linalg.inv(self._est.omega)
         y = np.column_stack(self._system._ys)
         yc = y - y.mean(axis=0)
-        num = np.sum(oinv * (self._resid.T @ self._resid))
+        num = np.sum(oinv * np.asarray(self._est.resid_crossprod))
         den = np.sum(oinv * (yc.T @ yc))
         return float(1.0 - num / den)
 

@@ -406,12 +406,11 @@ class EquationSystem:
                 NotConvergedWarning,
                 stacklevel=2,
             )
-        resid = _core.residuals(self._ys, self._xs, est.coef)
         return SystemFit(
             self,
             prepared,
             est,
-            resid,
+            None,  # residuals: computed from the data on first use
             tol=tol,
             max_iter=int(max_iter),
             restrictions=rset,

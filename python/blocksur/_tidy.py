@@ -389,7 +389,7 @@ def _numbers(fit: "SystemFit") -> dict[str, Any]:
         "vcov_error": vcov_error,
         "se": se,
         "dependent": y,
-        "resid": np.asarray(fit._resid, dtype=float),
+        "resid": np.asarray(fit._residuals(), dtype=float),
         "restrictions": None
         if rs is None
         else {"r": np.asarray(rs.r, dtype=float), "q": np.asarray(rs.q, dtype=float), "texts": list(rs.texts)},
@@ -483,6 +483,7 @@ def _build(cls: type, d: dict[str, Any], system: Any) -> "SystemFit":
         inference=opts["inference"],
     )
     if vcov is not None:
+        fit.__dict__["_vcov_array"] = vcov
         fit.__dict__["vcov"] = pd.DataFrame(vcov, index=fit._coef_index, columns=fit._coef_index)
     elif d.get("se") is not None:
         fit.__dict__["se"] = pd.Series(np.asarray(d["se"], dtype=float), index=fit._coef_index, name="se")
