@@ -319,21 +319,36 @@ impl Prepared {
             CrossProducts::MatrixFree { .. } => unreachable!(),
         };
         let rho = Array1::from_iter(self.factors.iter().map(|f| f.rho));
+        let eq_of: Vec<usize> = (0..n).flat_map(|i| std::iter::repeat_n(i, self.k(i))).collect();
+        // M = C o sigma^{eq(a) eq(b)}, lower triangle only (potrf reads no more), column by column
+        // on the contiguous columns of the column-major Gram matrix.
+        let p = gram.nrows();
+        let gbuf = gram.as_slice_memory_order().filter(|_| gram.t().is_standard_layout());
         let mut m = Array2::<f64>::zeros((k, k).f());
-        let mut h = Array1::<f64>::zeros(k);
-        for i in 0..n {
-            let (a, b) = (self.offsets[i], self.offsets[i + 1]);
-            // h_i = Q_i'q . (sigma^{i.} * rho)
-            let w = &sigma_inv.row(i) * &rho;
-            h.slice_mut(s![a..b]).assign(&gram.slice(s![a..b, k..k + n]).dot(&w));
-            for j in 0..=i {
-                let (c, d) = (self.offsets[j], self.offsets[j + 1]);
-                let sij = sigma_inv[[i, j]];
-                let mut blk = m.slice_mut(s![a..b, c..d]);
-                blk.assign(&gram.slice(s![a..b, c..d]));
-                blk *= sij;
+        {
+            let mbuf = m.as_slice_memory_order_mut().expect("fresh column-major array");
+            for j in 0..k {
+                let sig = sigma_inv.column(eq_of[j]);
+                let mcol = &mut mbuf[j * k..(j + 1) * k];
+                match gbuf {
+                    Some(g) => {
+                        let gcol = &g[j * p..j * p + k];
+                        for i in j..k {
+                            mcol[i] = gcol[i] * sig[eq_of[i]];
+                        }
+                    }
+                    None => {
+                        for i in j..k {
+                            mcol[i] = gram[[i, j]] * sig[eq_of[i]];
+                        }
+                    }
+                }
             }
         }
+        // h_a = sum_j sigma^{eq(a) j} rho_j Q_a'q_j
+        let weights = Array2::from_shape_fn((n, n), |(e, j)| sigma_inv[[e, j]] * rho[j]);
+        let qc = gram.slice(s![..k, k..k + n]);
+        let h = Array1::from_shape_fn(k, |a| qc.row(a).dot(&weights.row(eq_of[a])));
         let chol = chol_lower(m).ok_or_else(|| {
             SurError::numerical("Cholesky factorisation of the GLS normal matrix", "not positive definite")
         })?;
