@@ -539,6 +539,27 @@ fn fit_many<'py>(
     Ok(d)
 }
 
+extern "C" {
+    fn openblas_set_num_threads(n: std::os::raw::c_int);
+    fn openblas_get_num_threads() -> std::os::raw::c_int;
+}
+
+/// Threads of the OpenBLAS this module links (the system's, not numpy's): sets them when `n`
+/// is given, and returns the number in force.
+#[pyfunction]
+#[pyo3(signature = (n=None))]
+fn blas_threads(n: Option<usize>) -> PyResult<usize> {
+    if let Some(n) = n {
+        if n == 0 || n > 1024 {
+            return Err(PyValueError::new_err(format!("threads must be between 1 and 1024, got {n}")));
+        }
+        // SAFETY: plain OpenBLAS API calls with an in-range value.
+        unsafe { openblas_set_num_threads(n as std::os::raw::c_int) };
+    }
+    // SAFETY: as above.
+    Ok(unsafe { openblas_get_num_threads() }.max(1) as usize)
+}
+
 #[pymodule]
 fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(prepare, m)?)?;
@@ -549,6 +570,7 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(pass2_merge, m)?)?;
     m.add_function(wrap_pyfunction!(prepare_from_summaries, m)?)?;
     m.add_function(wrap_pyfunction!(fit_many, m)?)?;
+    m.add_function(wrap_pyfunction!(blas_threads, m)?)?;
     m.add_class::<PyPrepared>()?;
     m.add_class::<PyEstimate>()?;
     m.add("__version__", env!("CARGO_PKG_VERSION"))?;

@@ -13,7 +13,7 @@ Example
 FrozenList(['equation', 'regressor'])
 """
 
-from ._core import __version__
+from ._core import __version__, blas_threads
 from ._fit import SystemFit
 from ._tests import HypothesisTestResult
 from ._system import EquationSystem
@@ -45,6 +45,7 @@ from .errors import (
 
 __all__ = [
     "__version__",
+    "blas_threads",
     "EquationSystem",
     "SystemFit",
     "SampleInfo",

@@ -181,3 +181,9 @@ class Estimate:
     def method(self) -> str: ...
     @property
     def divisor(self) -> str: ...
+
+
+def blas_threads(n: int | None = None) -> int:
+    """Threads of the system OpenBLAS the extension links (not numpy's): set them when ``n`` is
+    given; returns the number in force."""
+    ...
