@@ -44,7 +44,7 @@ impl OmegaOp {
                 Ok((OmegaOp::LowRank { dinv, f, e: e.clone(), cinv }, f64::NAN))
             }
             _ => {
-                let (inv, cond) = invert_omega(omega, &prep.names, prep.n_obs)?;
+                let (inv, cond) = invert_omega(omega, &prep.names, prep.n_obs, &prep.y_scales())?;
                 Ok((OmegaOp::Dense(inv), cond))
             }
         }

@@ -138,15 +138,23 @@ pub struct Restrictions {
     pub q: Array1<f64>,
 }
 
-/// The pieces of a restricted fit: gamma_r = gamma - W^-1 Rg' H^-1 (Rg gamma - q),
-/// with Rg = R blockdiag(R_i^-1) and H = Rg W^-1 Rg'.
+/// Restrictions solved in the coordinates of b, where they are stated and well scaled:
+/// b = b0 + N theta with R b0 = q (minimum norm) and N an orthonormal basis of the null space of
+/// R. In the orthonormal basis gamma = blockdiag(R_i) b, so delta = d0 + G theta with
+/// G = blockdiag(R_i) N and d0 = blockdiag(R_i) b0 - z.
+#[derive(Debug, Clone)]
+struct NullSpace {
+    r: Array2<f64>,
+    n: Array2<f64>,
+    g: Array2<f64>,
+    d0: Array1<f64>,
+}
+
+/// The pieces of a restricted fit: the null space and (G'WG)^-1 of its last step.
 #[derive(Debug, Clone)]
 struct RestrictedParts {
-    /// R in the coordinates of b.
-    r: Array2<f64>,
-    rg: Array2<f64>,
-    wirt: Array2<f64>,
-    h_inv: Array2<f64>,
+    space: NullSpace,
+    a_inv: Array2<f64>,
 }
 
 /// The result of one estimation.
@@ -247,6 +255,20 @@ impl Prepared {
         out
     }
 
+    /// A natural size for each coefficient: |OLS estimate| + rho_i / ||x_j|| (the change in
+    /// b_j that moves the fit by the residual's own size).
+    pub fn coef_scales(&self) -> Vec<f64> {
+        let mut out = Vec::with_capacity(self.n_coef());
+        let b = self.coef_from_gamma(&self.z()).unwrap_or_else(|_| Array1::zeros(self.n_coef()));
+        for (i, f) in self.factors.iter().enumerate() {
+            for j in 0..self.k(i) {
+                let cn = f.r.column(j).dot(&f.r.column(j)).sqrt();
+                out.push(b[self.offsets[i] + j].abs() + if cn > 0.0 { f.rho / cn } else { 0.0 });
+            }
+        }
+        out
+    }
+
     /// Residual cross-products of equation-by-equation OLS (no restrictions).
     pub fn ols_crossprod(&self) -> Array2<f64> {
         self.residual_crossprod(&Array1::zeros(self.n_coef()))
@@ -310,7 +332,7 @@ impl Prepared {
             let (delta, its, res) = self.cg_solve(&op, start, opts.cg_tol, opts.cg_max_iter, cancel)?;
             return Ok((delta, Weight::MatrixFree, cond, Some((its, res))));
         }
-        let (sigma_inv, cond) = invert_omega(omega, &self.names, self.n_obs)?;
+        let (sigma_inv, cond) = invert_omega(omega, &self.names, self.n_obs, &self.y_scales())?;
         let gram = match &self.cross {
             CrossProducts::SharedRegressors { .. } => {
                 return Ok((Array1::zeros(k), Weight::Shared(omega.clone()), cond, None))
@@ -349,8 +371,18 @@ impl Prepared {
         let weights = Array2::from_shape_fn((n, n), |(e, j)| sigma_inv[[e, j]] * rho[j]);
         let qc = gram.slice(s![..k, k..k + n]);
         let h = Array1::from_shape_fn(k, |a| qc.row(a).dot(&weights.row(eq_of[a])));
-        let chol = chol_lower(m).ok_or_else(|| {
-            SurError::numerical("Cholesky factorisation of the GLS normal matrix", "not positive definite")
+        let chol = chol_lower(m).ok_or_else(|| SurError::SingularOmega {
+            equations: self.names.clone(),
+            detail: format!(
+                "the GLS normal matrix is not numerically positive definite: the estimated \
+                 cross-equation covariance is (nearly) singular for these regressors. With {} \
+                 equations and {} observations this happens when the residuals leave too few \
+                 degrees of freedom (the Gaussian ML estimator does not exist when N plus the \
+                 rank of all regressors together exceeds T); use method='fgls', fewer equations, \
+                 or omega='ledoit-wolf'",
+                self.n_eq(),
+                self.n_obs
+            ),
         })?;
         let delta = chol_solve(&chol, &h)?;
         Ok((delta, Weight::Chol(chol), cond, None))
@@ -384,29 +416,54 @@ impl Prepared {
         }
     }
 
-    /// Restrictions in the orthonormal basis: Rg = R blockdiag(R_i^-1).
-    fn restrictions_in_basis(&self, r: &Array2<f64>) -> Result<Array2<f64>> {
-        let mut rg = Array2::<f64>::zeros(r.dim());
-        for (i, f) in self.factors.iter().enumerate() {
-            let (a, b) = (self.offsets[i], self.offsets[i + 1]);
-            let rinv = upper_inverse(&f.r)?;
-            rg.slice_mut(s![.., a..b]).assign(&r.slice(s![.., a..b]).dot(&rinv));
+    /// M X for the weight M of an estimator (I for OLS).
+    fn weight_apply(&self, w: &Weight, x: &Array2<f64>) -> Result<Array2<f64>> {
+        match w {
+            Weight::Identity => Ok(x.clone()),
+            Weight::Chol(l) => Ok(l.dot(&l.t().dot(x))),
+            Weight::Shared(omega) => {
+                let (sigma, _) = invert_omega(omega, &self.names, self.n_obs, &self.y_scales())?;
+                self.weight_solve(&Weight::Shared(sigma), x)
+            }
+            Weight::MatrixFree => Err(matrix_free_unsupported("restrictions")),
         }
-        Ok(rg)
     }
 
-    /// Imposes Rg (z + delta) = q on an unrestricted delta under weight W.
-    fn restrict(&self, delta: &Array1<f64>, w: &Weight, rg: &Array2<f64>, qd: &Array1<f64>) -> Result<(Array1<f64>, RestrictedParts)> {
-        let wirt = self.weight_solve(w, &rg.t().to_owned())?;
-        let mut h = rg.dot(&wirt);
-        symmetrize(&mut h);
-        let hl = chol_lower(h).ok_or_else(|| {
-            SurError::InvalidRestriction { index: None, detail: "the restrictions are linearly dependent".into() }
+    /// The null-space form of normalized restrictions.
+    fn null_space(&self, rs: &Restrictions) -> Result<NullSpace> {
+        use ndarray_linalg::SVD;
+        let (m, k) = rs.r.dim();
+        let (_, _, vt) = rs.r.svd(false, true).map_err(|e| SurError::numerical("SVD of the restrictions", e))?;
+        let vt = vt.ok_or_else(|| SurError::numerical("SVD of the restrictions", "no right singular vectors"))?;
+        let n = vt.slice(s![m..k, ..]).t().to_owned();
+        let mut rrt = rs.r.dot(&rs.r.t());
+        symmetrize(&mut rrt);
+        let l = chol_lower(crate::linalg::to_fortran(&rrt))
+            .ok_or_else(|| SurError::InvalidRestriction { index: None, detail: "are linearly dependent".into() })?;
+        let b0 = rs.r.t().dot(&chol_solve(&l, &rs.q)?);
+        let mut g = Array2::<f64>::zeros((k, k - m));
+        let mut d0 = Array1::<f64>::zeros(k);
+        for (i, f) in self.factors.iter().enumerate() {
+            let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+            g.slice_mut(s![a..b, ..]).assign(&f.r.dot(&n.slice(s![a..b, ..])));
+            d0.slice_mut(s![a..b]).assign(&(f.r.dot(&b0.slice(s![a..b])) - &f.z));
+        }
+        Ok(NullSpace { r: rs.r.clone(), n, g, d0 })
+    }
+
+    /// The restricted step: minimises the estimator's objective over delta = d0 + G theta,
+    /// given the unrestricted solution delta_u of W delta = h: (G'WG) theta = G'W (delta_u - d0).
+    fn restrict(&self, delta_u: &Array1<f64>, w: &Weight, space: &NullSpace) -> Result<(Array1<f64>, RestrictedParts)> {
+        let wg = self.weight_apply(w, &space.g)?;
+        let mut a = space.g.t().dot(&wg);
+        symmetrize(&mut a);
+        let l = chol_lower(crate::linalg::to_fortran(&a)).ok_or_else(|| {
+            SurError::numerical("restricted estimation", "the restricted normal matrix is not positive definite")
         })?;
-        let h_inv = chol_inverse(&hl)?;
-        let gap = rg.dot(delta) - qd;
-        let out = delta - &wirt.dot(&h_inv.dot(&gap));
-        Ok((out, RestrictedParts { r: Array2::zeros((0, 0)), rg: rg.clone(), wirt, h_inv }))
+        let rhs = wg.t().dot(&(delta_u - &space.d0));
+        let theta = chol_solve(&l, &rhs)?;
+        let out = &space.d0 + &space.g.dot(&theta);
+        Ok((out, RestrictedParts { space: space.clone(), a_inv: chol_inverse(&l)? }))
     }
 
     /// Runs one estimation without restrictions.
@@ -441,15 +498,15 @@ impl Prepared {
             }
             Some(rs) => {
                 rs.validate(k)?;
-                let rg = self.restrictions_in_basis(&rs.r)?;
-                let qd = &rs.q - &rg.dot(&z);
-                Some((rg, qd))
+                let rs = rs.normalized();
+                let space = self.null_space(&rs)?;
+                Some((space, rs))
             }
         };
         let impose = |delta: Array1<f64>, w: &Weight| -> Result<(Array1<f64>, Option<RestrictedParts>)> {
             match &constraint {
                 None => Ok((delta, None)),
-                Some((rg, qd)) => self.restrict(&delta, w, rg, qd).map(|(d, p)| (d, Some(p))),
+                Some((space, _)) => self.restrict(&delta, w, space).map(|(d, p)| (d, Some(p))),
             }
         };
         let (mut delta, mut restricted) = impose(Array1::zeros(k), &Weight::Identity)?;
@@ -499,11 +556,11 @@ impl Prepared {
             }
         }
         let OmegaEst { omega, shrinkage, .. } = oest;
-        if let (Some(p), Some(rs)) = (restricted.as_mut(), restrictions) {
-            p.r = rs.r.clone();
-        }
         let gamma = &z + &delta;
         let coef = self.coef_from_gamma(&gamma)?;
+        if let Some((_, rs)) = &constraint {
+            rs.check_satisfied(&coef, &self.coef_scales())?;
+        }
         Ok(Estimate {
             method: opts.method,
             divisor: opts.divisor,
@@ -567,25 +624,6 @@ impl Prepared {
         Ok(v)
     }
 
-    /// Covariance of gamma for a given unrestricted covariance V: A V A' with
-    /// A = I - W^-1 Rg' H^-1 Rg when restrictions were imposed, V otherwise.
-    fn apply_restrictions(&self, est: &Estimate, v: Array2<f64>) -> Array2<f64> {
-        match &est.restricted {
-            None => v,
-            Some(p) => {
-                let proj = p.wirt.dot(&p.h_inv); // K x m
-                // A V = V - proj (Rg V)
-                let rv = p.rg.dot(&v);
-                let av = &v - &proj.dot(&rv);
-                // (A V) A' = AV - (AV Rg') proj'
-                let avr = av.dot(&p.rg.t());
-                let mut out = &av - &avr.dot(&proj.t());
-                symmetrize(&mut out);
-                out
-            }
-        }
-    }
-
     /// Checks that an estimate (and data, if given) belong to this prepared system.
     pub fn check_matches(&self, est: Option<&Estimate>, data: Option<&SystemData>) -> Result<()> {
         let n = self.n_eq();
@@ -611,15 +649,7 @@ impl Prepared {
     pub fn gamma_covariance(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array2<f64>> {
         self.check_matches(Some(est), data)?;
         let v = match kind {
-            CovKind::Classical => match (&est.weight, &est.restricted) {
-                (Weight::Identity, _) | (_, None) => self.classical_gamma_cov(est)?,
-                (w, Some(p)) => {
-                    // GLS classical, restricted: A M^-1 A' = M^-1 - W^-1 Rg' H^-1 Rg W^-1.
-                    let mut v = self.weight_inverse(w)? - p.wirt.dot(&p.h_inv).dot(&p.wirt.t());
-                    symmetrize(&mut v);
-                    return Ok(v);
-                }
-            },
+            CovKind::Classical => self.classical_gamma_cov(est)?,
             CovKind::Hc0 | CovKind::Hc1 => {
                 let data = data.ok_or_else(|| SurError::InvalidOption("a robust covariance needs the data".into()))?;
                 let meat = self.score_outer_product(est, data)?;
@@ -640,7 +670,43 @@ impl Prepared {
                 v
             }
         };
-        Ok(self.apply_restrictions(est, v))
+        Ok(v)
+    }
+
+    /// Covariance of a restricted fit, in b coordinates: N Cov(theta) N' with
+    /// Cov(theta) = A^-1 G' B G A^-1, A = G'WG and B the covariance of the score W delta_u:
+    /// M for classical GLS, omega_ij Q_i'Q_j for classical OLS, the HC0 meat for robust kinds.
+    fn restricted_covariance(&self, est: &Estimate, p: &RestrictedParts, kind: CovKind, data: Option<&SystemData>) -> Result<Array2<f64>> {
+        let g = &p.space.g;
+        let bg = match kind {
+            CovKind::Classical => match &est.weight {
+                Weight::Identity => self.classical_gamma_cov(est)?.dot(g),
+                w => self.weight_apply(w, g)?,
+            },
+            CovKind::Hc0 | CovKind::Hc1 => {
+                let data = data.ok_or_else(|| SurError::InvalidOption("a robust covariance needs the data".into()))?;
+                let mut meat = self.score_outer_product(est, data)?;
+                if kind == CovKind::Hc1 {
+                    let t = self.n_obs as f64;
+                    meat *= t / (t - self.n_coef() as f64 / self.n_eq() as f64);
+                }
+                meat.dot(g)
+            }
+        };
+        let mut mid = g.t().dot(&bg);
+        symmetrize(&mut mid);
+        let ct = p.a_inv.dot(&mid).dot(&p.a_inv);
+        let mut out = p.space.n.dot(&ct).dot(&p.space.n.t());
+        // a coefficient fixed by a restriction of its own has exactly zero (co)variance
+        for row in p.space.r.rows() {
+            let nz: Vec<usize> = row.iter().enumerate().filter(|(_, x)| **x != 0.0).map(|(j, _)| j).collect();
+            if nz.len() == 1 {
+                out.row_mut(nz[0]).fill(0.0);
+                out.column_mut(nz[0]).fill(0.0);
+            }
+        }
+        symmetrize(&mut out);
+        Ok(out)
     }
 
     /// Sum over rows of s_t s_t', s_t stacking Q_i[t,:]' u_t[i], with u_t = Omega^-1 e_t for GLS
@@ -650,9 +716,10 @@ impl Prepared {
         let k = self.n_coef();
         let n = self.n_eq();
         self.check_matches(Some(est), Some(data))?;
+        data.validate_chunk(0, false)?;
         let sigma_inv = match &est.weight {
             Weight::Identity => None,
-            _ => Some(invert_omega(&est.omega, &self.names, t)?.0),
+            _ => Some(invert_omega(&est.omega, &self.names, t, &self.y_scales())?.0),
         };
         let rinv: Vec<Array2<f64>> = self.factors.iter().map(|f| upper_inverse(&f.r)).collect::<Result<_>>()?;
         let mut meat = Array2::<f64>::zeros((k, k));
@@ -692,15 +759,14 @@ impl Prepared {
 
     /// Covariance of the coefficients b (K x K): blockdiag(R_i^-1) Cov(gamma) blockdiag(R_i^-T).
     pub fn coef_covariance_of(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array2<f64>> {
+        if let Some(p) = &est.restricted {
+            self.check_matches(Some(est), data)?;
+            return self.restricted_covariance(est, p, kind, data);
+        }
         let v = self.gamma_covariance(est, kind, data)?;
         let rinv: Vec<Array2<f64>> = self.factors.iter().map(|f| upper_inverse(&f.r)).collect::<Result<_>>()?;
         let left = self.block_left_multiply(&rinv, &v);
         let mut out = self.block_left_multiply(&rinv, &left.t().to_owned());
-        if let Some(p) = est.restricted.as_ref().filter(|p| p.r.nrows() > 0) {
-            // R V R' = 0 in exact arithmetic; projecting onto the null space of R removes the
-            // rounding, so a coefficient fixed by a restriction gets exactly zero variance.
-            out = project_out(&p.r, &out)?;
-        }
         symmetrize(&mut out);
         Ok(out)
     }
@@ -720,19 +786,62 @@ impl Prepared {
     }
 
     /// Gaussian log-likelihood at Omega = S/T: -(NT/2)(1 + ln 2 pi) - (T/2) ln det(S/T).
-    /// None when S/T is singular (an equation that fits exactly).
+    /// +inf when S/T is singular (an exact fit: the Gaussian likelihood is unbounded); None
+    /// when `s` does not belong to this system.
     pub fn log_likelihood(&self, s: &Array2<f64>) -> Option<f64> {
         if s.dim() != (self.n_eq(), self.n_eq()) {
             return None;
         }
         let t = self.n_obs as f64;
         let n = self.n_eq() as f64;
-        let ld = ln_det_spd(&(s / t))?;
+        let ld = ln_det_spd(&(s / t)).unwrap_or(f64::NEG_INFINITY);
         Some(-0.5 * n * t * (1.0 + (2.0 * std::f64::consts::PI).ln()) - 0.5 * t * ld)
     }
 }
 
 impl Restrictions {
+    /// The same restrictions with each row of R (and q) scaled to unit length.
+    pub fn normalized(&self) -> Restrictions {
+        let mut r = self.r.clone();
+        let mut q = self.q.clone();
+        for (i, mut row) in r.rows_mut().into_iter().enumerate() {
+            let n = row.dot(&row).sqrt();
+            if n > 0.0 {
+                row /= n;
+                q[i] /= n;
+            }
+        }
+        Restrictions { r, q }
+    }
+
+    /// Checks R b = q to a tolerance relative to the size of the terms; a restriction that
+    /// rounding kept from holding is reported rather than returned silently.
+    /// `scales[j]` is a natural size of coefficient j (see `Prepared::coef_scales`).
+    pub fn check_satisfied(&self, b: &Array1<f64>, scales: &[f64]) -> Result<()> {
+        for (i, row) in self.r.rows().into_iter().enumerate() {
+            let gap = row.dot(b) - self.q[i];
+            let size: f64 = row
+                .iter()
+                .zip(b.iter().zip(scales))
+                .map(|(a, (c, s))| a.abs() * (c.abs() + s))
+                .sum::<f64>()
+                + self.q[i].abs();
+            if !(gap.abs() <= 1e-8 * size.max(f64::MIN_POSITIVE)) {
+                return Err(SurError::InvalidRestriction {
+                    index: Some(i),
+                    detail: format!(
+                        "could not be imposed accurately (R b - q = {} against terms of size {}): \
+                         the coefficients it involves are on very different scales; rescale the \
+                         regressors (e.g. income in thousands) and refit",
+                        crate::linalg::fmt_num(gap),
+                        crate::linalg::fmt_num(size)
+                    ),
+                });
+            }
+        }
+        Ok(())
+    }
+
     /// Checks shapes and finiteness, and that each restriction mentions a coefficient, adds
     /// information (is not implied by the earlier ones) and agrees with them.
     pub fn validate(&self, k: usize) -> Result<()> {
@@ -803,28 +912,6 @@ fn matrix_free_unsupported(what: &str) -> SurError {
          K x K matrices; use the direct solver (raise the memory limit) or, for standard errors, \
          the per-equation conjugate-gradient standard errors"
     ))
-}
-
-/// P V P' with P = I - R'(R R')^-1 R, the orthogonal projector onto the null space of R.
-fn project_out(r: &Array2<f64>, v: &Array2<f64>) -> Result<Array2<f64>> {
-    let mut rrt = r.dot(&r.t());
-    symmetrize(&mut rrt);
-    let l = chol_lower(crate::linalg::to_fortran(&rrt))
-        .ok_or_else(|| SurError::InvalidRestriction { index: None, detail: "the restrictions are linearly dependent".into() })?;
-    let a = chol_solve_mat(&l, r)?; // (R R')^-1 R, m x K
-    // P V = V - R' (a V); then (P V) P' = PV - (PV a') R
-    let pv = v - &r.t().dot(&a.dot(v));
-    let out = &pv - &pv.dot(&a.t()).dot(r);
-    // exact zeros where a restriction fixes a single coefficient
-    let mut out = out;
-    for row in r.rows() {
-        let nz: Vec<usize> = row.iter().enumerate().filter(|(_, x)| **x != 0.0).map(|(j, _)| j).collect();
-        if nz.len() == 1 {
-            out.row_mut(nz[0]).fill(0.0);
-            out.column_mut(nz[0]).fill(0.0);
-        }
-    }
-    Ok(out)
 }
 
 /// Solves (L L') X = B for a K x m right-hand side.

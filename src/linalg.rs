@@ -239,12 +239,26 @@ fn singular_floor(n: usize) -> f64 {
 /// its correlation form. A singular Omega (an equation that fits exactly, equations whose
 /// residuals are linearly dependent, more equations than observations) gets an error that names
 /// the equations involved and the remedy.
-pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize) -> Result<(Array2<f64>, f64)> {
+///
+/// `scales[i]` is the root mean square of equation i's dependent variable: an equation whose
+/// residual standard deviation is below 1e-13 of it fits exactly (whatever the units of the
+/// other equations).
+pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize, scales: &[f64]) -> Result<(Array2<f64>, f64)> {
     let n = omega.nrows();
     let diag: Vec<f64> = (0..n).map(|i| omega[[i, i]]).collect();
-    let scale = diag.iter().cloned().fold(0.0, f64::max);
     for (i, &d) in diag.iter().enumerate() {
-        if d.is_nan() || d <= scale * 1e-28 || !d.is_finite() {
+        let floor = scales.get(i).copied().unwrap_or(0.0) * 1e-13;
+        if d.is_infinite() || (d.is_finite() && !scales.get(i).copied().unwrap_or(1.0).is_finite()) {
+            return Err(SurError::SingularOmega {
+                equations: vec![names[i].clone()],
+                detail: format!(
+                    "equation '{}': the residual variance overflows double precision; rescale its \
+                     dependent variable (and regressors) to moderate units",
+                    names[i]
+                ),
+            });
+        }
+        if d.is_nan() || d <= 0.0 || d.sqrt() <= floor {
             return Err(SurError::SingularOmega {
                 equations: vec![names[i].clone()],
                 detail: format!(

@@ -131,6 +131,23 @@ impl Prepared {
         self.names.len()
     }
 
+    /// Root mean square of each dependent variable, ||y_i|| / sqrt(T), from ||y||^2 =
+    /// ||z||^2 + rho^2, computed without overflow.
+    pub fn y_scales(&self) -> Vec<f64> {
+        let t = (self.n_obs as f64).sqrt();
+        self.factors
+            .iter()
+            .map(|f| {
+                let m = f.z.iter().fold(f.rho.abs(), |a, b| a.max(b.abs()));
+                if m == 0.0 {
+                    return 0.0;
+                }
+                let s: f64 = f.z.iter().map(|v| (v / m) * (v / m)).sum::<f64>() + (f.rho / m) * (f.rho / m);
+                m * s.sqrt() / t
+            })
+            .collect()
+    }
+
     pub fn n_coef(&self) -> usize {
         *self.offsets.last().unwrap()
     }

@@ -159,6 +159,7 @@ fn residuals<'py>(
     let names: Vec<String> = (0..n).map(|i| format!("eq{i}")).collect();
     let regs: Vec<Vec<String>> = xs.iter().map(|x| (0..x.as_array().ncols()).map(|j| format!("x{j}")).collect()).collect();
     let data = equations(&ys, &xs, &names, &regs)?;
+    data.validate_chunk(0, false).map_err(|e| raise(py, e))?;
     let k: usize = xs.iter().map(|x| x.as_array().ncols()).sum();
     let c = coef.as_array();
     if c.len() != k || n == 0 {

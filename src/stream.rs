@@ -153,6 +153,8 @@ impl CrossStats {
     /// The summary of the union of two sets of rows.
     pub fn merge(self, other: CrossStats) -> Result<CrossStats> {
         if self.gram.dim() != other.gram.dim()
+            || self.gram.nrows() != self.gram.ncols()
+            || self.colsum.len() != self.gram.nrows()
             || self.colsum.len() != other.colsum.len()
             || self.y_mean.len() != other.y_mean.len()
             || self.y_m2.len() != other.y_m2.len()

@@ -133,12 +133,13 @@ def _array_parts(data: Any, equations: Any, constant: bool) -> tuple[Any, list[A
     ys, xs = data
     if isinstance(ys, da.Array) and ys.ndim == 2:
         ys = [ys[:, i] for i in range(ys.shape[1])]
-    ys, xs = list(ys), [x if x.ndim == 2 else x[:, None] for x in xs]
+    ys, xs = list(ys), list(xs)
     if len(ys) != len(xs) or not ys:
         raise ShapeMismatchError(f"{len(ys)} dependent variables and {len(xs)} regressor matrices")
     for a in [*ys, *xs]:
         if not isinstance(a, da.Array):
             raise InputError(f"expected dask arrays, got a {type(a).__name__}; for numpy arrays use EquationSystem")
+    xs = [x if x.ndim == 2 else x[:, None] for x in xs]
     t = ys[0].shape[0]
     if any(np.isnan(a.shape[0]) for a in [*ys, *xs]):
         raise InputError("the arrays have unknown chunk sizes: call compute_chunk_sizes() on them first")

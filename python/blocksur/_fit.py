@@ -204,7 +204,10 @@ class SystemFit:
                     "equations you need, or refit with solver='direct' if memory allows"
                 )
             return self.se_of(self._names)
-        return pd.Series(np.sqrt(np.diag(self._vcov_array)), index=self._coef_index, name="se")
+        # rounding can leave a variance a hair below zero (a coefficient a restriction fixes)
+        return pd.Series(
+            np.sqrt(np.maximum(np.diag(self._vcov_array), 0.0)), index=self._coef_index, name="se"
+        )
 
     def se_of(self, equations: Any) -> pd.Series:
         """Exact standard errors of the coefficients of some equations (names). On the
@@ -263,7 +266,10 @@ class SystemFit:
         otherwise about zero (uncentred), as is common practice."""
         spans = np.asarray(self._prepared.spans_constant)
         tss = np.where(spans, self._prepared.tss_centred, self._prepared.tss_raw)
-        return pd.Series(1.0 - self.ssr.to_numpy() / tss, index=self._names, name="r2")
+        tss = np.asarray(tss, dtype=float)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r2 = np.where(tss > 0, 1.0 - self.ssr.to_numpy() / np.where(tss > 0, tss, 1.0), np.nan)
+        return pd.Series(r2, index=self._names, name="r2")
 
     @cached_property
     def r2_adj(self) -> pd.Series:
@@ -284,9 +290,10 @@ class SystemFit:
     @cached_property
     def loglik(self) -> float:
         """Gaussian log-likelihood at Omega = S/T of the final residuals:
-        -(NT/2)(1 + ln 2 pi) - (T/2) ln det(S/T). ``-inf`` if S/T is singular."""
+        -(NT/2)(1 + ln 2 pi) - (T/2) ln det(S/T); ``+inf`` if S/T is singular (an exact fit
+        makes the Gaussian likelihood unbounded)."""
         v = self._prepared.log_likelihood(self._est)
-        return float("-inf") if v is None else float(v)
+        return float("nan") if v is None else float(v)
 
     # -- inference on coefficients -------------------------------------------------------------
     @property

@@ -255,12 +255,23 @@ def _parse_formula(text: str, label: str | None, table: _Table) -> _Spec:
         f = formulaic.Formula(text)
         lhs_terms = list(f.lhs)
         required = [str(v) for v in f.required_variables]
-    except FormulaicError as err:
+    except (FormulaicError, SyntaxError, AttributeError, ValueError, TypeError) as err:
+        # formulaic reports some unreadable formulas with Python's own exceptions ("~" alone,
+        # a syntax error inside I(...)): all of them mean the same to the user
+        first = (str(err).splitlines() or [type(err).__name__])[0]
         raise FormulaError(
-            f"equation {where!r}: cannot read the formula {text!r}: {str(err).splitlines()[0]}",
+            f"equation {where!r}: cannot read the formula {text!r}: {first}",
             equation=label,
             formula=text,
         ) from None
+    bad = [v for v in required if not v or not str(v).strip()]
+    if bad or not lhs_terms or not str(f.lhs).strip():
+        raise FormulaError(
+            f"equation {where!r}: cannot read the formula {text!r}: write 'dependent ~ regressors' "
+            "with column names on both sides",
+            equation=label,
+            formula=text,
+        )
     if len(lhs_terms) != 1:
         raise FormulaError(
             f"equation {where!r}: the left of '~' in {text!r} must be one dependent variable, "

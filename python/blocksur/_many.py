@@ -23,6 +23,7 @@ from __future__ import annotations
 import os
 import re
 from collections.abc import Mapping, Sequence
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -77,16 +78,21 @@ class ManyFits:
                 "n_iter": np.asarray(out["n_iter"], dtype=np.int64),
                 "converged": np.asarray(out["converged"], dtype=bool),
                 "loglik": np.asarray(out["loglik"], dtype=float),
-                "error": pd.array([None if e is None else e[0] for e in errors], dtype=object),
-                "message": pd.array(
-                    [None if e is None else _rename(e[1], names, regressors) for e in errors], dtype=object
-                ),
             },
             index=keys,
         )
-        self.table = self._tidy(names, regressors)
+        # object columns holding None for the systems without an error
+        idx = self.status.index
+        self.status["error"] = pd.Series([None if e is None else e[0] for e in errors], dtype=object, index=idx)
+        self.status["message"] = pd.Series(
+            [None if e is None else _rename(e[1], names, regressors) for e in errors], dtype=object, index=idx
+        )
+        self._regs = [list(r) for r in regressors]
 
-    def _tidy(self, names: list[str], regressors: list[list[str]]) -> pd.DataFrame:
+    @cached_property
+    def table(self) -> pd.DataFrame:
+        """The tidy coefficient table (built on first access; see the class description)."""
+        names, regressors = self.equation_names, self._regs
         ok = self.status["error"].isna().to_numpy()
         k = self.coef.shape[1]
         b = self.coef.to_numpy()[ok]
@@ -347,8 +353,7 @@ def fit_stacked(
         if len(keys) != g:
             raise ShapeMismatchError(f"{len(keys)} group labels for {g} systems")
     # Own copies per system (see fit_groups): views of one array would cost quadratic time.
-    yt = np.ascontiguousarray(yv.transpose(0, 2, 1))
-    ys = [[yt[s, i].copy() for i in range(n)] for s in range(g)]
+    ys = [list(np.asfortranarray(yv[s]).T) for s in range(g)]
     xs = [[a[s].copy() for a in xl] for s in range(g)]
     return _run(ys, xs, keys, names, regs, np.full(g, t), np.zeros(g, dtype=np.int64), method, omega,
                 shrink_target, tol, max_iter, inference, threads)

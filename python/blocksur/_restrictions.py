@@ -216,7 +216,12 @@ def parse_restrictions(
     reg_map = dict(zip(names, regressors))
     rows, rhs = [], []
     for text in items:
-        row, q = _Parser(text.strip(), pos, reg_map).parse(k)
+        with np.errstate(all="ignore"):
+            row, q = _Parser(text.strip(), pos, reg_map).parse(k)
+        if not (np.all(np.isfinite(row)) and np.isfinite(q)):
+            raise RestrictionSyntaxError(
+                f"the numbers in this restriction overflow: {text.strip()!r}", text=text.strip(), position=0
+            )
         rows.append(row)
         rhs.append(q)
     return RestrictionSet(np.array(rows), np.array(rhs), tuple(t.strip() for t in items))

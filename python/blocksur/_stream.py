@@ -19,13 +19,11 @@ saying so. Re-estimating with other options does not need the rows: :meth:`Rowle
 
 Example
 -------
->>> import numpy as np, blocksur
->>> from blocksur.scenarios import random_system
->>> data = random_system(3, 500, k=3, seed=4)
->>> frame = __import__("pandas").concat(
-...     {n: X.assign(y=y) for n, (y, X) in data.equations.items()}, axis=1)
->>> frame.columns = [f"{a}_{b}" for a, b in frame.columns]
->>> eqs = {n: (f"{n}_y", [f"{n}_x1", f"{n}_x2"]) for n in data.equations}
+>>> import numpy as np, pandas as pd, blocksur
+>>> rng = np.random.default_rng(4)
+>>> frame = pd.DataFrame(rng.normal(size=(500, 4)), columns=["a", "b", "ya", "yb"])
+>>> frame["ya"] += 2 * frame["a"]
+>>> eqs = {"north": ("ya", ["a"]), "south": ("yb", ["a", "b"])}
 >>> chunks = [frame.iloc[i:i + 128] for i in range(0, 500, 128)]
 >>> fit = blocksur.fit_chunks(chunks, eqs, constant=True)
 >>> ref = blocksur.EquationSystem.from_table(frame, eqs, constant=True).fit()
@@ -74,6 +72,9 @@ _METHODS = ("ols", "fgls", "ifgls")
 _COND_WARN = 1e8
 # Pass 2 must see the rows of pass 1: the sums of squares of y from both passes must agree.
 _SAME_DATA_RTOL = 1e-8
+# Parquet: bytes read at a time within a column chunk (the row group is not loaded whole).
+_READ_BUFFER = 1 << 22
+_READ_THREADS = True
 
 
 # -- options -----------------------------------------------------------------------------------
@@ -399,6 +400,13 @@ def check_same_rows(factors: Any, stats: Mapping[str, Any], names: list[str]) ->
             )
 
 
+def _close(it: Any) -> None:
+    """Closes a generator (and the files it holds) left before its end by an error."""
+    close = getattr(it, "close", None)
+    if close is not None:
+        close()
+
+
 def run_passes(
     open_chunks: Callable[[], Iterable[Any]],
     layout: Any,
@@ -407,15 +415,20 @@ def run_passes(
     total: int | None = None,
     source: str = "chunks",
     what: str = "chunk",
-) -> tuple[Any, Any, StreamInfo]:
-    """Both passes over the chunks ``open_chunks()`` yields (called once per pass)."""
-    names, regs = layout.names, layout.regressors
+) -> tuple[Any, Any, Any, StreamInfo]:
+    """Both passes over the chunks ``open_chunks()`` yields (called once per pass). ``layout``
+    is a layout, or a function making one from the first chunk. Returns (layout, factors,
+    stats, info)."""
     factors = None
     read = dropped = chunks = 0
     t0 = time.perf_counter()
     bar = _bar(progress, "blocksur pass 1/2 (factors)", total)
+    it = iter(open_chunks())
     try:
-        for chunk in open_chunks():
+        for chunk in it:
+            if callable(layout):
+                layout = layout(chunk)
+            names, regs = layout.names, layout.regressors
             ys, xs, n_read, n_drop = layout.extract(chunk, f"{what} {chunks}")
             del chunk
             if len(ys[0]):
@@ -427,6 +440,9 @@ def run_passes(
             bar.update(n_read)
     finally:
         bar.close()
+        _close(it)
+    if chunks == 0:
+        raise InputError(f"the {source} yielded no chunks")
     if factors is None:
         raise InputError(
             f"the {source} held no rows" + (f" ({dropped} rows dropped for missing values)" if dropped else "")
@@ -435,8 +451,9 @@ def run_passes(
     stats = None
     read2 = 0
     bar = _bar(progress, "blocksur pass 2/2 (cross-products)", read)
+    it = iter(open_chunks())
     try:
-        for i, chunk in enumerate(open_chunks()):
+        for i, chunk in enumerate(it):
             ys, xs, n_read, _ = layout.extract(chunk, f"{what} {i}")
             del chunk
             if len(ys[0]):
@@ -446,11 +463,12 @@ def run_passes(
             bar.update(n_read)
     finally:
         bar.close()
+        _close(it)
     if stats is None:
         raise InputError("the second pass read no rows: the chunk source must yield the same rows each time")
-    check_same_rows(factors, stats, names)
+    check_same_rows(factors, stats, layout.names)
     info = StreamInfo(source, chunks, read, dropped, (t1 - t0, time.perf_counter() - t1))
-    return factors, stats, info
+    return layout, factors, stats, info
 
 
 # -- estimation from the summaries -------------------------------------------------------------
@@ -701,12 +719,6 @@ def _is_table_like(obj: Any) -> bool:
     return mod in ("polars", "pyarrow") and hasattr(obj, "column_names" if mod == "pyarrow" else "columns")
 
 
-def _first_chunk(open_chunks: Callable[[], Iterable[Any]]) -> Any:
-    for chunk in open_chunks():
-        return chunk
-    raise InputError("the chunk source yielded no chunks")
-
-
 def fit_chunks(
     chunks: Any,
     equations: Any = None,
@@ -762,20 +774,20 @@ def fit_chunks(
     >>> def chunks():                                        # doctest: +SKIP
     ...     for path in sorted(glob.glob("sales-*.csv")):
     ...         yield pandas.read_csv(path)
-    >>> fit = blocksur.fit_chunks(chunks, {"north": ("sales_n", ["price_n"]),
+    >>> fit = blocksur.fit_chunks(chunks, {"north": ("sales_n", ["price_n"]),   # doctest: +SKIP
     ...                                    "south": ("sales_s", ["price_s"])}, constant=True)
     """
     _check_missing(missing)
     opts = check_options(method, omega, tol, max_iter, restrictions, inference)
     show = progress_wanted(progress)
     open_chunks = _opener(chunks)
-    first = _first_chunk(open_chunks)
-    if _is_pair(first):
-        layout: Any = ArrayLayout.from_first(first, equations, constant)
-    else:
-        layout = ColumnLayout.from_equations(equations, first, constant, missing)
-    del first
-    factors, stats, info = run_passes(open_chunks, layout, progress=show, source="chunks")
+
+    def make_layout(first: Any) -> Any:
+        if _is_pair(first):
+            return ArrayLayout.from_first(first, equations, constant)
+        return ColumnLayout.from_equations(equations, first, constant, missing)
+
+    layout, factors, stats, info = run_passes(open_chunks, make_layout, progress=show, source="chunks")
     return finish(layout, factors, stats, info, opts, progress=show)
 
 
@@ -861,12 +873,12 @@ def fit_parquet(
 
     def open_batches() -> Iterator[Any]:
         for f in files:
-            pf = pq.ParquetFile(f)
+            pf = pq.ParquetFile(f, buffer_size=_READ_BUFFER, pre_buffer=False)  # pages read as needed
             try:
-                yield from pf.iter_batches(batch_size=int(batch_size), columns=layout.needed)
+                yield from pf.iter_batches(batch_size=int(batch_size), columns=layout.needed, use_threads=_READ_THREADS)
             finally:
                 pf.close()
 
-    factors, stats, info = run_passes(open_batches, layout, progress=show, total=total, source="parquet",
+    layout, factors, stats, info = run_passes(open_batches, layout, progress=show, total=total, source="parquet",
                                       what="record batch")
     return finish(layout, factors, stats, info, opts, progress=show)

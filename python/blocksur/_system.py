@@ -34,6 +34,12 @@ _COND_WARN = 1e8
 
 
 def _as_float(name: str, what: str, value: Any, ndim: int) -> np.ndarray:
+    if np.ma.isMaskedArray(value) and np.ma.getmaskarray(value).any():
+        raise ShapeMismatchError(
+            f"equation '{name}': the {what} is a masked array with masked values; fill them or "
+            "drop those rows (the sample must be common to all equations)",
+            equation=name,
+        )
     arr = np.asarray(value)
     if arr.dtype == object or not (np.issubdtype(arr.dtype, np.number) or arr.dtype == np.bool_):
         raise ShapeMismatchError(
