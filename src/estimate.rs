@@ -145,6 +145,7 @@ pub struct Restrictions {
 #[derive(Debug, Clone)]
 struct NullSpace {
     r: Array2<f64>,
+    b0: Array1<f64>,
     n: Array2<f64>,
     g: Array2<f64>,
     d0: Array1<f64>,
@@ -154,6 +155,7 @@ struct NullSpace {
 #[derive(Debug, Clone)]
 struct RestrictedParts {
     space: NullSpace,
+    theta: Array1<f64>,
     a_inv: Array2<f64>,
 }
 
@@ -433,14 +435,32 @@ impl Prepared {
     fn null_space(&self, rs: &Restrictions) -> Result<NullSpace> {
         use ndarray_linalg::SVD;
         let (m, k) = rs.r.dim();
-        let (_, _, vt) = rs.r.svd(false, true).map_err(|e| SurError::numerical("SVD of the restrictions", e))?;
+        // Coefficients no restriction mentions keep their own unit directions in N; only the
+        // mentioned ones share the SVD null space, so rounding never mixes the two groups.
+        let involved: Vec<usize> = (0..k).filter(|&j| rs.r.column(j).iter().any(|v| *v != 0.0)).collect();
+        let free: Vec<usize> = (0..k).filter(|j| !involved.contains(j)).collect();
+        let ri = rs.r.select(ndarray::Axis(1), &involved);
+        let ki = involved.len();
+        let (_, _, vt) = ri.svd(false, true).map_err(|e| SurError::numerical("SVD of the restrictions", e))?;
         let vt = vt.ok_or_else(|| SurError::numerical("SVD of the restrictions", "no right singular vectors"))?;
-        let n = vt.slice(s![m..k, ..]).t().to_owned();
-        let mut rrt = rs.r.dot(&rs.r.t());
+        let mut n = Array2::<f64>::zeros((k, k - m));
+        for (c, &j) in free.iter().enumerate() {
+            n[[j, c]] = 1.0;
+        }
+        for c in 0..(ki - m) {
+            for (row, &j) in involved.iter().enumerate() {
+                n[[j, free.len() + c]] = vt[[m + c, row]];
+            }
+        }
+        let mut rrt = ri.dot(&ri.t());
         symmetrize(&mut rrt);
         let l = chol_lower(crate::linalg::to_fortran(&rrt))
             .ok_or_else(|| SurError::InvalidRestriction { index: None, detail: "are linearly dependent".into() })?;
-        let b0 = rs.r.t().dot(&chol_solve(&l, &rs.q)?);
+        let b0i = ri.t().dot(&chol_solve(&l, &rs.q)?);
+        let mut b0 = Array1::<f64>::zeros(k);
+        for (row, &j) in involved.iter().enumerate() {
+            b0[j] = b0i[row];
+        }
         let mut g = Array2::<f64>::zeros((k, k - m));
         let mut d0 = Array1::<f64>::zeros(k);
         for (i, f) in self.factors.iter().enumerate() {
@@ -448,22 +468,46 @@ impl Prepared {
             g.slice_mut(s![a..b, ..]).assign(&f.r.dot(&n.slice(s![a..b, ..])));
             d0.slice_mut(s![a..b]).assign(&(f.r.dot(&b0.slice(s![a..b])) - &f.z));
         }
-        Ok(NullSpace { r: rs.r.clone(), n, g, d0 })
+        Ok(NullSpace { r: rs.r.clone(), b0, n, g, d0 })
     }
 
     /// The restricted step: minimises the estimator's objective over delta = d0 + G theta,
     /// given the unrestricted solution delta_u of W delta = h: (G'WG) theta = G'W (delta_u - d0).
+    ///
+    /// Solved as the least-squares problem min ||L'(d0 + G theta - delta_u)|| (W = L L') by QR
+    /// of F = L'G, so the conditioning of G enters once, not squared as in the normal equations.
     fn restrict(&self, delta_u: &Array1<f64>, w: &Weight, space: &NullSpace) -> Result<(Array1<f64>, RestrictedParts)> {
-        let wg = self.weight_apply(w, &space.g)?;
-        let mut a = space.g.t().dot(&wg);
-        symmetrize(&mut a);
-        let l = chol_lower(crate::linalg::to_fortran(&a)).ok_or_else(|| {
-            SurError::numerical("restricted estimation", "the restricted normal matrix is not positive definite")
+        let shared_factor;
+        let l = match w {
+            Weight::Identity => None,
+            Weight::Chol(l) => Some(l),
+            Weight::Shared(_) => {
+                let m = self.weight_apply(w, &Array2::eye(self.n_coef()))?;
+                shared_factor = chol_lower(crate::linalg::to_fortran(&m))
+                    .ok_or_else(|| SurError::numerical("restricted estimation", "GLS matrix not positive definite"))?;
+                Some(&shared_factor)
+            }
+            Weight::MatrixFree => return Err(matrix_free_unsupported("restrictions")),
+        };
+        let gap = delta_u - &space.d0;
+        let (f, c) = match l {
+            None => (space.g.clone(), gap),
+            Some(l) => (l.t().dot(&space.g), l.t().dot(&gap)),
+        };
+        let (qf, rf) = crate::linalg::thin_qr(crate::linalg::to_fortran(&f))?;
+        let theta = crate::linalg::upper_solve(&rf, &qf.t().dot(&c)).map_err(|_| SurError::SingularOmega {
+            equations: self.names.clone(),
+            detail: "the GLS weights are numerically singular on the coefficients the \
+                     restrictions leave free: the estimated cross-equation covariance is (nearly) \
+                     singular; use fewer equations, method='fgls', or omega='ledoit-wolf'"
+                .into(),
         })?;
-        let rhs = wg.t().dot(&(delta_u - &space.d0));
-        let theta = chol_solve(&l, &rhs)?;
         let out = &space.d0 + &space.g.dot(&theta);
-        Ok((out, RestrictedParts { space: space.clone(), a_inv: chol_inverse(&l)? }))
+        // (F'F)^-1 = R_F^-1 R_F^-T
+        let rinv = upper_inverse(&rf)?;
+        let mut a_inv = rinv.dot(&rinv.t());
+        symmetrize(&mut a_inv);
+        Ok((out, RestrictedParts { space: space.clone(), theta, a_inv }))
     }
 
     /// Runs one estimation without restrictions.
@@ -557,7 +601,12 @@ impl Prepared {
         }
         let OmegaEst { omega, shrinkage, .. } = oest;
         let gamma = &z + &delta;
-        let coef = self.coef_from_gamma(&gamma)?;
+        // restricted: b = b0 + N theta directly, so R b = q holds to the rounding of b itself
+        // (the back substitution from gamma would add the conditioning of X_i to the gap)
+        let coef = match &restricted {
+            Some(p) => &p.space.b0 + &p.space.n.dot(&p.theta),
+            None => self.coef_from_gamma(&gamma)?,
+        };
         if let Some((_, rs)) = &constraint {
             rs.check_satisfied(&coef, &self.coef_scales())?;
         }

@@ -235,6 +235,18 @@ case("prepare_from_summaries: zero factors", "any")(lambda: _core.prepare_from_s
 case("fit_many: empty", "any")(lambda: _core.fit_many([], [], "fgls", "ml", 1e-10, 10, 2))
 case("fit_many: systems of different shapes")(lambda: _core.fit_many([[Y, Y2], [Y]], [[X2, X3], [X2]], "fgls", "ml", 1e-10, 10, 2))
 case("fit_many: lists of different lengths")(lambda: _core.fit_many([[Y, Y2]], [[X2, X3], [X2, X3]], "fgls", "ml", 1e-10, 10, 2))
+# -- blas_threads ------------------------------------------------------------------------------
+if hasattr(_core, "blas_threads"):
+    _threads_now = _core.blas_threads()
+    case("blas_threads: 0")(lambda: _core.blas_threads(0))
+    case("blas_threads: negative")(lambda: _core.blas_threads(-1))
+    case("blas_threads: 2**70")(lambda: _core.blas_threads(2**70))
+    case("blas_threads: 1025")(lambda: _core.blas_threads(1025))
+    case("blas_threads: a string")(lambda: _core.blas_threads("2"))
+    case("blas_threads: a float")(lambda: _core.blas_threads(2.5))
+    case("blas_threads: back to the start", "any")(lambda: _core.blas_threads(_threads_now))
+
+
 def recorded(result):
     """fit_many reports per-system failures in result["errors"]; turn the first into a raise."""
     for entry in result["errors"]:

@@ -193,12 +193,24 @@ def scaled_cond(x: np.ndarray) -> float:
     return float(s[0] / s[-1]) if s[-1] > 0 else np.inf
 
 
+def joint_rank(xs) -> int:
+    """Numerical rank of [X_1 .. X_N] with every column scaled to unit length (numpy SVD)."""
+    a = np.hstack(xs)
+    norms = np.linalg.norm(a, axis=0)
+    return int(np.linalg.matrix_rank(a / np.where(norms > 0, norms, 1.0)))
+
+
 def ols_resid(ys, xs) -> np.ndarray:
-    """Equation-by-equation OLS residuals by numpy lstsq (LAPACK gelsd), T x N."""
+    """Equation-by-equation OLS residuals as the projection of y off the column space of X
+    (numpy Householder QR of the column-scaled X, projected twice), T x N. Unlike a truncated
+    SVD solve this keeps full accuracy for ill-conditioned X of full rank."""
     out = []
     for y, x in zip(ys, xs):
-        b = np.linalg.lstsq(x, y, rcond=None)[0]
-        out.append(y - x @ b)
+        norms = np.linalg.norm(x, axis=0)
+        q, _ = np.linalg.qr(x / np.where(norms > 0, norms, 1.0))
+        e = y - q @ (q.T @ y)
+        e = e - q @ (q.T @ e)
+        out.append(e)
     return np.column_stack(out)
 
 
@@ -234,7 +246,7 @@ def justified(err: BaseException, system: System, method: str) -> str | None:
         lam = np.linalg.eigvalsh(c)
         if lam[0] <= 1e-9 * lam[-1]:
             return None
-        if method == "ifgls" and n + np.linalg.matrix_rank(np.hstack(system.xs)) > t:
+        if method == "ifgls" and n + joint_rank(system.xs) > t:
             # Some combination sum_i c_i e_i of the residuals can then be made zero (N unknowns
             # c against T - rank([X_1..X_N]) conditions), so the Gaussian likelihood is unbounded,
             # the ML estimator does not exist and the iteration drives Omega to singular.
@@ -326,7 +338,8 @@ def check_fit(fit, system: System, method: str, *, rtol_ne: float = 1e-12) -> di
         if fit.converged:
             assert path[-1] <= fit.tol
     r2 = fit.r2.to_numpy()
-    assert np.all(r2 <= 1 + 1e-12), f"R-squared above one {r2}"
+    # NaN where R-squared is undefined (a dependent variable without variation about its mean)
+    assert np.all((r2 <= 1 + 1e-12) | np.isnan(r2)), f"R-squared above one {r2}"
     return out
 
 
@@ -334,8 +347,11 @@ def check_fit(fit, system: System, method: str, *, rtol_ne: float = 1e-12) -> di
 # Subprocesses
 
 
-def run_python(code: str, *, timeout: float = 120, env: dict | None = None, **kw) -> subprocess.CompletedProcess:
-    """Runs `code` in a fresh interpreter with blocksur importable; returns the completed process."""
+def run_python(
+    code: str, *, timeout: float = 120, env: dict | None = None, argv: list | None = None, **kw
+) -> subprocess.CompletedProcess:
+    """Runs `code` in a fresh interpreter (tests/ importable, extra `argv`); returns the completed
+    process."""
     full_env = dict(os.environ)
     full_env.pop("PYTHONFAULTHANDLER", None)
     full_env["PYTHONPATH"] = os.pathsep.join([os.path.join(ROOT, "tests"), full_env.get("PYTHONPATH", "")])
@@ -343,7 +359,7 @@ def run_python(code: str, *, timeout: float = 120, env: dict | None = None, **kw
     if env:
         full_env.update(env)
     return subprocess.run(
-        [sys.executable, "-c", code], capture_output=True, text=True, timeout=timeout, env=full_env, cwd=ROOT, **kw
+        [sys.executable, "-c", code, *(argv or [])], capture_output=True, text=True, timeout=timeout, env=full_env, cwd=ROOT, **kw
     )
 
 

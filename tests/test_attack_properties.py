@@ -8,10 +8,11 @@ a hang or a silent NaN.
 
 Outside references: the first-order conditions of least squares and of GLS (theorem); FGLS
 equals OLS when every equation has the same regressors (theorem: Zellner 1962 / Kruskal 1968);
-numpy SVD / lstsq for ranks and condition numbers.
+numpy SVD and QR for ranks, condition numbers and OLS residuals.
 
-Example counts are fixed (derandomize=True) so CI is reproducible; the counts are written in the
-settings below and total 1,500 examples in this file (see also test_attack_parsers.py).
+Example counts are fixed (derandomize=True: the same examples on every run, so CI is
+reproducible); they are written in the settings below and total 1,750 examples in this file
+(1,600 more in test_attack_parsers.py). A test that fails stops at its first failing example.
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ import warnings
 
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import HealthCheck, assume, event, given, note, settings
 from hypothesis import strategies as st
 
 import blocksur
@@ -38,8 +39,6 @@ SETTINGS = dict(
 )
 
 DOCUMENTED = (errors.BlocksurError,)
-Y_EXP = float(__import__("os").environ.get("ATTACK_Y_EXP", "8"))
-K_MIN = int(__import__("os").environ.get("ATTACK_K_MIN", "1"))
 
 
 @st.composite
@@ -48,16 +47,16 @@ def specs(draw, *, identical=None, dtypes=("float64", "float32", "int64", "int32
     if identical is None:
         identical = draw(st.sampled_from([None, None, None, "same", "copy", "permuted"]))
     if identical:
-        k = draw(st.integers(K_MIN, 6))
+        k = draw(st.integers(1, 6))
         ks = (k,) * n
     else:
-        ks = tuple(draw(st.lists(st.integers(K_MIN, 6), min_size=n, max_size=n)))
+        ks = tuple(draw(st.lists(st.integers(1, 6), min_size=n, max_size=n)))
     extra = draw(st.one_of(st.integers(0, 3), st.integers(4, 30), st.integers(31, 120)))
     t = max(ks) + 1 + extra
     dtype = draw(st.sampled_from(dtypes))
     exps = st.floats(-8, 8, allow_nan=False)
     col_exp = tuple(draw(st.lists(exps, min_size=sum(ks), max_size=sum(ks))))
-    y_exp = tuple(draw(st.lists(st.floats(-Y_EXP, Y_EXP), min_size=n, max_size=n)))
+    y_exp = tuple(draw(st.lists(exps, min_size=n, max_size=n)))
     intercept = tuple(draw(st.lists(st.booleans(), min_size=n, max_size=n)))
     near = draw(st.one_of(st.none(), st.tuples(st.integers(0, 11), st.floats(-16, -2))))
     layout = draw(st.sampled_from(["C", "F", "strided", "reversed"]))
@@ -95,7 +94,7 @@ def _check_warnings(caught, system):
         if issubclass(w.category, blocksur.BlocksurWarning):
             continue
         # a numpy RuntimeWarning would mean NaN/inf arithmetic in the library's Python layer
-        raise AssertionError(f"unexpected warning {w.category.__name__}: {w.message}")
+        raise AssertionError(f"unexpected warning {w.category.__name__}: {w.message} ({w.filename}:{w.lineno})")
 
 
 @settings(max_examples=900, **SETTINGS)
@@ -107,12 +106,14 @@ def test_random_systems_fit_or_raise_documented_error(spec, method, omega):
         kw.update(max_iter=60, tol=1e-9)
     fit, err, caught = _attempt(system, method, **kw)
     if err is not None:
+        event(f"raised {type(err).__name__}")
         why = justified(err, system, method)
         assert why is None, why
         return
+    event("fitted")
+    for w in caught:
+        event(f"warned {w.category.__name__}")
     _check_warnings(caught, system)
-    if method == "ols" and spec.exact_fit is not None:
-        pass  # an exact fit is fine for OLS (zero residuals)
     measured = check_fit(fit, system, method)
     for key, value in measured.items():
         if key != "cond_omega":
@@ -230,3 +231,96 @@ def test_nonfinite_values_are_located(case, method):
     assert e.row == row
     assert e.column == (None if col < 0 else f"x{col}")
     assert f"row {row}" in str(e)
+
+
+@st.composite
+def restricted_case(draw):
+    spec = draw(specs(dtypes=("float64",)))
+    spec.exact_fit = None
+    spec.near_collinear = None
+    spec.col_exp = tuple(min(max(c, -3.0), 3.0) for c in spec.col_exp)
+    spec.y_exp = tuple(min(max(c, -3.0), 3.0) for c in spec.y_exp)
+    k = sum(spec.ks)
+    assume(k >= 2)
+    m = draw(st.integers(1, min(3, k - 1)))
+    rows = []
+    for _ in range(m):
+        row = draw(st.lists(st.sampled_from([0, 0, 0, 1, -1, 2, 0.5]), min_size=k, max_size=k))
+        if not any(row):
+            row[draw(st.integers(0, k - 1))] = 1
+        rows.append(row)
+    q = draw(st.lists(st.floats(-2, 2), min_size=m, max_size=m))
+    return spec, np.array(rows, dtype=float), np.array(q)
+
+
+@settings(max_examples=250, **SETTINGS)
+@given(case=restricted_case(), method=st.sampled_from(["ols", "fgls", "ifgls"]))
+def test_restricted_fits_satisfy_the_restrictions_and_their_first_order_conditions(case, method):
+    """Restricted least squares / GLS (theorem, Lagrange conditions): R b = q, and the gradient
+    g_i = sum_j w^{ij} X_i' e_j (w = I for OLS, Omega^-1 for GLS) lies in the row space of R.
+    Linearly dependent or contradictory rows must raise RestrictionError."""
+    spec, r, q = case
+    note(f"R = {r.tolist()!r}, q = {[float(v).hex() for v in q]!r}")
+    system = random_system(spec)
+    kw = {"max_iter": 60} if method == "ifgls" else {}
+    rank = np.linalg.matrix_rank(r)
+    try:
+        fit, caught = fit_quietly(system.given, method=method, restrictions=(r, q), **kw)
+    except errors.RestrictionError as err:
+        event("raised RestrictionError")
+        assert rank < r.shape[0], f"RestrictionError for {r.shape[0]} independent rows: {err}"
+        return
+    except DOCUMENTED as err:
+        event(f"raised {type(err).__name__}")
+        why = justified(err, system, method)
+        if why is not None and isinstance(err, errors.SingularOmegaError) and method != "ols":
+            # The GLS steps of a restricted fit start from restricted OLS residuals: the
+            # singularity is justified when those residuals (y - X b_r, computed here in numpy
+            # from the restricted OLS coefficients) are nearly linearly dependent.
+            ols_r, _ = fit_quietly(system.given, method="ols", restrictions=(r, q))
+            b = ols_r.coef.to_numpy()
+            offs = np.cumsum([0] + [x.shape[1] for x in system.xs])
+            e = np.column_stack([y - x @ b[offs[i]:offs[i + 1]] for i, (y, x) in enumerate(zip(system.ys, system.xs))])
+            en = e / np.maximum(np.linalg.norm(e, axis=0), 1e-300)
+            lam = np.linalg.eigvalsh(en.T @ en)
+            if lam[0] <= 1e-6 * lam[-1]:
+                why = None
+        assert why is None, why
+        return
+    event("fitted")
+    assert rank == r.shape[0], "dependent restrictions were accepted"
+    _check_warnings(caught, system)
+    b = fit.coef.to_numpy()
+    assert np.all(np.isfinite(b)) and np.all(np.isfinite(fit.se.to_numpy()))
+    ks = [x.shape[1] for x in system.xs]
+    n = len(ks)
+    # the natural size of coefficient j of equation i is ||y_i|| / ||X_ij||
+    natural = np.concatenate([np.linalg.norm(y) / np.linalg.norm(x, axis=0) for y, x in zip(system.ys, system.xs)])
+    gap = np.abs(r @ b - q)
+    assert np.all(gap <= 1e-10 * (np.abs(r) @ (np.abs(b) + natural) + np.abs(q))), f"R b - q = {gap}"
+    e = fit.resid.to_numpy()
+    w = np.eye(n) if method == "ols" else np.linalg.inv(fit.omega.to_numpy())
+    g, scale = [], []
+    for i in range(n):
+        gi = sum(w[i, j] * (system.xs[i].T @ e[:, j]) for j in range(n))
+        si = sum(abs(w[i, j]) * np.linalg.norm(system.xs[i], axis=0) * (np.linalg.norm(e[:, j]) + np.linalg.norm(system.ys[j]))
+                 for j in range(n))
+        g.append(gi)
+        scale.append(si)
+    g, scale = np.concatenate(g) / np.concatenate(scale), np.concatenate(scale)
+    # component of the (scaled) gradient outside the row space of R D, D = diag(scale)
+    rd = r / scale
+    proj = rd.T @ np.linalg.lstsq(rd.T, g, rcond=None)[0]
+    resid = np.max(np.abs(g - proj))
+    # Rounding enters through Omega^-1 and, unlike the unrestricted case, through the
+    # triangular factors of X_i that carry R into the orthonormal basis: allow for both.
+    cond_w = np.linalg.cond(w)
+    cond_x = max(scaled_cond(x) for x in system.xs)
+    # Least-squares solutions carry cond(X)^2 * tan(theta) when residuals are not small (the
+    # classical sensitivity bound, from memory: Golub & Van Loan, section 5.3), hence the square.
+    # Known limit (issue 6 note): nearly saturated equations (T close to K_i) whose dependent
+    # variables differ in scale by 1e4 have shown relative violations up to ~2e-7 here, so the
+    # constant is loose; a wrong restricted solution violates the conditions at order one.
+    tol = 1e-7 * max(1.0, cond_w) * max(1.0, cond_x) ** 2
+    record(f"attack properties: restricted {method} first-order conditions (relative)", resid)
+    assert resid <= tol, f"restricted first-order conditions violated: {resid:.3g} (tol {tol:.3g})"
