@@ -27,7 +27,7 @@ pub fn gram_blocked(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> R
         owned = to_fortran(&w.to_owned());
         owned.view()
     };
-    let rows = ((4e9 / (p as f64 * p as f64)) as usize).clamp(256, t.max(256));
+    let rows = ((5e8 / (p as f64 * p as f64)) as usize).clamp(256, t.max(256));
     let mut start = 0;
     while start < t {
         let end = (start + rows).min(t);
