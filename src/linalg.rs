@@ -368,7 +368,7 @@ pub fn thin_qr(a: Array2<f64>) -> Result<(Array2<f64>, Array2<f64>)> {
     let (t, m) = a.dim();
     // LAPACK's blocked QR wins on long or wide blocks (and keeps each block short enough for
     // the Ctrl-C checks between equations); the loop below wins on small ones.
-    if m > 1 && (m > 24 || t < m || t * m > 200_000) {
+    if m > 1 && (m > 24 || t < m || t * m > 20_000) {
         use ndarray_linalg::QRInto;
         return a.qr_into().map_err(|e| SurError::numerical("QR", e));
     }
