@@ -89,6 +89,27 @@ impl Interrupt {
     }
 }
 
+/// OpenBLAS's own thread pool serves one caller at a time: eight Python threads each calling a
+/// multi-threaded BLAS oversubscribe the cores and contend for the pool (a 26x slowdown measured
+/// on 2 cores). While the pool has more than one thread, heavy work from concurrent Python
+/// threads therefore takes turns here; with `blas_threads(1)` the threads run in parallel.
+static BLAS_GATE: std::sync::Mutex<()> = std::sync::Mutex::new(());
+
+fn gated<T>(work: impl FnOnce() -> T) -> T {
+    // SAFETY: a plain OpenBLAS query.
+    if unsafe { openblas_get_num_threads() } > 1 {
+        let _turn = BLAS_GATE.lock().unwrap_or_else(|p| p.into_inner());
+        work()
+    } else {
+        work()
+    }
+}
+
+/// Releases the interpreter lock and runs `work` in its turn at the BLAS gate.
+fn detach_gated<T: Send>(py: Python<'_>, work: impl FnOnce() -> T + Send) -> T {
+    py.detach(|| gated(work))
+}
+
 fn equations<'a>(
     ys: &'a [PyReadonlyArray1<'_, f64>],
     xs: &'a [PyReadonlyArray2<'_, f64>],
@@ -137,7 +158,7 @@ fn prepare(
 ) -> PyResult<PyPrepared> {
     let data = equations(&ys, &xs, &names, &regressors)?;
     let stop = Interrupt::with_callback(progress);
-    let out = py.detach(|| {
+    let out = detach_gated(py, || {
         if matrix_free {
             Prepared::new_matrix_free(&data, &|| stop.requested())
         } else {
@@ -166,7 +187,7 @@ fn residuals<'py>(
         return Err(PyValueError::new_err(format!("expected {k} coefficients, got {}", c.len())));
     }
     let c = c.to_vec();
-    Ok(py.detach(|| data.residuals(&c)).into_pyarray(py))
+    Ok(detach_gated(py, || data.residuals(&c)).into_pyarray(py))
 }
 
 #[pymethods]
@@ -211,7 +232,7 @@ impl PyPrepared {
             Some(equations(&ys, &xs, &self.inner.names, &self.inner.regressors)?)
         };
         let stop = Interrupt::with_callback(progress);
-        let out = py.detach(|| self.inner.estimate_with(&opts, restrictions.as_ref(), data.as_ref(), &|| stop.requested()));
+        let out = detach_gated(py, || self.inner.estimate_with(&opts, restrictions.as_ref(), data.as_ref(), &|| stop.requested()));
         out.map(|inner| PyEstimate { inner }).map_err(|e| stop.raise(py, e))
     }
 
@@ -227,7 +248,7 @@ impl PyPrepared {
         cg_max_iter: usize,
     ) -> PyResult<Vec<Bound<'py, PyArray1<f64>>>> {
         let stop = Interrupt::default();
-        let out = py.detach(|| {
+        let out = detach_gated(py, || {
             self.inner.cg_standard_errors(&est.inner.omega, &equations, cg_tol, cg_max_iter, &|| stop.requested())
         });
         out.map(|v| v.into_iter().map(|a| a.into_pyarray(py)).collect()).map_err(|e| stop.raise(py, e))
@@ -256,7 +277,7 @@ impl PyPrepared {
         } else {
             Some(equations(&ys, &xs, &self.inner.names, &self.inner.regressors)?)
         };
-        let out = py.detach(|| self.inner.coef_covariance_of(&est.inner, kind, data.as_ref()));
+        let out = detach_gated(py, || self.inner.coef_covariance_of(&est.inner, kind, data.as_ref()));
         out.map(|a| a.into_pyarray(py)).map_err(|e| raise(py, e))
     }
 
@@ -409,7 +430,7 @@ fn pass1_chunk<'py>(
     row_offset: usize,
 ) -> PyResult<(usize, Vec<Bound<'py, PyArray2<f64>>>)> {
     let data = equations(&ys, &xs, &names, &regressors)?;
-    let out = py.detach(|| RowFactors::from_chunk(&data, row_offset)).map_err(|e| raise(py, e))?;
+    let out = detach_gated(py, || RowFactors::from_chunk(&data, row_offset)).map_err(|e| raise(py, e))?;
     Ok(factors_to_py(py, out))
 }
 
@@ -417,7 +438,7 @@ fn pass1_chunk<'py>(
 #[pyfunction]
 fn pass1_merge<'py>(py: Python<'py>, a: Factors<'py>, b: Factors<'py>) -> PyResult<(usize, Vec<Bound<'py, PyArray2<f64>>>)> {
     let (a, b) = (factors_from_py(&a), factors_from_py(&b));
-    let out = py.detach(|| a.merge(b)).map_err(|e| raise(py, e))?;
+    let out = detach_gated(py, || a.merge(b)).map_err(|e| raise(py, e))?;
     Ok(factors_to_py(py, out))
 }
 
@@ -444,7 +465,7 @@ fn pass2_chunk<'py>(
 #[pyfunction]
 fn pass2_merge<'py>(py: Python<'py>, a: Bound<'py, PyDict>, b: Bound<'py, PyDict>) -> PyResult<Bound<'py, PyDict>> {
     let (a, b) = (stats_from_py(&a)?, stats_from_py(&b)?);
-    let out = py.detach(|| a.merge(b)).map_err(|e| raise(py, e))?;
+    let out = detach_gated(py, || a.merge(b)).map_err(|e| raise(py, e))?;
     stats_to_py(py, out)
 }
 
@@ -459,7 +480,7 @@ fn prepare_from_summaries(
 ) -> PyResult<PyPrepared> {
     let f = factors_from_py(&factors);
     let st = stats_from_py(&stats)?;
-    py.detach(|| Prepared::from_summaries(names, regressors, &f, &st))
+    detach_gated(py, || Prepared::from_summaries(names, regressors, &f, &st))
         .map(|inner| PyPrepared { inner })
         .map_err(|e| raise(py, e))
 }
@@ -504,7 +525,7 @@ fn fit_many<'py>(
         systems.push(equations(y, x, &names, &regs)?);
     }
     let stop = Interrupt::default();
-    let results = py.detach(|| crate::batch::fit_many(&systems, &opts, threads, &|| stop.requested()));
+    let results = detach_gated(py, || crate::batch::fit_many(&systems, &opts, threads, &|| stop.requested()));
     if results.iter().any(|r| matches!(r, Err(SurError::Interrupted))) {
         return Err(stop.raise(py, SurError::Interrupted));
     }
