@@ -49,9 +49,8 @@ from . import _core
 from ._fit import SystemFit
 from ._frame import CONSTANT_NAME, _numeric, _parse_specs, _Table, _unknown
 from ._progress import _wanted as progress_wanted
-from ._progress import close as close_hook
-from ._progress import progress_hook
-from ._restrictions import parse_restrictions
+from ._estimation import COND_WARN as _COND_WARN
+from ._estimation import run_estimation
 from ._system import _as_float
 from .errors import (
     DataNotKeptError,
@@ -60,16 +59,12 @@ from .errors import (
     InputError,
     InvalidOptionError,
     MissingDependencyError,
-    NotConvergedWarning,
-    RestrictionError,
     ShapeMismatchError,
 )
 
 __all__ = ["StreamInfo", "RowlessFit", "fit_chunks", "fit_parquet"]
 
 _METHODS = ("ols", "fgls", "ifgls")
-# Condition number above which a warning is issued (as for in-memory fits).
-_COND_WARN = 1e8
 # Pass 2 must see the rows of pass 1: the sums of squares of y from both passes must agree.
 _SAME_DATA_RTOL = 1e-8
 # Parquet: bytes read at a time within a column chunk (the row group is not loaded whole).
@@ -476,46 +471,18 @@ def estimate_prepared(prepared: Any, names: list[str], regressors: list[list[str
                       stacklevel: int = 3, progress: bool = False) -> tuple[Any, Any]:
     """One estimation on a prepared system, with the warnings and messages of
     :meth:`EquationSystem.fit`. Returns (estimate, restriction set or None)."""
-    rset = None
-    if opts.restrictions is not None:
-        rset = parse_restrictions(opts.restrictions, names, regressors)
-    hook = progress_hook(progress, "iterated FGLS", opts.max_iter) if opts.method == "ifgls" else None
-    try:
-        est = prepared.estimate(
-            opts.method,
-            opts.omega,
-            opts.tol,
-            opts.max_iter,
-            None if rset is None else rset.r,
-            None if rset is None else rset.q,
-            **({} if hook is None else {"progress": hook}),
-        )
-    except RestrictionError as err:
-        where = rset.describe(getattr(err, "index", None)) if rset is not None else ""
-        if where:
-            msg = str(err).split(" ", 2)[-1] if str(err).startswith("restriction ") else str(err)
-            raise RestrictionError(f"{where} {msg}", index=err.index) from None
-        raise
-    finally:
-        close_hook(hook)
-    if est.omega_cond > _COND_WARN:
-        warnings.warn(
-            f"the estimated cross-equation covariance is nearly singular (condition number estimate "
-            f"{est.omega_cond:.1e} of the residual correlation): the residuals of some equations are "
-            "almost linearly dependent; check for equations that nearly add up to another",
-            IllConditionedWarning,
-            stacklevel=stacklevel,
-        )
-    if not est.converged:
-        path = est.criterion_path
-        warnings.warn(
-            f"iterated FGLS stopped after max_iter={opts.max_iter} GLS steps without meeting "
-            f"tol={opts.tol:g} (last relative change {path[-1]:.3g}); the estimates are those of the "
-            "last step: raise max_iter or loosen tol",
-            NotConvergedWarning,
-            stacklevel=stacklevel,
-        )
-    return est, rset
+    return run_estimation(
+        prepared,
+        names,
+        regressors,
+        method=opts.method,
+        core_omega=opts.omega,
+        tol=opts.tol,
+        max_iter=opts.max_iter,
+        restrictions=opts.restrictions,
+        progress=progress,
+        stacklevel=stacklevel + 1,
+    )
 
 
 def _y_crossprod(names: list[str], regressors: list[list[str]], factors: Any, stats: Mapping[str, Any]) -> np.ndarray:

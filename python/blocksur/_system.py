@@ -11,11 +11,12 @@ import numpy as np
 import pandas as pd
 
 from . import _core
-from .errors import IllConditionedWarning, InvalidOptionError, NotConvergedWarning, RestrictionError, ShapeMismatchError
+from .errors import IllConditionedWarning, InvalidOptionError, ShapeMismatchError
 from ._fit import SystemFit
 from ._progress import close as close_hook
 from ._progress import progress_hook
-from ._restrictions import parse_restrictions
+from ._estimation import COND_WARN as _COND_WARN
+from ._estimation import run_estimation
 
 __all__ = ["EquationSystem"]
 
@@ -29,8 +30,6 @@ def _default_memory_limit() -> float:
     except (ValueError, OSError, AttributeError):  # pragma: no cover - non-POSIX
         return 8e9
 _COVARIANCES = ("classical", "hc0", "hc1")
-# Condition number above which a warning is issued: about half of the 16 digits may be lost.
-_COND_WARN = 1e8
 
 
 def _as_float(name: str, what: str, value: Any, ndim: int) -> np.ndarray:
@@ -368,50 +367,22 @@ class EquationSystem:
         if inference not in ("z", "t"):
             raise InvalidOptionError(f"unknown inference {inference!r}: use 'z' (normal) or 't'")
         prepared = self._prepare(matrix_free, progress)
-        rset = None
-        if restrictions is not None:
-            rset = parse_restrictions(restrictions, self._names, self._regressors)
-        hook = progress_hook(progress, "iterated FGLS", int(max_iter)) if method == "ifgls" else None
-        try:
-            est = prepared.estimate(
-                method,
-                core_omega,
-                tol,
-                int(max_iter),
-                None if rset is None else rset.r,
-                None if rset is None else rset.q,
-                self._ys if omega == "ledoit-wolf" and not matrix_free else None,
-                self._xs if omega == "ledoit-wolf" and not matrix_free else None,
-                cg_tol=float(cg_tol),
-                cg_max_iter=int(cg_max_iter),
-                progress=hook,
-            )
-        except RestrictionError as err:
-            where = rset.describe(getattr(err, "index", None)) if rset is not None else ""
-            if where:
-                msg = str(err).split(" ", 2)[-1] if str(err).startswith("restriction ") else str(err)
-                raise RestrictionError(f"{where} {msg}", index=err.index) from None
-            raise
-        finally:
-            close_hook(hook)
-        if est.omega_cond > _COND_WARN:
-            warnings.warn(
-                f"the estimated cross-equation covariance is nearly singular (condition number "
-                f"estimate {est.omega_cond:.1e} of the residual correlation): the residuals of some "
-                "equations are almost linearly dependent, and the GLS weights amplify rounding; "
-                "check for equations that nearly add up to another",
-                IllConditionedWarning,
-                stacklevel=2,
-            )
-        if not est.converged:
-            path = est.criterion_path
-            warnings.warn(
-                f"iterated FGLS stopped after max_iter={max_iter} GLS steps without meeting "
-                f"tol={tol:g} (last relative change {path[-1]:.3g}); the estimates are those of "
-                "the last step: raise max_iter or loosen tol",
-                NotConvergedWarning,
-                stacklevel=2,
-            )
+        lw_data = omega == "ledoit-wolf" and not matrix_free
+        est, rset = run_estimation(
+            prepared,
+            self._names,
+            self._regressors,
+            method=method,
+            core_omega=core_omega,
+            tol=tol,
+            max_iter=int(max_iter),
+            restrictions=restrictions,
+            progress=progress,
+            ys=self._ys if lw_data else None,
+            xs=self._xs if lw_data else None,
+            cg_tol=cg_tol,
+            cg_max_iter=cg_max_iter,
+        )
         return SystemFit(
             self,
             prepared,
