@@ -417,10 +417,23 @@ def main(argv=None):
     ap.add_argument("--keep-data", action="store_true", help="keep the Parquet files")
     ap.add_argument("--wait-idle", type=float, default=0.0, metavar="SECONDS",
                     help="before each section, wait up to SECONDS for the 1-min load average to drop below 1")
+    ap.add_argument("--replot", default=None, metavar="JSON",
+                    help="redraw the plots from a scale-<stamp>.json of an earlier run, and stop")
     ap.add_argument("--worker", default=None, help=argparse.SUPPRESS)
     a = ap.parse_args(argv)
     if a.worker:
         print(json.dumps(worker(json.loads(a.worker)), default=float))
+        return 0
+    if a.replot:
+        with open(a.replot) as f:
+            old = json.load(f)
+        sfx = "-quick" if "quick" in os.path.basename(a.replot) else ""
+        if "curve_n" in old:
+            p0 = old["curve_n"][0]["bs"]["spec"]
+            _plot_curve(old["curve_n"], "n", os.path.join(a.out, f"scale-n{sfx}.png"), f"T={p0['t']}, K_i={p0['k']}")
+        if "curve_t" in old:
+            p0 = old["curve_t"][0]["stream"]["spec"]
+            _plot_curve(old["curve_t"], "t", os.path.join(a.out, f"scale-t{sfx}.png"), f"N={p0['n']}, K_i={p0['k']}")
         return 0
 
     sections = set((a.only or "n,t,targets").split(","))
@@ -686,10 +699,15 @@ def _plot_curve(pts, axis, path, title):
         if not xs:
             continue
         ax1.plot(xs, [p[key]["median"] for p in pts if p.get(key) and "median" in p[key]], style, label=label)
-        mem = "peak" if key in ("bs", "stream") else "growth"
-        ax2.plot(xs, [p[key][mem] / 1e6 for p in pts if p.get(key) and "median" in p[key]], style,
-                 label=label + (" (process peak)" if mem == "peak" else " (growth)"))
-    for ax, lab in ((ax1, "median wall time (s)"), (ax2, "memory (MB)")):
+        ax2.plot(xs, [max(p[key]["growth"], 1e5) / 1e6 for p in pts if p.get(key) and "median" in p[key]],
+                 style, label=label)
+    for p in pts:  # the points where blocksur took the matrix-free path
+        b = p.get("bs") or {}
+        if b.get("solver") == "cg" and "median" in b:
+            ax1.annotate("CG, coefficients only", (p[axis], b["median"]), textcoords="offset points",
+                         xytext=(-10, -14), ha="right", fontsize=8)
+    for ax, lab in ((ax1, "median wall time (s)"),
+                    (ax2, "peak RSS growth over data + libraries (MB)")):
         ax.set_xscale("log")
         ax.set_yscale("log")
         ax.set_xlabel("N (equations)" if axis == "n" else "T (rows)")

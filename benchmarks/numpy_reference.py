@@ -49,6 +49,19 @@ def _fill_lower(G, bs=512):
             G[j1:, j0:j1] = G[j0:j1, j1:].T
 
 
+def _inv_from_chol(L):
+    """Inverse of L L' (L lower) by LAPACK potri, both triangles filled.
+
+    Inverses go through potri/trtri rather than a triangular solve with an identity
+    right-hand side: the bundled OpenBLAS threads its trtrs even for 4 x 4 systems,
+    and on a busy 2-core machine each such call can stall for whole scheduler ticks.
+    """
+    A, info = sla.lapack.dpotri(L, lower=1)
+    if info != 0:
+        raise np.linalg.LinAlgError("dpotri failed")
+    return np.tril(A) + np.tril(A, -1).T
+
+
 class Moments:
     """QR factors and the one-pass cross-products C, D, E of a SUR system."""
 
@@ -118,7 +131,7 @@ class Moments:
         """GLS step for a given Omega. Returns (g, cho_factor of M)."""
         N, eq = self.N, self.eq
         Lo = sla.cho_factor(Omega, lower=True, check_finite=False)
-        Sinv = sla.cho_solve(Lo, np.eye(N), check_finite=False)
+        Sinv = _inv_from_chol(Lo[0])
         # M_ij = sigma^{ij} C_ij (elementwise, expanded over blocks); one K x K array.
         M = Sinv[np.ix_(eq, eq)]
         M *= self.C
@@ -133,8 +146,13 @@ class Moments:
                 for R, sl in zip(self.Rs, self.slices)]
 
     def rinv(self) -> list[np.ndarray]:
-        return [sla.solve_triangular(R, np.eye(R.shape[0]), check_finite=False)
-                for R in self.Rs]
+        out = []
+        for R in self.Rs:
+            Ri, info = sla.lapack.dtrtri(R, lower=0)
+            if info != 0:
+                raise np.linalg.LinAlgError("dtrtri failed")
+            out.append(Ri)
+        return out
 
     def se_from_chol(self, cf) -> list[np.ndarray]:
         """Standard errors from the diagonal blocks of M^-1 only.
