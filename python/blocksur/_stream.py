@@ -51,7 +51,7 @@ from ._frame import CONSTANT_NAME, _numeric, _parse_specs, _Table, _unknown
 from ._progress import _wanted as progress_wanted
 from ._estimation import COND_WARN as _COND_WARN
 from ._estimation import run_estimation
-from ._system import _as_float
+from ._system import SystemLabels, _as_float
 from .errors import (
     DataNotKeptError,
     FormulaError,
@@ -511,7 +511,7 @@ def _y_crossprod(names: list[str], regressors: list[list[str]], factors: Any, st
     return out
 
 
-class _RowlessSystem:
+class _RowlessSystem(SystemLabels):
     """Stands in for the system of a fit over chunks: labels and sizes, no rows."""
 
     def __init__(self, names: list[str], regressors: list[list[str]], n_obs: int, source: str) -> None:
@@ -541,18 +541,6 @@ class _RowlessSystem:
     @property
     def n_obs(self) -> int:
         return self._n_obs
-
-    @property
-    def n_eq(self) -> int:
-        return len(self._names)
-
-    @property
-    def equation_names(self) -> list[str]:
-        return list(self._names)
-
-    @property
-    def regressor_names(self) -> dict[str, list[str]]:
-        return {n: list(r) for n, r in zip(self._names, self._regressors)}
 
     @property
     def sample_info(self) -> None:

@@ -61,7 +61,30 @@ def _as_float(name: str, what: str, value: Any, ndim: int) -> np.ndarray:
     return np.asarray(arr, dtype=np.float64)  # no copy when already float64, any strides
 
 
-class EquationSystem:
+class SystemLabels:
+    """Names of a system's equations and regressors, for every object that stands for a system
+    (built from data, streamed, or restored from a saved fit). Needs ``_names``, ``_regressors``."""
+
+    _names: list[str]
+    _regressors: list[list[str]]
+
+    @property
+    def equation_names(self) -> list[str]:
+        """The equations' names, in order."""
+        return list(self._names)
+
+    @property
+    def regressor_names(self) -> dict[str, list[str]]:
+        """The regressors of each equation."""
+        return {n: list(r) for n, r in zip(self._names, self._regressors)}
+
+    @property
+    def n_eq(self) -> int:
+        """Number of equations N."""
+        return len(self._names)
+
+
+class EquationSystem(SystemLabels):
     """A system of linear regression equations observed on one common sample.
 
     Parameters
@@ -198,21 +221,7 @@ class EquationSystem:
         dropped and why) for a system built by :meth:`from_table`; ``None`` otherwise."""
         return self._sample
 
-    # -- description -------------------------------------------------------------------------
-    @property
-    def equation_names(self) -> list[str]:
-        """The equations' names, in order."""
-        return list(self._names)
-
-    @property
-    def regressor_names(self) -> dict[str, list[str]]:
-        """The regressors of each equation."""
-        return {n: list(r) for n, r in zip(self._names, self._regressors)}
-
-    @property
-    def n_eq(self) -> int:
-        """Number of equations N."""
-        return len(self._names)
+    # -- description (equation_names, regressor_names, n_eq: SystemLabels) -------------------
 
     @property
     def n_obs(self) -> int:

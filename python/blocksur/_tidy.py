@@ -21,6 +21,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
+from ._system import SystemLabels
 from .errors import DataNotKeptError, InputError, InvalidOptionError
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -292,7 +293,7 @@ class _RestoredCore:
         return getattr(self._core(), name)
 
 
-class _RestoredSystem:
+class _RestoredSystem(SystemLabels):
     """The labels and the data kept of a system whose fit was restored from a dict."""
 
     def __init__(self, names: list[str], regressors: list[list[str]], index: pd.Index,
@@ -320,24 +321,12 @@ class _RestoredSystem:
         return self._kept_xs
 
     @property
-    def equation_names(self) -> list[str]:
-        return list(self._names)
-
-    @property
-    def regressor_names(self) -> dict[str, list[str]]:
-        return {n: list(r) for n, r in zip(self._names, self._regressors)}
-
-    @property
     def sample_info(self) -> Any:
         return self._sample
 
     @property
     def n_obs(self) -> int:
         return int(self._ys[0].shape[0])
-
-    @property
-    def n_eq(self) -> int:
-        return len(self._names)
 
     def _prepare(self, *args: Any, **kwargs: Any) -> Any:
         if self._prepared is None:
