@@ -7,7 +7,6 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from ._restrictions import parse_restrictions
 from ._frame import expand_new
@@ -21,6 +20,14 @@ __all__ = ["SystemFit"]
 
 # Largest system whose standard errors the matrix-free path computes without being asked.
 _CG_SE_LIMIT = 5000
+
+
+def _stats() -> Any:
+    """scipy.stats, imported on first use: importing it loads scipy's own OpenBLAS, a third
+    thread pool, which only inference needs."""
+    from scipy import stats
+
+    return stats
 
 
 def coef_index(names: list[str], regressors: list[list[str]]) -> pd.MultiIndex:
@@ -323,16 +330,16 @@ class SystemFit:
         """Two-sided p-values of coef = 0."""
         z = np.abs(self.stat.to_numpy())
         if self.inference == "t":
-            p = 2 * stats.t.sf(z, self._coef_df())
+            p = 2 * _stats().t.sf(z, self._coef_df())
         else:
-            p = 2 * stats.norm.sf(z)
+            p = 2 * _stats().norm.sf(z)
         return pd.Series(p, index=self._coef_index, name="pval")
 
     def _crit(self, level: float) -> np.ndarray | float:
         if not (0 < level < 1):
             raise InvalidOptionError(f"level must be between 0 and 1, got {level!r}")
         a = 0.5 + level / 2
-        return stats.t.ppf(a, self._coef_df()) if self.inference == "t" else stats.norm.ppf(a)
+        return _stats().t.ppf(a, self._coef_df()) if self.inference == "t" else _stats().norm.ppf(a)
 
     def interval(self, level: float = 0.95) -> pd.DataFrame:
         """Confidence intervals at ``level``: a DataFrame with columns ``lower`` and ``upper``."""
@@ -387,10 +394,10 @@ class SystemFit:
         w = float(gap @ np.linalg.solve(rvr, gap))
         null = "; ".join(rset.texts)
         if form == "chi2":
-            return HypothesisTestResult("Wald", null, w, "chi2", m, None, float(stats.chi2.sf(w, m)))
+            return HypothesisTestResult("Wald", null, w, "chi2", m, None, float(_stats().chi2.sf(w, m)))
         dfd = self.n_eq * self.n_obs - self.n_coef + self.n_restrictions
         f = w / m
-        return HypothesisTestResult("Wald", null, f, "F", m, dfd, float(stats.f.sf(f, m, dfd)))
+        return HypothesisTestResult("Wald", null, f, "F", m, dfd, float(_stats().f.sf(f, m, dfd)))
 
     def lr_against(self, other: "SystemFit") -> HypothesisTestResult:
         """Likelihood-ratio test between this fit and a nested one (both iterated ML fits:
@@ -411,7 +418,7 @@ class SystemFit:
         lr = max(2.0 * (big.loglik - small.loglik), 0.0)
         df = abs(free_self - free_other)
         null = "; ".join(small.restrictions.texts) if small.restrictions is not None else "the smaller model"
-        return HypothesisTestResult("LR", null, lr, "chi2", df, None, float(stats.chi2.sf(lr, df)))
+        return HypothesisTestResult("LR", null, lr, "chi2", df, None, float(_stats().chi2.sf(lr, df)))
 
     def omega_diagonal_lm(self) -> HypothesisTestResult:
         """Breusch-Pagan LM test that Omega is diagonal (no cross-equation correlation):
@@ -427,7 +434,7 @@ class SystemFit:
         lm = float(self.n_obs * np.sum(r[iu] ** 2))
         df = n * (n - 1) // 2
         return HypothesisTestResult(
-            "Breusch-Pagan LM", "Omega is diagonal", lm, "chi2", df, None, float(stats.chi2.sf(lm, df))
+            "Breusch-Pagan LM", "Omega is diagonal", lm, "chi2", df, None, float(_stats().chi2.sf(lm, df))
         )
 
     def omega_diagonal_lr(self) -> HypothesisTestResult:
@@ -447,7 +454,7 @@ class SystemFit:
         lr = float(t * (np.sum(np.log(np.diag(s0) / t)) - logdet))
         df = n * (n - 1) // 2
         return HypothesisTestResult(
-            "LR", "Omega is diagonal", lr, "chi2", df, None, float(stats.chi2.sf(lr, df))
+            "LR", "Omega is diagonal", lr, "chi2", df, None, float(_stats().chi2.sf(lr, df))
         )
 
     def grs_test(self) -> HypothesisTestResult:
@@ -483,7 +490,7 @@ class SystemFit:
         f = (t - n - lf) / n * quad / denom
         dfd = t - n - lf
         return HypothesisTestResult(
-            "GRS F", "all intercepts are zero", f, "F", n, dfd, float(stats.f.sf(f, n, dfd))
+            "GRS F", "all intercepts are zero", f, "F", n, dfd, float(_stats().f.sf(f, n, dfd))
         )
 
     # -- system-wide fit measures --------------------------------------------------------------

@@ -28,9 +28,9 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from . import _core
+from ._fit import _stats
 from ._frame import CONSTANT_NAME, _Table
 from ._stream import ColumnLayout, _check_missing, check_options
 from .errors import InputError, InvalidOptionError, ShapeMismatchError
@@ -102,9 +102,9 @@ class ManyFits:
         if self.inference == "t":
             kk = np.repeat([len(r) for r in regressors], [len(r) for r in regressors])
             df = self.status["n_obs"].to_numpy()[ok][:, None] - kk[None, :]
-            p = 2 * stats.t.sf(np.abs(z), df)
+            p = 2 * _stats().t.sf(np.abs(z), df)
         else:
-            p = 2 * stats.norm.sf(np.abs(z))
+            p = 2 * _stats().norm.sf(np.abs(z))
         keys = self._keys[ok]
         frame = keys.repeat(k).to_frame(index=False)
         g = int(ok.sum())
