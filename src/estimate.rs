@@ -820,6 +820,62 @@ impl Prepared {
         Ok(out)
     }
 
+    /// Variances of the coefficients b: the diagonal of `coef_covariance_of` without forming
+    /// the K x K covariance when the kind allows it.
+    ///
+    /// Classical GLS: with M = L L' and U = L^-1 (one triangular inverse, K^3/3 flops),
+    /// (M^-1)_ii = U_i' U_i for the columns U_i of equation i (zero above its first row), so
+    /// Var(b_i) = column sums of squares of U_i R_i^-T. Classical OLS and shared regressors need
+    /// only the diagonal blocks omega_ii Q_i'Q_i (resp. omega_ii I). Robust kinds and
+    /// restricted fits take the diagonal of the full covariance (their K x K products remain).
+    pub fn coef_variances(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array1<f64>> {
+        self.check_matches(Some(est), data)?;
+        if let Some(p) = &est.restricted {
+            return Ok(self.restricted_covariance(est, p, kind, data)?.diag().to_owned());
+        }
+        let rinv: Vec<Array2<f64>> = self.factors.iter().map(|f| upper_inverse(&f.r)).collect::<Result<_>>()?;
+        let mut out = Array1::<f64>::zeros(self.n_coef());
+        if kind == CovKind::Classical {
+            if matches!(self.cross, CrossProducts::MatrixFree { .. }) {
+                return Err(matrix_free_unsupported("the covariance matrix"));
+            }
+            if let Weight::Chol(l) = &est.weight {
+                let u = lower_inverse(l)?;
+                for (i, ri) in rinv.iter().enumerate() {
+                    let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+                    let v = u.slice(s![a.., a..b]).dot(&ri.t());
+                    for (j, col) in v.columns().into_iter().enumerate() {
+                        out[a + j] = col.dot(&col);
+                    }
+                }
+                return Ok(out);
+            }
+            for (i, ri) in rinv.iter().enumerate() {
+                let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+                let w = est.omega[[i, i]];
+                let blk = match (&est.weight, &self.cross) {
+                    (Weight::Identity, CrossProducts::General { gram }) => gram.slice(s![a..b, a..b]).mapv(|g| g * w),
+                    _ => Array2::from_diag_elem(b - a, w),
+                };
+                block_variances(ri, &blk, out.slice_mut(s![a..b]));
+            }
+            return Ok(out);
+        }
+        let v = self.gamma_covariance(est, kind, data)?;
+        for (i, ri) in rinv.iter().enumerate() {
+            let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+            block_variances(ri, &v.slice(s![a..b, a..b]).to_owned(), out.slice_mut(s![a..b]));
+        }
+        Ok(out)
+    }
+
+    /// Standard errors of the coefficients b: square roots of `coef_variances`, with a
+    /// variance that rounding leaves a hair below zero (a coefficient a restriction fixes) read
+    /// as zero.
+    pub fn coef_standard_errors(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array1<f64>> {
+        Ok(self.coef_variances(est, kind, data)?.mapv_into(|v| v.max(0.0).sqrt()))
+    }
+
     /// Classical covariance of the coefficients b.
     pub fn coef_covariance(&self, est: &Estimate) -> Result<Array2<f64>> {
         self.coef_covariance_of(est, CovKind::Classical, None)
@@ -970,4 +1026,95 @@ fn chol_solve_mat(l: &Array2<f64>, b: &Array2<f64>) -> Result<Array2<f64>> {
         out.column_mut(j).assign(&chol_solve(l, &col.to_owned())?);
     }
     Ok(out)
+}
+
+/// diag(A B A') into `out`, for a square block B.
+fn block_variances(a: &Array2<f64>, b: &Array2<f64>, mut out: ndarray::ArrayViewMut1<f64>) {
+    let ab = a.dot(b);
+    for (j, o) in out.iter_mut().enumerate() {
+        *o = ab.row(j).dot(&a.row(j));
+    }
+}
+
+/// L^-1 for the lower Cholesky factor from `chol_lower` (LAPACK trtri, K^3/3 flops), lower
+/// triangular and column-major.
+// A LAPACK kernel: its home is linalg.rs, kept here while that module is being rewritten.
+fn lower_inverse(l: &Array2<f64>) -> Result<Array2<f64>> {
+    let mut u = Array2::<f64>::zeros(l.dim().f());
+    u.assign(l);
+    let n = u.nrows() as i32;
+    if n == 0 {
+        return Ok(u);
+    }
+    let mut info = 0;
+    // SAFETY: `u` is a fresh n x n column-major buffer; trtri reads and writes its lower triangle.
+    unsafe {
+        lapack_sys::dtrtri_(
+            &(b'L' as std::ffi::c_char),
+            &(b'N' as std::ffi::c_char),
+            &n,
+            u.as_mut_ptr(),
+            &n,
+            &mut info,
+        )
+    };
+    if info != 0 {
+        return Err(SurError::numerical("inverse of the Cholesky factor", format!("LAPACK info {info}")));
+    }
+    Ok(u)
+}
+
+#[cfg(test)]
+mod variance_tests {
+    use super::*;
+    use crate::system::Equation;
+
+    /// Deterministic regressors and correlated errors (no random crate): N equations with a
+    /// constant and k - 1 trigonometric regressors; `shared` gives every equation the same X.
+    fn system(n: usize, t: usize, k: usize, shared: bool) -> (Vec<Array1<f64>>, Vec<Array2<f64>>) {
+        let xs: Vec<Array2<f64>> = (0..n)
+            .map(|i| {
+                let shift = if shared { 0.0 } else { i as f64 };
+                Array2::from_shape_fn((t, k), |(r, j)| {
+                    if j == 0 { 1.0 } else { ((r * (j + 2)) as f64 * 0.37 + shift * 1.3 + j as f64).sin() * (1.0 + j as f64) }
+                })
+            })
+            .collect();
+        let ys = (0..n)
+            .map(|i| {
+                Array1::from_shape_fn(t, |r| {
+                    let common = (r as f64 * 1.7).sin();
+                    let own = ((r * (i + 3)) as f64 * 0.91 + i as f64).cos();
+                    xs[i].row(r).sum() + (1.0 + 0.2 * i as f64) * (0.8 * common + 0.6 * own)
+                })
+            })
+            .collect();
+        (ys, xs)
+    }
+
+    #[test]
+    fn variances_are_the_diagonal_of_the_full_covariance() {
+        // n = 30, k = 3: K = 90 exceeds LAPACK's block size, so the blocked trtri runs
+        for (n, shared) in [(4, false), (30, false), (3, true)] {
+            let (ys, xs) = system(n, 120, 3, shared);
+            let data = SystemData::new(
+                ys.iter().zip(&xs).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.view())).collect(),
+            );
+            let p = Prepared::new(&data).unwrap();
+            for method in [Method::Ols, Method::Fgls, Method::IteratedFgls] {
+                let est = p.estimate(&FitOptions { method, ..Default::default() }).unwrap();
+                for kind in [CovKind::Classical, CovKind::Hc0, CovKind::Hc1] {
+                    let full = p.coef_covariance_of(&est, kind, Some(&data)).unwrap();
+                    let var = p.coef_variances(&est, kind, Some(&data)).unwrap();
+                    let se = p.coef_standard_errors(&est, kind, Some(&data)).unwrap();
+                    for j in 0..var.len() {
+                        let d = full[[j, j]];
+                        assert!(d > 0.0);
+                        assert!((var[j] - d).abs() <= 1e-13 * d, "{method:?} {kind:?} n={n}: {} vs {d}", var[j]);
+                        assert!((se[j] * se[j] - d).abs() <= 1e-13 * d);
+                    }
+                }
+            }
+        }
+    }
 }

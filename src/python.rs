@@ -190,6 +190,28 @@ fn residuals<'py>(
     Ok(detach_gated(py, || data.residuals(&c)).into_pyarray(py))
 }
 
+impl PyPrepared {
+    /// Runs `work` for a covariance kind ("classical", "hc0", "hc1") and the system's data when
+    /// given (robust kinds need it), with the interpreter lock released.
+    fn of_kind<'py, T: Send>(
+        &self,
+        py: Python<'py>,
+        kind: &str,
+        ys: Option<Vec<PyReadonlyArray1<'py, f64>>>,
+        xs: Option<Vec<PyReadonlyArray2<'py, f64>>>,
+        work: impl FnOnce(CovKind, Option<&SystemData>) -> Result<T, SurError> + Send,
+    ) -> PyResult<T> {
+        let kind = CovKind::parse(kind).map_err(|e| raise(py, e))?;
+        let (ys, xs) = (ys.unwrap_or_default(), xs.unwrap_or_default());
+        let data = if ys.is_empty() {
+            None
+        } else {
+            Some(equations(&ys, &xs, &self.inner.names, &self.inner.regressors)?)
+        };
+        detach_gated(py, || work(kind, data.as_ref())).map_err(|e| raise(py, e))
+    }
+}
+
 #[pymethods]
 impl PyPrepared {
     /// Runs one estimation ("ols", "fgls", "ifgls"; omega "ml", "dof", "lw-diagonal" or
@@ -270,15 +292,23 @@ impl PyPrepared {
         ys: Option<Vec<PyReadonlyArray1<'py, f64>>>,
         xs: Option<Vec<PyReadonlyArray2<'py, f64>>>,
     ) -> PyResult<Bound<'py, PyArray2<f64>>> {
-        let kind = CovKind::parse(kind).map_err(|e| raise(py, e))?;
-        let (ys, xs) = (ys.unwrap_or_default(), xs.unwrap_or_default());
-        let data = if ys.is_empty() {
-            None
-        } else {
-            Some(equations(&ys, &xs, &self.inner.names, &self.inner.regressors)?)
-        };
-        let out = detach_gated(py, || self.inner.coef_covariance_of(&est.inner, kind, data.as_ref()));
-        out.map(|a| a.into_pyarray(py)).map_err(|e| raise(py, e))
+        let out = self.of_kind(py, kind, ys, xs, |k, d| self.inner.coef_covariance_of(&est.inner, k, d))?;
+        Ok(out.into_pyarray(py))
+    }
+
+    /// Standard errors of the stacked coefficients (square roots of the diagonal of
+    /// `coef_covariance`, K values), without the K x K covariance where the kind allows it.
+    #[pyo3(signature = (est, kind="classical", ys=None, xs=None))]
+    fn coef_standard_errors<'py>(
+        &self,
+        py: Python<'py>,
+        est: &PyEstimate,
+        kind: &str,
+        ys: Option<Vec<PyReadonlyArray1<'py, f64>>>,
+        xs: Option<Vec<PyReadonlyArray2<'py, f64>>>,
+    ) -> PyResult<Bound<'py, PyArray1<f64>>> {
+        let out = self.of_kind(py, kind, ys, xs, |k, d| self.inner.coef_standard_errors(&est.inner, k, d))?;
+        Ok(out.into_pyarray(py))
     }
 
     /// Residual cross-products of unrestricted equation-by-equation OLS (N x N).

@@ -176,6 +176,27 @@ case("coef_covariance: one equation of data")(lambda: P.coef_covariance(E, "hc0"
 case("coef_covariance: ys without xs")(lambda: P.coef_covariance(E, "hc0", [Y, Y2], None))
 case("coef_covariance: NaN in data")(lambda: P.coef_covariance(E, "hc0", [np.r_[Y[:-1], np.nan], Y2], [X2, X3]))
 case("coef_covariance: int data")(lambda: P.coef_covariance(E, "hc0", [np.arange(T), np.arange(T)], [X2, X3]))
+case("coef_standard_errors: unknown kind")(lambda: P.coef_standard_errors(E, "hc9"))
+case("coef_standard_errors: None estimate")(lambda: P.coef_standard_errors(None))
+case("coef_standard_errors: estimate of another system", "any")(
+    lambda: P.coef_standard_errors(_core.prepare([Y], [X2], ["a"], [["x0", "x1"]]).estimate("ols", "ml", 1e-10, 1))
+)
+case("coef_standard_errors: estimate of another system, same K", "any")(
+    lambda: P.coef_standard_errors(
+        _core.prepare([Y, Y2], [X3, X2], NAMES, [REGS[1], REGS[0]]).estimate("fgls", "ml", 1e-10, 1)
+    )
+)
+case("coef_standard_errors: robust without data")(lambda: P.coef_standard_errors(E, "hc0"))
+case("coef_standard_errors: data with other K")(lambda: P.coef_standard_errors(E, "hc0", [Y, Y2], [X2, X2]))
+case("coef_standard_errors: X rows short")(lambda: P.coef_standard_errors(E, "hc1", [Y, Y2], [X2[:5], X3]))
+case("coef_standard_errors: NaN in data")(
+    lambda: P.coef_standard_errors(EO, "hc0", [np.r_[Y[:-1], np.nan], Y2], [X2, X3])
+)
+case("coef_standard_errors: matrix-free path")(
+    lambda: _core.prepare([Y, Y2], [X2, X3], NAMES, REGS, matrix_free=True).coef_standard_errors(
+        _core.prepare([Y, Y2], [X2, X3], NAMES, REGS, matrix_free=True).estimate("fgls", "ml", 1e-10, 10)
+    )
+)
 case("log_likelihood: None")(lambda: P.log_likelihood(None))
 case("log_likelihood: estimate of another system", "any")(
     lambda: P.log_likelihood(_core.prepare([Y], [X2], ["a"], [["x0", "x1"]]).estimate("ols", "ml", 1e-10, 1))

@@ -123,6 +123,17 @@ class Prepared:
         """Covariance of the stacked coefficients (K x K): "classical", "hc0" or "hc1" (the
         robust kinds need the data as given to :func:`prepare`)."""
 
+    def coef_standard_errors(
+        self,
+        est: Estimate,
+        kind: str = "classical",
+        ys: Sequence[_F64_1D] | None = None,
+        xs: Sequence[_F64_2D] | None = None,
+    ) -> _F64_1D:
+        """Standard errors of the stacked coefficients (K): square roots of the diagonal of
+        :meth:`coef_covariance`, computed without the K x K matrix where the kind allows it
+        (classical unrestricted fits: one triangular inverse of the Cholesky factor)."""
+
     def ols_crossprod(self) -> _F64_2D:
         """Residual cross-products of unrestricted equation-by-equation OLS (N x N)."""
 

@@ -8,6 +8,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
+from . import _core
 from ._restrictions import parse_restrictions
 from ._frame import expand_new
 from ._tests import HypothesisTestResult
@@ -211,9 +212,19 @@ class SystemFit:
                     "equations you need, or refit with solver='direct' if memory allows"
                 )
             return self.se_of(self._names)
-        # rounding can leave a variance a hair below zero (a coefficient a restriction fixes)
-        return pd.Series(
-            np.sqrt(np.maximum(np.diag(self._vcov_array), 0.0)), index=self._coef_index, name="se"
+        return pd.Series(self._standard_errors(), index=self._coef_index, name="se")
+
+    def _standard_errors(self) -> np.ndarray:
+        """Square roots of the covariance's diagonal: from the compiled core without forming the
+        K x K matrix (see ``Prepared.coef_standard_errors``); a restored fit uses its stored one.
+        A variance that rounding leaves a hair below zero (a coefficient a restriction fixes)
+        counts as zero."""
+        if not isinstance(self._prepared, _core.Prepared):
+            return np.sqrt(np.maximum(np.diag(self._vcov_array), 0.0))
+        if self.covariance == "classical":
+            return self._prepared.coef_standard_errors(self._est)
+        return self._prepared.coef_standard_errors(
+            self._est, self.covariance, self._system._ys, self._system._xs
         )
 
     def se_of(self, equations: Any) -> pd.Series:
@@ -248,8 +259,6 @@ class SystemFit:
     def _residuals(self) -> np.ndarray:
         """The T x N residual array, computed from the data on first use."""
         if self._resid is None:
-            from . import _core
-
             self._resid = _core.residuals(self._system._ys, self._system._xs, self._est.coef)
         return self._resid
 

@@ -355,12 +355,12 @@ def _numbers(fit: "SystemFit") -> dict[str, Any]:
         vcov = fit.vcov.to_numpy()
     except BlocksurError as err:  # not formed on the matrix-free path: keep the standard errors
         vcov, vcov_error = None, str(err)
-    se = None
-    if vcov is None:
-        try:
-            se = fit.se.to_numpy()
-        except BlocksurError:
-            se = None
+    # the standard errors as computed (from the covariance's diagonal without the K x K matrix,
+    # or by conjugate gradients), so a restored fit reports the same bits
+    try:
+        se = fit.se.to_numpy()
+    except BlocksurError:
+        se = None
     return {
         "format": FORMAT,
         "version": VERSION,
@@ -474,7 +474,7 @@ def _build(cls: type, d: dict[str, Any], system: Any) -> "SystemFit":
     if vcov is not None:
         fit.__dict__["_vcov_array"] = vcov
         fit.__dict__["vcov"] = pd.DataFrame(vcov, index=fit._coef_index, columns=fit._coef_index)
-    elif d.get("se") is not None:
+    if d.get("se") is not None:
         fit.__dict__["se"] = pd.Series(np.asarray(d["se"], dtype=float), index=fit._coef_index, name="se")
     return fit
 
