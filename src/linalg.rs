@@ -27,7 +27,9 @@ pub fn gram_blocked(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> R
         owned = to_fortran(&w.to_owned());
         owned.view()
     };
-    let rows = ((5e8 / (p as f64 * p as f64)) as usize).clamp(256, t.max(256));
+    // About 2e9 flops per block (a fraction of a second), blocks of equal size.
+    let rows = ((2e9 / (p as f64 * p as f64)) as usize).clamp(256, t.max(256));
+    let rows = t.div_ceil(t.div_ceil(rows));
     let mut start = 0;
     while start < t {
         let end = (start + rows).min(t);
@@ -166,9 +168,7 @@ pub fn chol_solve(l: &Array2<f64>, b: &Array1<f64>) -> Result<Array1<f64>> {
     }
     let mut info = 0;
     // SAFETY: `l` is n x n column-major; `x` holds n contiguous values.
-    unsafe {
-        lapack_sys::dpotrs_(&(b'L' as std::ffi::c_char), &n, &1, l.as_ptr(), &n, x.as_mut_ptr(), &n, &mut info)
-    };
+    unsafe { lapack_sys::dpotrs_(&(b'L' as std::ffi::c_char), &n, &1, l.as_ptr(), &n, x.as_mut_ptr(), &n, &mut info) };
     if info != 0 {
         return Err(SurError::numerical("Cholesky solve", format!("LAPACK info {info}")));
     }
@@ -313,8 +313,7 @@ fn diagnose_singular(corr: &Array2<f64>, names: &[String], n_obs: usize, floor: 
     }
     let v = vecs.column(0);
     let vmax = v.iter().fold(0.0f64, |a, b| a.max(b.abs()));
-    let involved: Vec<String> =
-        (0..n).filter(|&i| v[i].abs() >= 0.05 * vmax).map(|i| names[i].clone()).collect();
+    let involved: Vec<String> = (0..n).filter(|&i| v[i].abs() >= 0.05 * vmax).map(|i| names[i].clone()).collect();
     let quoted: Vec<String> = involved.iter().map(|s| format!("'{s}'")).collect();
     Err(SurError::SingularOmega {
         equations: involved.clone(),
@@ -360,70 +359,149 @@ pub fn fmt_num(x: f64) -> String {
     }
 }
 
-/// Thin QR of a tall column-major T x m matrix by Householder reflections: Q (T x m, orthonormal
-/// columns) and upper-triangular R (m x m) with A = Q R. The unblocked algorithm of LAPACK's
-/// geqr2/org2r, written out: for the narrow blocks of a system (a few regressors) it avoids
-/// LAPACK's per-call overhead, which dominates there. Wider blocks go to LAPACK.
+/// Thin QR of a tall T x m matrix by Householder reflections: Q (T x m, orthonormal columns,
+/// column-major) and upper-triangular R (m x m) with A = Q R.
 pub fn thin_qr(a: Array2<f64>) -> Result<(Array2<f64>, Array2<f64>)> {
     let (t, m) = a.dim();
-    // LAPACK's blocked QR wins on long or wide blocks (and keeps each block short enough for
-    // the Ctrl-C checks between equations); the loop below wins on small ones.
-    if m > 1 && (m > 24 || t < m || t * m > 20_000) {
-        use ndarray_linalg::QRInto;
-        return a.qr_into().map_err(|e| SurError::numerical("QR", e));
-    }
     let mut a = if a.t().is_standard_layout() { a } else { to_fortran(&a) };
+    let r = thin_qr_in_place(a.as_slice_memory_order_mut().expect("column-major and contiguous"), t, m)?;
+    Ok((a, r))
+}
+
+/// Thin QR in place: `buf` holds a column-major T x m matrix A (leading dimension T); on return
+/// it holds Q (orthonormal columns) and R (m x m, upper triangular) is returned, A = Q R.
+/// Narrow blocks (the regressors of one equation) use the unblocked Householder algorithm of
+/// LAPACK's geqr2/org2r written out, which has no per-call overhead or workspace; wide ones go
+/// to LAPACK's blocked geqrf/orgqr.
+pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize) -> Result<Array2<f64>> {
+    assert_eq!(buf.len(), t * m, "thin_qr_in_place: buffer is not T x m");
+    if t < m {
+        return Err(SurError::numerical("QR", format!("{t} rows for {m} columns")));
+    }
+    if m > 24 {
+        return lapack_qr_in_place(buf, t, m);
+    }
     let mut r = Array2::<f64>::zeros((m, m));
-    let mut vs: Vec<(Vec<f64>, f64)> = Vec::with_capacity(m);
-    {
-        let buf = a.as_slice_memory_order_mut().expect("column-major and contiguous");
-        for j in 0..m {
-            let (left, right) = buf.split_at_mut((j + 1) * t);
-            let col = &mut left[j * t..];
-            let x = &col[j..];
-            let scale = x.iter().fold(0.0f64, |s, v| s.max(v.abs()));
-            let mut v: Vec<f64> = x.to_vec();
-            let (alpha, beta) = if scale == 0.0 {
-                (0.0, 0.0)
-            } else {
-                let norm = scale * x.iter().map(|e| (e / scale) * (e / scale)).sum::<f64>().sqrt();
-                let alpha = if x[0] > 0.0 { -norm } else { norm };
-                v[0] -= alpha;
-                let vn2: f64 = v.iter().map(|e| e * e).sum();
-                (alpha, if vn2 > 0.0 { 2.0 / vn2 } else { 0.0 })
-            };
-            r[[j, j]] = alpha;
+    let mut tau = vec![0.0f64; m];
+    // Factor: column j below the diagonal becomes the reflector v_j (v_j[0] = 1 implied).
+    for j in 0..m {
+        let (left, right) = buf.split_at_mut((j + 1) * t);
+        let x = &mut left[j * t + j..];
+        let ss = dot(x, x);
+        let norm = if ss.is_finite() && ss > 1e-290 { ss.sqrt() } else { scaled_norm(x) };
+        if norm > 0.0 {
+            let alpha = if x[0] > 0.0 { -norm } else { norm };
+            let v0 = x[0] - alpha;
+            let inv = 1.0 / v0;
+            for e in x[1..].iter_mut() {
+                *e *= inv;
+            }
+            tau[j] = -v0 / alpha;
+            x[0] = alpha;
+        }
+        r[[j, j]] = x[0];
+        let v = &x[1..];
+        let tj = tau[j];
+        for c in 0..(m - j - 1) {
+            let col = &mut right[c * t + j..(c + 1) * t];
+            if tj != 0.0 {
+                reflect(col, v, tj);
+            }
+            r[[j, j + 1 + c]] = col[0];
+        }
+    }
+    // Q = H_0 .. H_{m-1} [I_m; 0], built backwards in place as in org2r.
+    for j in (0..m).rev() {
+        let (left, right) = buf.split_at_mut((j + 1) * t);
+        let colj = &mut left[j * t..];
+        let tj = tau[j];
+        if tj != 0.0 {
+            let v = &colj[j + 1..];
             for c in 0..(m - j - 1) {
-                let other = &mut right[c * t + j..(c + 1) * t];
-                let d: f64 = v.iter().zip(other.iter()).map(|(p, q)| p * q).sum::<f64>() * beta;
-                for (o, p) in other.iter_mut().zip(&v) {
-                    *o -= d * p;
-                }
-                r[[j, j + 1 + c]] = other[0];
+                reflect(&mut right[c * t + j..(c + 1) * t], v, tj);
             }
-            vs.push((v, beta));
+        }
+        for e in colj[j + 1..].iter_mut() {
+            *e *= -tj;
+        }
+        colj[j] = 1.0 - tj;
+        colj[..j].fill(0.0);
+    }
+    Ok(r)
+}
+
+/// col <- (I - tau v v') col for the reflector v = [1; tail].
+#[inline]
+fn reflect(col: &mut [f64], tail: &[f64], tau: f64) {
+    let (head, rest) = col.split_first_mut().expect("non-empty column");
+    let d = tau * (*head + dot(tail, rest));
+    *head -= d;
+    for (o, p) in rest.iter_mut().zip(tail) {
+        *o -= d * p;
+    }
+}
+
+/// Dot product with eight independent partial sums (the compiler can keep them in vector
+/// registers; a single running sum is a chain of dependent additions).
+#[inline]
+pub fn dot(a: &[f64], b: &[f64]) -> f64 {
+    let n = a.len().min(b.len());
+    let (a, b) = (&a[..n], &b[..n]);
+    let mut acc = [0.0f64; 8];
+    let (ca, cb) = (a.chunks_exact(8), b.chunks_exact(8));
+    let (ra, rb) = (ca.remainder(), cb.remainder());
+    for (x, y) in ca.zip(cb) {
+        for l in 0..8 {
+            acc[l] += x[l] * y[l];
         }
     }
-    // Q = H_0 H_1 .. H_{m-1} [I_m; 0], accumulated backwards.
-    let mut q = Array2::<f64>::zeros((t, m).f());
-    {
-        let qb = q.as_slice_memory_order_mut().expect("column-major and contiguous");
+    let mut s = ((acc[0] + acc[4]) + (acc[1] + acc[5])) + ((acc[2] + acc[6]) + (acc[3] + acc[7]));
+    for (x, y) in ra.iter().zip(rb) {
+        s += x * y;
+    }
+    s
+}
+
+/// 2-norm scaled by the largest magnitude, for columns whose plain sum of squares would
+/// overflow or underflow.
+pub fn scaled_norm(x: &[f64]) -> f64 {
+    let m = x.iter().fold(0.0f64, |a, b| a.max(b.abs()));
+    if m == 0.0 || !m.is_finite() {
+        return m;
+    }
+    let inv = 1.0 / m;
+    m * x.iter().map(|e| (e * inv) * (e * inv)).sum::<f64>().sqrt()
+}
+
+fn lapack_qr_in_place(buf: &mut [f64], t: usize, m: usize) -> Result<Array2<f64>> {
+    let (ti, mi) = (t as i32, m as i32);
+    let mut tau = vec![0.0f64; m];
+    let mut info = 0;
+    let mut query = 0.0f64;
+    let minus1 = -1;
+    // SAFETY: `buf` is a t x m column-major buffer with leading dimension t; `tau` has m slots;
+    // the workspace is sized by LAPACK's own query (lwork = -1).
+    unsafe {
+        lapack_sys::dgeqrf_(&ti, &mi, buf.as_mut_ptr(), &ti, tau.as_mut_ptr(), &mut query, &minus1, &mut info);
+        let mut q2 = 0.0f64;
+        lapack_sys::dorgqr_(&ti, &mi, &mi, buf.as_mut_ptr(), &ti, tau.as_ptr(), &mut q2, &minus1, &mut info);
+        let lwork = query.max(q2).max(m as f64) as usize;
+        let mut work = vec![0.0f64; lwork];
+        let lw = lwork as i32;
+        lapack_sys::dgeqrf_(&ti, &mi, buf.as_mut_ptr(), &ti, tau.as_mut_ptr(), work.as_mut_ptr(), &lw, &mut info);
+        if info != 0 {
+            return Err(SurError::numerical("QR", format!("LAPACK dgeqrf info {info}")));
+        }
+        let mut r = Array2::<f64>::zeros((m, m));
         for j in 0..m {
-            qb[j * t + j] = 1.0;
-        }
-        for j in (0..m).rev() {
-            let (v, beta) = &vs[j];
-            if *beta == 0.0 {
-                continue;
-            }
-            for c in j..m {
-                let col = &mut qb[c * t + j..(c + 1) * t];
-                let d: f64 = v.iter().zip(col.iter()).map(|(p, q)| p * q).sum::<f64>() * beta;
-                for (o, p) in col.iter_mut().zip(v) {
-                    *o -= d * p;
-                }
+            for i in 0..=j {
+                r[[i, j]] = buf[j * t + i];
             }
         }
+        lapack_sys::dorgqr_(&ti, &mi, &mi, buf.as_mut_ptr(), &ti, tau.as_ptr(), work.as_mut_ptr(), &lw, &mut info);
+        if info != 0 {
+            return Err(SurError::numerical("QR", format!("LAPACK dorgqr info {info}")));
+        }
+        Ok(r)
     }
-    Ok((q, r))
 }

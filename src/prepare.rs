@@ -10,11 +10,17 @@
 //! textbook E - gamma'D - D'gamma + gamma'C gamma form loses digits in both cases.
 //! After this pass nothing depends on T.
 
-use ndarray::{s, Array1, Array2, ArrayView1, ShapeBuilder};
+use std::mem::MaybeUninit;
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::sync::Mutex;
+
+use ndarray::{s, Array1, Array2, ArrayView1, ArrayViewMut1, ArrayViewMut2, Axis, ShapeBuilder};
 
 use crate::error::{Result, SurError};
-use crate::linalg::{fmt_num, gram, gram_blocked, thin_qr, triangular_condition, upper_solve};
-use crate::system::{Equation, SystemData};
+use crate::linalg::{
+    dot, fmt_num, gram, gram_blocked, scaled_norm, thin_qr, thin_qr_in_place, triangular_condition, upper_solve,
+};
+use crate::system::{check_finite, Equation, SystemData};
 
 /// What one equation contributes after orthonormalisation.
 #[derive(Debug, Clone)]
@@ -79,7 +85,7 @@ impl Prepared {
     }
 
     fn build(data: &SystemData, cancel: &(dyn Fn() -> bool + Sync), matrix_free: bool) -> Result<Prepared> {
-        let t = data.validate()?;
+        let t = data.validate_shapes(true)?;
         let n = data.n_eq();
         let mut offsets = vec![0usize];
         for eq in &data.equations {
@@ -88,31 +94,36 @@ impl Prepared {
         let k = offsets[n];
         let names: Vec<String> = data.equations.iter().map(|e| e.name.clone()).collect();
         let regressors: Vec<Vec<String>> = data.equations.iter().map(|e| e.regressors.clone()).collect();
+        let offs = offsets.clone();
+        let done = move |factors, cross| Prepared { n_obs: t, names, regressors, offsets: offs, factors, cross };
 
         if n > 1 && !matrix_free && data.identical_regressors() {
+            for eq in &data.equations {
+                check_finite(eq, 0)?;
+            }
             let (factors, qq) = shared_regressors(data, t)?;
-            return Ok(Prepared { n_obs: t, names, regressors, offsets, factors, cross: CrossProducts::SharedRegressors { qq } });
+            return Ok(done(factors, CrossProducts::SharedRegressors { qq }));
         }
 
-        let p = k + n;
-        let mut w = Array2::<f64>::zeros((t, p).f());
-        let mut factors = Vec::with_capacity(n);
-        for (i, eq) in data.equations.iter().enumerate() {
-            if cancel() {
-                return Err(SurError::Interrupted);
+        // W is written once, column block by column block, by `factor_all`: no zero-filling
+        // pass. It is only assumed initialised after every block has been written.
+        let mut w = Array2::<f64>::uninit((t, k + n).f());
+        let factors = {
+            let (wq, mut wy) = w.view_mut().split_at(Axis(1), k);
+            let mut blocks = Vec::with_capacity(n);
+            let mut rest = wq;
+            for (i, col) in wy.axis_iter_mut(Axis(1)).enumerate() {
+                let (head, tail) = rest.split_at(Axis(1), offsets[i + 1] - offsets[i]);
+                blocks.push((head, col));
+                rest = tail;
             }
-            let (q, qy, f) = factor_equation(eq, t)?;
-            w.slice_mut(s![.., offsets[i]..offsets[i + 1]]).assign(&q);
-            w.column_mut(k + i).assign(&qy);
-            factors.push(f);
-        }
-        let colsum = w.sum_axis(ndarray::Axis(0));
-        for (i, f) in factors.iter_mut().enumerate() {
-            let s2: f64 = colsum.slice(s![offsets[i]..offsets[i + 1]]).iter().map(|v| v * v).sum();
-            f.spans_constant = (t as f64 - s2).abs() <= 1e-9 * t as f64;
-        }
+            factor_all(data, t, blocks, cancel)?
+        };
+        // SAFETY: factor_all returned Ok, so every equation wrote all of its Q_i columns and its
+        // q_i column, and together those are all k + n columns of W.
+        let w = unsafe { w.assume_init() };
         if matrix_free {
-            return Ok(Prepared { n_obs: t, names, regressors, offsets, factors, cross: CrossProducts::MatrixFree { w } });
+            return Ok(done(factors, CrossProducts::MatrixFree { w }));
         }
         let mut g = gram_blocked(w.view(), cancel)?;
         drop(w);
@@ -124,7 +135,7 @@ impl Prepared {
             g.slice_mut(s![k + i, a..b]).fill(0.0);
             g[[k + i, k + i]] = 1.0;
         }
-        Ok(Prepared { n_obs: t, names, regressors, offsets, factors, cross: CrossProducts::General { gram: g } })
+        Ok(done(factors, CrossProducts::General { gram: g }))
     }
 
     pub fn n_eq(&self) -> usize {
@@ -224,7 +235,11 @@ fn scaled_qr(eq: &Equation, extra: &[ArrayView1<f64>], t: usize) -> Result<(Arra
 }
 
 fn zero_column(name: &str, column: &str) -> SurError {
-    SurError::Collinear { equation: name.to_string(), column: column.to_string(), detail: "is zero in every row".into() }
+    SurError::Collinear {
+        equation: name.to_string(),
+        column: column.to_string(),
+        detail: "is zero in every row".into(),
+    }
 }
 
 /// Rank check on the R factor of the column-scaled regressors (its first K columns).
@@ -275,12 +290,126 @@ pub(crate) fn cond_of_scaled(rs: &Array2<f64>, k: usize) -> f64 {
 }
 
 /// Step 0 for one equation: Q_i (T x K_i), q_i (T) and the factor.
-fn factor_equation(eq: &Equation, t: usize) -> Result<(Array2<f64>, Array1<f64>, EquationFactor)> {
+/// Step 0 for every equation, writing Q_i and q_i into their columns of W. Equations are
+/// independent, so when the work is large enough they are shared out over the cores (the
+/// calling thread takes part and is the only one that asks `cancel`). The first failing
+/// equation in system order is the one reported, as in a sequential pass.
+fn factor_all(
+    data: &SystemData,
+    t: usize,
+    blocks: Vec<WBlock<'_>>,
+    cancel: &(dyn Fn() -> bool + Sync),
+) -> Result<Vec<EquationFactor>> {
+    let n = blocks.len();
+    let work: f64 = data.equations.iter().map(|e| t as f64 * ((e.n_regressors() + 1) as f64).powi(2)).sum();
+    let cores = std::thread::available_parallelism().map(|c| c.get()).unwrap_or(1);
+    let threads = if work < PARALLEL_WORK { 1 } else { cores.min(n).min(MAX_THREADS) };
+    let jobs: Vec<Mutex<Option<WBlock<'_>>>> = blocks.into_iter().map(|b| Mutex::new(Some(b))).collect();
+    let results: Vec<Mutex<Option<Result<EquationFactor>>>> = (0..n).map(|_| Mutex::new(None)).collect();
+    let next = AtomicUsize::new(0);
+    let first_error = AtomicUsize::new(usize::MAX);
+    let stop = AtomicBool::new(false);
+    let run = |is_caller: bool| {
+        let mut scratch = Vec::new();
+        loop {
+            if is_caller && cancel() {
+                stop.store(true, Ordering::Relaxed);
+            }
+            if stop.load(Ordering::Relaxed) {
+                return;
+            }
+            let i = next.fetch_add(1, Ordering::Relaxed);
+            if i >= n || i > first_error.load(Ordering::Relaxed) {
+                return;
+            }
+            let (q, qy) = jobs[i].lock().unwrap_or_else(|p| p.into_inner()).take().expect("each job is taken once");
+            let out = factor_into(&data.equations[i], t, &mut scratch, q, qy);
+            if out.is_err() {
+                first_error.fetch_min(i, Ordering::Relaxed);
+            }
+            *results[i].lock().unwrap_or_else(|p| p.into_inner()) = Some(out);
+        }
+    };
+    if threads > 1 {
+        std::thread::scope(|sc| {
+            for _ in 1..threads {
+                sc.spawn(|| run(false));
+            }
+            run(true);
+        });
+    } else {
+        run(true);
+    }
+    if stop.load(Ordering::Relaxed) {
+        return Err(SurError::Interrupted);
+    }
+    let mut factors = Vec::with_capacity(n);
+    for r in results {
+        match r.into_inner().unwrap_or_else(|p| p.into_inner()) {
+            Some(Ok(f)) => factors.push(f),
+            Some(Err(e)) => return Err(e),
+            None => unreachable!("an equation before the first failure was not factored"),
+        }
+    }
+    Ok(factors)
+}
+
+/// One equation's columns of the not yet written W: Q_i (T x K_i) and q_i.
+type WBlock<'a> = (ArrayViewMut2<'a, MaybeUninit<f64>>, ArrayViewMut1<'a, MaybeUninit<f64>>);
+
+/// Below this many flops-ish of step 0 (T (K_i + 1)^2 summed) threads cost more than they save.
+const PARALLEL_WORK: f64 = 2.0e6;
+const MAX_THREADS: usize = 8;
+
+/// Step 0 for one equation: copy [X_i | y_i] into `scratch` (checking it is finite), scale each
+/// column to unit norm, QR in place, and write Q_i and the signed residual direction q_i into W.
+fn factor_into(
+    eq: &Equation,
+    t: usize,
+    scratch: &mut Vec<f64>,
+    mut wq: ArrayViewMut2<MaybeUninit<f64>>,
+    mut wy: ArrayViewMut1<MaybeUninit<f64>>,
+) -> Result<EquationFactor> {
     let k = eq.n_regressors();
-    let ynorm = norm(eq.y);
-    let yscale = if ynorm > 0.0 { ynorm } else { 1.0 };
-    let ys = eq.y.mapv(|v| v / yscale);
-    let (q, rs, norms) = scaled_qr(eq, &[ys.view()], t)?;
+    let m = k + 1;
+    if scratch.len() < t * m {
+        scratch.resize(t * m, 0.0);
+    }
+    let scratch = &mut scratch[..t * m]; // every entry is overwritten below
+    {
+        let mut a = ArrayViewMut2::from_shape((t, m).f(), &mut scratch[..]).expect("t x m column-major");
+        a.slice_mut(s![.., ..k]).assign(&eq.x);
+        a.column_mut(k).assign(&eq.y);
+    }
+    let mut norms = Vec::with_capacity(m);
+    for j in 0..m {
+        let col = &mut scratch[j * t..(j + 1) * t];
+        let ss = dot(col, col); // NaN or inf when a value is (or the squares overflow)
+        let nj = if ss.is_finite() && ss > 1e-290 {
+            ss.sqrt()
+        } else {
+            check_finite(eq, 0)?;
+            scaled_norm(col)
+        };
+        if j < k && nj == 0.0 {
+            return Err(zero_column(&eq.name, &eq.regressors[j]));
+        }
+        let yscale = if nj > 0.0 { nj } else { 1.0 };
+        if j == k {
+            norms.push(yscale);
+        } else {
+            norms.push(nj);
+        }
+        let inv = 1.0 / norms[j];
+        for v in col.iter_mut() {
+            *v *= inv;
+        }
+    }
+    let (tss_centred, tss_raw) = tss(eq.y);
+    let rs = thin_qr_in_place(scratch, t, m)
+        .map_err(|e| SurError::numerical(&format!("QR of equation '{}'", eq.name), e))?;
+    check_rank(&eq.name, &eq.regressors, &rs, &norms[..k], t)?;
+    let yscale = norms[k];
     let mut r = rs.slice(s![..k, ..k]).to_owned();
     for j in 0..k {
         r.column_mut(j).mapv_inplace(|v| v * norms[j]);
@@ -289,11 +418,24 @@ fn factor_equation(eq: &Equation, t: usize) -> Result<(Array2<f64>, Array1<f64>,
     let last = rs[[k, k]];
     let sign = if last < 0.0 { -1.0 } else { 1.0 };
     let rho = last.abs() * yscale;
-    let qy = q.column(k).mapv(|v| v * sign);
-    let (tss_centred, tss_raw) = tss(eq.y);
     let cond = cond_of_scaled(&rs, k);
-    let qx = q.slice(s![.., ..k]).to_owned();
-    Ok((qx, qy, EquationFactor { r, z, rho, spans_constant: false, tss_centred, tss_raw, cond }))
+    // Write Q_i and q_i into W; the column sums of Q_i say whether it spans the constant.
+    let mut s2 = 0.0;
+    for j in 0..k {
+        let src = &scratch[j * t..(j + 1) * t];
+        let mut dst = wq.column_mut(j);
+        let mut sum = 0.0;
+        for (d, v) in dst.iter_mut().zip(src) {
+            d.write(*v);
+            sum += v;
+        }
+        s2 += sum * sum;
+    }
+    for (d, v) in wy.iter_mut().zip(&scratch[k * t..]) {
+        d.write(sign * v);
+    }
+    let spans_constant = (t as f64 - s2).abs() <= 1e-9 * t as f64;
+    Ok(EquationFactor { r, z, rho, spans_constant, tss_centred, tss_raw, cond })
 }
 
 /// Steps 0 and 1 when every equation has the same regressors: one QR for X, and the residual

@@ -56,6 +56,16 @@ impl<'a> SystemData<'a> {
     /// Validation of a block of rows that starts at `row_offset` of the whole sample (rows in
     /// messages count from the start of the sample). `whole` also requires T > K_i.
     pub fn validate_chunk(&self, row_offset: usize, whole: bool) -> Result<usize> {
+        let t = self.validate_shapes(whole)?;
+        for eq in &self.equations {
+            check_finite(eq, row_offset)?;
+        }
+        Ok(t)
+    }
+
+    /// The shape and name checks of `validate_chunk`, without the scan for non-finite values
+    /// (the in-memory data pass does that scan on its copy of each equation).
+    pub fn validate_shapes(&self, whole: bool) -> Result<usize> {
         let first = self.equations.first().ok_or(SurError::EmptySystem)?;
         let t = first.y.len();
         let mut seen = std::collections::HashSet::new();
@@ -104,9 +114,6 @@ impl<'a> SystemData<'a> {
                 });
             }
         }
-        for eq in &self.equations {
-            check_finite(eq, row_offset)?;
-        }
         Ok(t)
     }
 
@@ -115,8 +122,7 @@ impl<'a> SystemData<'a> {
         let x0 = &self.equations[0].x;
         self.equations[1..].iter().all(|eq| {
             eq.x.shape() == x0.shape()
-                && (std::ptr::eq(eq.x.as_ptr(), x0.as_ptr()) && eq.x.strides() == x0.strides()
-                    || eq.x == *x0)
+                && (std::ptr::eq(eq.x.as_ptr(), x0.as_ptr()) && eq.x.strides() == x0.strides() || eq.x == *x0)
         })
     }
 
@@ -139,7 +145,7 @@ impl<'a> SystemData<'a> {
 }
 
 /// The first non-finite value of an equation, by row (then y before the regressors).
-fn check_finite(eq: &Equation, row_offset: usize) -> Result<()> {
+pub(crate) fn check_finite(eq: &Equation, row_offset: usize) -> Result<()> {
     let first_bad = |v: ArrayView1<f64>| v.iter().position(|a| !a.is_finite());
     let mut worst: Option<(usize, Option<usize>)> = first_bad(eq.y.view()).map(|r| (r, None));
     for (j, col) in eq.x.axis_iter(Axis(1)).enumerate() {

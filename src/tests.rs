@@ -38,7 +38,8 @@ fn system(ks: &[usize], t: usize, seed: u64) -> (Vec<Array1<f64>>, Vec<Array2<f6
             }
         }
         let beta: Array1<f64> = (0..ks[i]).map(|j| 1.0 + 0.5 * j as f64 - 0.3 * i as f64).collect();
-        let e: Array1<f64> = (0..t).map(|r| (1.0 + 0.3 * i as f64) * (0.77 * common[r] + 0.64 * rng.normal())).collect();
+        let e: Array1<f64> =
+            (0..t).map(|r| (1.0 + 0.3 * i as f64) * (0.77 * common[r] + 0.64 * rng.normal())).collect();
         ys.push(x.dot(&beta) + e);
         xs.push(x);
     }
@@ -46,7 +47,9 @@ fn system(ks: &[usize], t: usize, seed: u64) -> (Vec<Array1<f64>>, Vec<Array2<f6
 }
 
 fn data<'a>(ys: &'a [Array1<f64>], xs: &'a [Array2<f64>]) -> SystemData<'a> {
-    SystemData::new(ys.iter().zip(xs).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.view())).collect())
+    SystemData::new(
+        ys.iter().zip(xs).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.view())).collect(),
+    )
 }
 
 /// Dense GLS: b = (X' (Omega^-1 (x) I) X)^-1 X' (Omega^-1 (x) I) y with block-diagonal X.
@@ -290,7 +293,15 @@ fn budget_shares_give_a_singular_omega_naming_the_equations() {
 fn iteration_cap_is_reported() {
     let (ys, xs) = system(&[2, 4, 3], 30, 17);
     let prep = Prepared::new(&data(&ys, &xs)).unwrap();
-    let est = prep.estimate(&FitOptions { method: Method::IteratedFgls, divisor: Divisor::Ml, tol: 0.0, max_iter: 3, ..Default::default() }).unwrap();
+    let est = prep
+        .estimate(&FitOptions {
+            method: Method::IteratedFgls,
+            divisor: Divisor::Ml,
+            tol: 0.0,
+            max_iter: 3,
+            ..Default::default()
+        })
+        .unwrap();
     assert!(!est.converged);
     assert_eq!(est.n_iter, 3);
     assert_eq!(est.criterion_path.len(), 3);
@@ -334,7 +345,8 @@ fn chunked_prepared(ys: &[Array1<f64>], xs: &[Array2<f64>], bounds: &[usize]) ->
     };
     let pieces: Vec<(usize, usize)> = bounds.windows(2).map(|w| (w[0], w[1])).collect();
     // pass 1, merged as a tree (pairs), to exercise associativity
-    let mut level: Vec<RowFactors> = pieces.iter().map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap()).collect();
+    let mut level: Vec<RowFactors> =
+        pieces.iter().map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap()).collect();
     while level.len() > 1 {
         let mut next = Vec::new();
         let mut it = level.into_iter();
@@ -390,7 +402,9 @@ fn chunk_errors_count_rows_from_the_start_of_the_sample() {
         Equation::new("e1", ys[1].slice(s![10..20]), xs[1].slice(s![10..20, ..])),
     ]);
     match crate::RowFactors::from_chunk(&chunk, 10) {
-        Err(SurError::NonFinite { row, equation, .. }) => assert_eq!((row, equation.as_str()), (17, "e1")),
+        Err(SurError::NonFinite { row, equation, .. }) => {
+            assert_eq!((row, equation.as_str()), (17, "e1"))
+        }
         other => panic!("expected NonFinite, got {other:?}"),
     }
 }
@@ -423,7 +437,14 @@ fn matrix_free_cg_equals_direct() {
     let direct = Prepared::new(&d).unwrap();
     let free = Prepared::new_matrix_free(&d, &|| false).unwrap();
     for div in [Divisor::Ml, Divisor::LedoitWolfDiagonal, Divisor::LedoitWolfIdentity] {
-        let o = FitOptions { method: Method::IteratedFgls, divisor: div, tol: 1e-11, max_iter: 200, cg_tol: 1e-13, cg_max_iter: 500 };
+        let o = FitOptions {
+            method: Method::IteratedFgls,
+            divisor: div,
+            tol: 1e-11,
+            max_iter: 200,
+            cg_tol: 1e-13,
+            cg_max_iter: 500,
+        };
         let a = direct.estimate_with(&o, None, Some(&d), &|| false).unwrap();
         let b = free.estimate_with(&o, None, None, &|| false).unwrap();
         assert!(b.cg_residual <= 1e-13 && !b.cg_iterations.is_empty());
@@ -477,7 +498,8 @@ fn ledoit_wolf_diagonal_target_formula() {
 fn householder_qr_matches_lapack() {
     use ndarray_linalg::QR;
     let mut rng = Rng(77);
-    for &(t, m) in &[(7usize, 1usize), (50, 5), (200, 12), (9, 9)] {
+    // (300, 30) and (40, 40) take the LAPACK geqrf/orgqr branch, the rest the written-out one
+    for &(t, m) in &[(7usize, 1usize), (50, 5), (200, 12), (9, 9), (300, 30), (40, 40)] {
         let a = Array2::from_shape_fn((t, m).f(), |_| rng.normal());
         let (q, r) = crate::linalg::thin_qr(a.clone()).unwrap();
         let (_, rl) = a.qr().unwrap();
@@ -495,5 +517,42 @@ fn householder_qr_matches_lapack() {
                 assert_relative_eq!(r[[i, j]].abs(), rl[[i, j]].abs(), max_relative = 1e-12, epsilon = 1e-14);
             }
         }
+    }
+}
+
+#[test]
+fn parallel_data_pass_equals_sequential_and_reports_the_first_bad_equation() {
+    // T (K_i + 1)^2 summed is large enough here for step 0 to be shared over threads; each
+    // equation's arithmetic does not depend on the thread, so results are bit-identical to
+    // the one-equation-at-a-time systems below, and errors come in system order.
+    let ks = [3usize, 4, 2, 5, 3, 4, 3, 2];
+    let t = 20_000;
+    let (ys, xs) = system(&ks, t, 41);
+    let whole = Prepared::new(&data(&ys, &xs)).unwrap();
+    for i in 0..ks.len() {
+        let one = Prepared::new(&data(&ys[i..i + 1], &xs[i..i + 1])).unwrap();
+        assert_eq!(whole.factors[i].r, one.factors[0].r);
+        assert_eq!(whole.factors[i].z, one.factors[0].z);
+        assert_eq!(whole.factors[i].rho, one.factors[0].rho);
+        assert!(whole.factors[i].spans_constant);
+    }
+    let mut bad = xs.clone();
+    let c = bad[6].column(1).to_owned();
+    bad[6].column_mut(2).assign(&(&c * 2.0));
+    bad[2][[123, 1]] = f64::NAN;
+    for _ in 0..5 {
+        match Prepared::new(&data(&ys, &bad)) {
+            Err(SurError::NonFinite { equation, row, .. }) => {
+                assert_eq!((equation.as_str(), row), ("e2", 123))
+            }
+            other => panic!("expected the NaN in equation e2 first, got {other:?}"),
+        }
+    }
+    bad[2][[123, 1]] = 0.5;
+    match Prepared::new(&data(&ys, &bad)) {
+        Err(SurError::Collinear { equation, column, .. }) => {
+            assert_eq!((equation.as_str(), column.as_str()), ("e6", "x2"))
+        }
+        other => panic!("expected collinear e6, got {other:?}"),
     }
 }

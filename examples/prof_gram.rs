@@ -1,0 +1,69 @@
+// Times the pieces of the data pass on a mid-size system (case (c) of the benchmarks:
+// N=50, T=5000, K_i=6): step 0 alone, the Gram product alone, and the whole preparation.
+// Not part of the tests: `cargo run --release --example prof_gram`.
+use blocksur::{Equation, Prepared, SystemData};
+use ndarray::{Array1, Array2, ShapeBuilder};
+use std::time::Instant;
+
+fn median(mut v: Vec<f64>) -> f64 {
+    v.sort_by(|a, b| a.partial_cmp(b).unwrap());
+    v[v.len() / 2]
+}
+
+fn time(reps: usize, mut f: impl FnMut()) -> f64 {
+    f();
+    median(
+        (0..reps)
+            .map(|_| {
+                let t0 = Instant::now();
+                f();
+                t0.elapsed().as_secs_f64() * 1e3
+            })
+            .collect(),
+    )
+}
+
+fn main() {
+    let args: Vec<usize> = std::env::args()
+        .skip(1)
+        .map(|a| a.parse().unwrap())
+        .collect();
+    let (n, t, k) = if args.len() == 3 {
+        (args[0], args[1], args[2])
+    } else {
+        (50, 5000, 6)
+    };
+    let mut seed = 1u64;
+    let mut rnd = || {
+        seed = seed
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        (seed >> 11) as f64 / (1u64 << 53) as f64 - 0.5
+    };
+    let xs: Vec<Array2<f64>> = (0..n)
+        .map(|_| Array2::from_shape_fn((t, k), |(_, j)| if j == 0 { 1.0 } else { rnd() }))
+        .collect();
+    let ys: Vec<Array1<f64>> = (0..n)
+        .map(|_| Array1::from_shape_fn(t, |_| rnd()))
+        .collect();
+    let data = SystemData::new(
+        ys.iter()
+            .zip(&xs)
+            .enumerate()
+            .map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.view()))
+            .collect(),
+    );
+    let p = n * (k + 1);
+    let w = Array2::from_shape_fn((t, p).f(), |_| rnd());
+    let reps = 21;
+    let g = time(reps, || {
+        blocksur::linalg::gram(w.view());
+    });
+    let prep = time(reps, || {
+        Prepared::new(&data).unwrap();
+    });
+    let mf = time(reps, || {
+        Prepared::new_matrix_free(&data, &|| false).unwrap();
+    });
+    println!("N={n} T={t} K_i={k} P={p}: gram {g:.2} ms, step 0 (matrix-free prepare) {mf:.2} ms, prepare {prep:.2} ms ({:.2}x gram)", prep / g);
+}
