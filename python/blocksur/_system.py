@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import functools
+import math
 import os
 import warnings
 from collections.abc import Mapping, Sequence
@@ -24,15 +26,28 @@ _METHODS = ("ols", "fgls", "ifgls")
 _DIVISORS = ("ml", "dof", "ledoit-wolf")
 
 
+_COVARIANCES = ("classical", "hc0", "hc1")
+
+
+@functools.cache
 def _default_memory_limit() -> float:
     try:
         return 0.5 * os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (ValueError, OSError, AttributeError):  # pragma: no cover - non-POSIX
         return 8e9
-_COVARIANCES = ("classical", "hc0", "hc1")
+
+
+_F64 = np.dtype(np.float64)
+
+
+@functools.lru_cache(maxsize=64)
+def _default_regressors(k: int) -> tuple[str, ...]:
+    return tuple(f"x{j}" for j in range(k))
 
 
 def _as_float(name: str, what: str, value: Any, ndim: int) -> np.ndarray:
+    if type(value) is np.ndarray and value.ndim == ndim and value.dtype == _F64:
+        return value  # already what the core reads (any strides): nothing to check or convert
     if np.ma.isMaskedArray(value) and np.ma.getmaskarray(value).any():
         raise ShapeMismatchError(
             f"equation '{name}': the {what} is a masked array with masked values; fill them or "
@@ -150,7 +165,7 @@ class EquationSystem(SystemLabels):
         self._regressors: list[list[str]] = []
         self._index: pd.Index | None = None
         for name, pair in items:
-            if not (isinstance(pair, Sequence) and len(pair) == 2):
+            if not ((type(pair) is tuple or isinstance(pair, Sequence)) and len(pair) == 2):
                 raise ShapeMismatchError(
                     f"equation '{name}': expected a (y, X) pair", equation=name
                 )
@@ -164,7 +179,7 @@ class EquationSystem(SystemLabels):
             elif isinstance(X, pd.DataFrame):
                 regs = [str(c) for c in X.columns]
             else:
-                regs = [f"x{j}" for j in range(Xv.shape[1])]
+                regs = list(_default_regressors(Xv.shape[1]))
             if len(regs) != Xv.shape[1]:
                 raise ShapeMismatchError(
                     f"equation '{name}': {len(regs)} regressor names for {Xv.shape[1]} columns",
@@ -367,7 +382,7 @@ class EquationSystem(SystemLabels):
             tol = float(tol)
         except (TypeError, ValueError):
             raise InvalidOptionError(f"tol must be a number >= 0, got {tol!r}") from None
-        if not (np.isfinite(tol) and tol >= 0):
+        if not (math.isfinite(tol) and tol >= 0):
             raise InvalidOptionError(f"tol must be a finite number >= 0, got {tol!r}")
         if covariance not in _COVARIANCES:
             raise InvalidOptionError(
