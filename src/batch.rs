@@ -4,7 +4,7 @@
 use ndarray::Array1;
 
 use crate::error::Result;
-use crate::estimate::{Estimate, FitOptions};
+use crate::estimate::{CovKind, Estimate, FitOptions};
 use crate::prepare::Prepared;
 use crate::system::SystemData;
 
@@ -20,8 +20,7 @@ pub struct BatchFit {
 fn fit_one(data: &SystemData, opts: &FitOptions) -> Result<BatchFit> {
     let prep = Prepared::new(data)?;
     let estimate = prep.estimate_with(opts, None, Some(data), &|| false)?;
-    let cov = prep.coef_covariance(&estimate)?;
-    let se = cov.diag().mapv(|v| v.max(0.0).sqrt());
+    let se = prep.coef_variances(&estimate, CovKind::Classical, Some(data))?.mapv(|v| v.max(0.0).sqrt());
     let loglik = prep.log_likelihood(&estimate.resid_crossprod);
     Ok(BatchFit { estimate, se, loglik })
 }

@@ -515,16 +515,19 @@ fn prepare_from_summaries(
         .map_err(|e| raise(py, e))
 }
 
-/// Fits many independent systems on `threads` threads. Returns a dict of arrays (coef, se:
+/// Fits many independent systems on `threads` threads. The systems share one layout: `ys` and
+/// `xs` hold one array per equation with the rows of every system stacked, and system g is rows
+/// `bounds[g]..bounds[g + 1]` (views, nothing is copied). Returns a dict of arrays (coef, se:
 /// G x K; omega: G x N x N; n_iter, converged, loglik: G) with NaN rows for failed systems, and
 /// `errors`: a list with None or (exception class name, message) per system.
 #[pyfunction]
-#[pyo3(signature = (ys, xs, method, divisor, tol, max_iter, threads))]
+#[pyo3(signature = (ys, xs, bounds, method, divisor, tol, max_iter, threads))]
 #[allow(clippy::too_many_arguments)]
 fn fit_many<'py>(
     py: Python<'py>,
-    ys: Vec<Vec<PyReadonlyArray1<'py, f64>>>,
-    xs: Vec<Vec<PyReadonlyArray2<'py, f64>>>,
+    ys: Vec<PyReadonlyArray1<'py, f64>>,
+    xs: Vec<PyReadonlyArray2<'py, f64>>,
+    bounds: Vec<usize>,
     method: &str,
     divisor: &str,
     tol: f64,
@@ -539,21 +542,40 @@ fn fit_many<'py>(
         ..Default::default()
     };
     if ys.len() != xs.len() {
-        return Err(PyValueError::new_err("ys and xs must list the same number of systems"));
+        return Err(PyValueError::new_err("ys and xs must list the same number of equations"));
     }
-    let g = ys.len();
-    let (n, k) = match xs.first() {
-        Some(x) => (x.len(), x.iter().map(|a| a.as_array().ncols()).sum::<usize>()),
-        None => (0, 0),
-    };
-    let mut systems = Vec::with_capacity(g);
-    for (y, x) in ys.iter().zip(&xs) {
-        if y.len() != n || x.len() != n || x.iter().map(|a| a.as_array().ncols()).sum::<usize>() != k {
-            return Err(PyValueError::new_err("every system must have the same equations and regressor counts"));
+    let n = ys.len();
+    let rows = ys.first().map_or(0, |y| y.as_array().len());
+    for (i, (y, x)) in ys.iter().zip(&xs).enumerate() {
+        if y.as_array().len() != rows || x.as_array().nrows() != rows {
+            return Err(PyValueError::new_err(format!(
+                "equation {i}: every y and X must have the same {rows} stacked rows"
+            )));
         }
-        let (names, regs) = default_names(n, x);
-        systems.push(equations(y, x, &names, &regs)?);
     }
+    if bounds.is_empty() || bounds.windows(2).any(|w| w[0] > w[1]) || bounds[bounds.len() - 1] > rows {
+        return Err(PyValueError::new_err(format!(
+            "bounds must be non-decreasing row offsets within 0..={rows}, one more than the number of systems"
+        )));
+    }
+    let g = bounds.len() - 1;
+    let k: usize = xs.iter().map(|x| x.as_array().ncols()).sum();
+    let (names, regs) = default_names(n, &xs);
+    let yv: Vec<_> = ys.iter().map(|y| y.as_array()).collect();
+    let xv: Vec<_> = xs.iter().map(|x| x.as_array()).collect();
+    let systems: Vec<SystemData> = bounds
+        .windows(2)
+        .map(|w| {
+            SystemData::new(
+                (0..n)
+                    .map(|i| {
+                        Equation::new(names[i].clone(), yv[i].slice(ndarray::s![w[0]..w[1]]), xv[i].slice(ndarray::s![w[0]..w[1], ..]))
+                            .with_regressors(regs[i].clone())
+                    })
+                    .collect(),
+            )
+        })
+        .collect();
     let stop = Interrupt::default();
     let results = detach_gated(py, || crate::batch::fit_many(&systems, &opts, threads, &|| stop.requested()));
     if results.iter().any(|r| matches!(r, Err(SurError::Interrupted))) {

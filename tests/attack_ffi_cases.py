@@ -252,10 +252,15 @@ case("prepare_from_summaries: names vs factors")(lambda: _core.prepare_from_summ
 case("prepare_from_summaries: n_rows mismatch")(lambda: _core.prepare_from_summaries(NAMES, REGS, pass1(), {**pass2(), "n_rows": 3}))
 case("prepare_from_summaries: zero factors", "any")(lambda: _core.prepare_from_summaries(NAMES, REGS, (T, [np.zeros((3, 3)), np.zeros((4, 4))]), pass2()))
 
-# -- fit_many ----------------------------------------------------------------------------------
-case("fit_many: empty", "any")(lambda: _core.fit_many([], [], "fgls", "ml", 1e-10, 10, 2))
-case("fit_many: systems of different shapes")(lambda: _core.fit_many([[Y, Y2], [Y]], [[X2, X3], [X2]], "fgls", "ml", 1e-10, 10, 2))
-case("fit_many: lists of different lengths")(lambda: _core.fit_many([[Y, Y2]], [[X2, X3], [X2, X3]], "fgls", "ml", 1e-10, 10, 2))
+# -- fit_many (one array per equation, systems' rows stacked, system g = rows bounds[g]:bounds[g+1])
+FM = ([Y, Y2], [X2, X3])
+case("fit_many: empty", "any")(lambda: _core.fit_many([], [], [0], "fgls", "ml", 1e-10, 10, 2))
+case("fit_many: no bounds")(lambda: _core.fit_many(*FM, [], "fgls", "ml", 1e-10, 10, 2))
+case("fit_many: decreasing bounds")(lambda: _core.fit_many(*FM, [0, 15, 10], "fgls", "ml", 1e-10, 10, 2))
+case("fit_many: bounds past the rows")(lambda: _core.fit_many(*FM, [0, T + 1], "fgls", "ml", 1e-10, 10, 2))
+case("fit_many: negative bound")(lambda: _core.fit_many(*FM, [-1, T], "fgls", "ml", 1e-10, 10, 2))
+case("fit_many: lists of different lengths")(lambda: _core.fit_many([Y, Y2], [X2], [0, T], "fgls", "ml", 1e-10, 10, 2))
+case("fit_many: y lengths differ")(lambda: _core.fit_many([Y, Y2[:5]], [X2, X3], [0, 5], "fgls", "ml", 1e-10, 10, 2))
 # -- blas_threads ------------------------------------------------------------------------------
 if hasattr(_core, "blas_threads"):
     _threads_now = _core.blas_threads()
@@ -276,15 +281,16 @@ def recorded(result):
     return result
 
 
-case("fit_many: X rows short")(lambda: recorded(_core.fit_many([[Y, Y2]], [[X2[:5], X3]], "fgls", "ml", 1e-10, 10, 2)))
-case("fit_many: same K, other split", "any")(lambda: _core.fit_many([[Y, Y2], [Y, Y2]], [[X2, X3], [X3, X2]], "fgls", "ml", 1e-10, 10, 2))
-case("fit_many: zero threads", "any")(lambda: _core.fit_many([[Y, Y2]], [[X2, X3]], "fgls", "ml", 1e-10, 10, 0))
-case("fit_many: 10**6 threads", "any")(lambda: _core.fit_many([[Y, Y2]], [[X2, X3]], "fgls", "ml", 1e-10, 10, 10**6))
-case("fit_many: bad method")(lambda: _core.fit_many([[Y, Y2]], [[X2, X3]], "gmm", "ml", 1e-10, 10, 2))
-case("fit_many: NaN data")(lambda: recorded(_core.fit_many([[np.r_[np.nan, Y[1:]], Y2]], [[X2, X3]], "fgls", "ml", 1e-10, 10, 2)))
-case("fit_many: collinear system")(lambda: recorded(_core.fit_many([[Y, Y2]], [[np.column_stack([X2, X2[:, 1]]), X3]], "fgls", "ml", 1e-10, 10, 2)))
-case("fit_many: equation-less systems", "any")(lambda: _core.fit_many([[], []], [[], []], "fgls", "ml", 1e-10, 10, 2))
-case("fit_many: int data")(lambda: _core.fit_many([[np.arange(T), np.arange(T)]], [[X2, X3]], "fgls", "ml", 1e-10, 10, 2))
+case("fit_many: X rows short")(lambda: _core.fit_many([Y, Y2], [X2[:5], X3], [0, T], "fgls", "ml", 1e-10, 10, 2))
+case("fit_many: two systems", "any")(lambda: recorded(_core.fit_many(*FM, [0, T // 2, T], "fgls", "ml", 1e-10, 10, 2)))
+case("fit_many: an empty system")(lambda: recorded(_core.fit_many(*FM, [0, 0, T], "fgls", "ml", 1e-10, 10, 2)))
+case("fit_many: zero threads", "any")(lambda: _core.fit_many(*FM, [0, T], "fgls", "ml", 1e-10, 10, 0))
+case("fit_many: 10**6 threads", "any")(lambda: _core.fit_many(*FM, [0, T], "fgls", "ml", 1e-10, 10, 10**6))
+case("fit_many: bad method")(lambda: _core.fit_many(*FM, [0, T], "gmm", "ml", 1e-10, 10, 2))
+case("fit_many: NaN data")(lambda: recorded(_core.fit_many([np.r_[np.nan, Y[1:]], Y2], [X2, X3], [0, T], "fgls", "ml", 1e-10, 10, 2)))
+case("fit_many: collinear system")(lambda: recorded(_core.fit_many([Y, Y2], [np.column_stack([X2, X2[:, 1]]), X3], [0, T], "fgls", "ml", 1e-10, 10, 2)))
+case("fit_many: equation-less systems", "any")(lambda: _core.fit_many([], [], [0, 0, 0], "fgls", "ml", 1e-10, 10, 2))
+case("fit_many: int data")(lambda: _core.fit_many([np.arange(T), np.arange(T)], [X2, X3], [0, T], "fgls", "ml", 1e-10, 10, 2))
 
 
 def main(first: int) -> None:

@@ -71,15 +71,17 @@ def prepare_from_summaries(
     """The prepared system from merged pass-1 and pass-2 summaries of all rows."""
 
 def fit_many(
-    ys: Sequence[Sequence[_F64_1D]],
-    xs: Sequence[Sequence[_F64_2D]],
+    ys: Sequence[_F64_1D],
+    xs: Sequence[_F64_2D],
+    bounds: Sequence[int],
     method: str,
     divisor: str,
     tol: float,
     max_iter: int,
     threads: int,
 ) -> dict[str, object]:
-    """Fits many independent systems of the same shape on ``threads`` threads: a dict of
+    """Fits many independent systems of the same layout on ``threads`` threads (one array per
+    equation with every system's rows stacked; system g is rows ``bounds[g]:bounds[g+1]``): a dict of
     arrays (``coef``, ``se``: G x K; ``omega``: G x N x N; ``n_iter``, ``converged``,
     ``loglik``: G) and ``errors`` (None or (error class name, message) per system)."""
 

@@ -170,12 +170,14 @@ def _threads(threads: Any) -> int:
     return int(threads)
 
 
-def _run(ys: list[list[np.ndarray]], xs: list[list[np.ndarray]], keys: pd.Index, names: list[str],
+def _run(ys: list[np.ndarray], xs: list[np.ndarray], bounds: np.ndarray, keys: pd.Index, names: list[str],
          regressors: list[list[str]], n_obs: np.ndarray, n_dropped: np.ndarray, method: str, omega: str,
          shrink_target: str, tol: float, max_iter: int, inference: str, threads: Any) -> ManyFits:
+    """Fits system g on rows bounds[g]:bounds[g+1] of the stacked per-equation arrays."""
     opts = check_options(method, omega, tol, max_iter, None, inference, shrink_allowed=True,
                          shrink_target=shrink_target)
-    out = _core.fit_many(ys, xs, opts.method, opts.omega, opts.tol, opts.max_iter, _threads(threads))
+    out = _core.fit_many(ys, xs, [int(b) for b in bounds], opts.method, opts.omega, opts.tol, opts.max_iter,
+                         _threads(threads))
     return ManyFits(keys, names, regressors, out, n_obs, n_dropped, opts.method, opts.omega, opts.inference)
 
 
@@ -260,11 +262,7 @@ def fit_groups(
     counts = np.bincount(codes[order], minlength=n_groups)
     bounds = np.concatenate([[0], np.cumsum(counts)])
     ys_all, xs_all = layout.matrices({c: v[order] for c, v in values.items()})
-    # One array per system: the bindings track each borrowed array against the others of the
-    # same base, which costs time quadratic in the number of views of one big array.
-    ys = [[y[a:b].copy() for y in ys_all] for a, b in zip(bounds[:-1], bounds[1:])]
-    xs = [[x[a:b].copy() for x in xs_all] for a, b in zip(bounds[:-1], bounds[1:])]
-    return _run(ys, xs, keys, layout.names, layout.regressors, counts, n_dropped, method, omega,
+    return _run(ys_all, xs_all, bounds, keys, layout.names, layout.regressors, counts, n_dropped, method, omega,
                 shrink_target, tol, max_iter, inference, threads)
 
 
@@ -352,8 +350,9 @@ def fit_stacked(
             keys = keys.rename("group")
         if len(keys) != g:
             raise ShapeMismatchError(f"{len(keys)} group labels for {g} systems")
-    # Own copies per system (see fit_groups): views of one array would cost quadratic time.
-    ys = [list(np.asfortranarray(yv[s]).T) for s in range(g)]
-    xs = [[a[s].copy() for a in xl] for s in range(g)]
-    return _run(ys, xs, keys, names, regs, np.full(g, t), np.zeros(g, dtype=np.int64), method, omega,
+    # Rows of every system stacked: system s is rows s*T .. (s+1)*T of each equation's arrays.
+    ys = [np.ascontiguousarray(yv[:, :, i]).reshape(g * t) for i in range(n)]
+    xs = [a.reshape(g * t, a.shape[2]) for a in xl]
+    bounds = np.arange(g + 1) * t
+    return _run(ys, xs, bounds, keys, names, regs, np.full(g, t), np.zeros(g, dtype=np.int64), method, omega,
                 shrink_target, tol, max_iter, inference, threads)
