@@ -840,13 +840,26 @@ impl Prepared {
                 return Err(matrix_free_unsupported("the covariance matrix"));
             }
             if let Weight::Chol(l) = &est.weight {
-                let u = lower_inverse(l)?;
-                for (i, ri) in rinv.iter().enumerate() {
-                    let (a, b) = (self.offsets[i], self.offsets[i + 1]);
-                    let v = u.slice(s![a.., a..b]).dot(&ri.t());
-                    for (j, col) in v.columns().into_iter().enumerate() {
-                        out[a + j] = col.dot(&col);
+                // U = L^-1 a panel of whole equations at a time (columns c..d of U are zero
+                // above row c and solve L[c.., c..] X = I[c.., c..d]): K^3/3 flops in all, as
+                // one trtri, but only a K x PANEL block in memory.
+                let n = self.n_eq();
+                let mut first = 0;
+                while first < n {
+                    let c = self.offsets[first];
+                    let mut last = first + 1;
+                    while last < n && self.offsets[last + 1] - c <= PANEL {
+                        last += 1;
                     }
+                    let x = inverse_columns(l, c, self.offsets[last])?;
+                    for (i, ri) in rinv.iter().enumerate().take(last).skip(first) {
+                        let (a, b) = (self.offsets[i] - c, self.offsets[i + 1] - c);
+                        let v = x.slice(s![a.., a..b]).dot(&ri.t());
+                        for (j, col) in v.columns().into_iter().enumerate() {
+                            out[c + a + j] = col.dot(&col);
+                        }
+                    }
+                    first = last;
                 }
                 return Ok(out);
             }
@@ -1036,32 +1049,47 @@ fn block_variances(a: &Array2<f64>, b: &Array2<f64>, mut out: ndarray::ArrayView
     }
 }
 
-/// L^-1 for the lower Cholesky factor from `chol_lower` (LAPACK trtri, K^3/3 flops), lower
-/// triangular and column-major.
-// A LAPACK kernel: its home is linalg.rs, kept here while that module is being rewritten.
-fn lower_inverse(l: &Array2<f64>) -> Result<Array2<f64>> {
-    let mut u = Array2::<f64>::zeros(l.dim().f());
-    u.assign(l);
-    let n = u.nrows() as i32;
-    if n == 0 {
-        return Ok(u);
+/// Columns of whole equations per panel of L^-1 in `coef_variances` (a K x PANEL block).
+const PANEL: usize = 256;
+
+/// Rows and columns c.. x c..d of L^-1 for the lower Cholesky factor from `chol_lower` (the
+/// rows above c are zero): solves L[c.., c..] X = I[c.., c..d] by one BLAS trsm.
+// A BLAS kernel: its home is linalg.rs, kept here while that module is being rewritten.
+fn inverse_columns(l: &Array2<f64>, c: usize, d: usize) -> Result<Array2<f64>> {
+    let k = l.nrows();
+    if !l.t().is_standard_layout() || l.ncols() != k || c > d || d > k {
+        return Err(SurError::numerical("inverse of the Cholesky factor", "unexpected factor layout"));
     }
-    let mut info = 0;
-    // SAFETY: `u` is a fresh n x n column-major buffer; trtri reads and writes its lower triangle.
+    let (m, w) = (k - c, d - c);
+    let mut x = Array2::<f64>::zeros((m, w).f());
+    for j in 0..w {
+        x[[j, j]] = 1.0;
+    }
+    if m == 0 || w == 0 {
+        return Ok(x);
+    }
+    if (0..m).any(|i| l[[c + i, c + i]] == 0.0) {
+        return Err(SurError::numerical("inverse of the Cholesky factor", "zero on the diagonal"));
+    }
+    // SAFETY: `l` is k x k column-major, so L[c.., c..] starts at c * k + c with leading
+    // dimension k; `x` is a fresh m x w column-major buffer with leading dimension m.
     unsafe {
-        lapack_sys::dtrtri_(
-            &(b'L' as std::ffi::c_char),
-            &(b'N' as std::ffi::c_char),
-            &n,
-            u.as_mut_ptr(),
-            &n,
-            &mut info,
+        cblas_sys::cblas_dtrsm(
+            cblas_sys::CBLAS_LAYOUT::CblasColMajor,
+            cblas_sys::CBLAS_SIDE::CblasLeft,
+            cblas_sys::CBLAS_UPLO::CblasLower,
+            cblas_sys::CBLAS_TRANSPOSE::CblasNoTrans,
+            cblas_sys::CBLAS_DIAG::CblasNonUnit,
+            m as i32,
+            w as i32,
+            1.0,
+            l.as_ptr().add(c * k + c),
+            k as i32,
+            x.as_mut_ptr(),
+            m as i32,
         )
     };
-    if info != 0 {
-        return Err(SurError::numerical("inverse of the Cholesky factor", format!("LAPACK info {info}")));
-    }
-    Ok(u)
+    Ok(x)
 }
 
 #[cfg(test)]
@@ -1094,8 +1122,8 @@ mod variance_tests {
 
     #[test]
     fn variances_are_the_diagonal_of_the_full_covariance() {
-        // n = 30, k = 3: K = 90 exceeds LAPACK's block size, so the blocked trtri runs
-        for (n, shared) in [(4, false), (30, false), (3, true)] {
+        // n = 100, k = 3: K = 300 spans two panels of L^-1
+        for (n, shared) in [(4, false), (30, false), (100, false), (3, true)] {
             let (ys, xs) = system(n, 120, 3, shared);
             let data = SystemData::new(
                 ys.iter().zip(&xs).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.view())).collect(),

@@ -1,5 +1,5 @@
 """Standard errors come from the diagonal of the covariance without forming the K x K matrix
-(classical unrestricted fits: the triangular inverse of the Cholesky factor of the GLS matrix;
+(classical unrestricted fits: the inverse of the Cholesky factor of the GLS matrix, by panels;
 OLS and shared regressors: the diagonal blocks). Every path must agree with the square roots of
 the full covariance's diagonal, whichever is read first.
 
@@ -133,12 +133,13 @@ print(json.dumps({"se_kb": hwm_kb() - base, "K": fit.n_coef, "positive": bool(np
 
 
 @pytest.mark.skipif(not os.path.exists("/proc/self/clear_refs"), reason="needs Linux /proc")
-def test_se_needs_one_k_by_k_matrix_at_most():
+def test_se_needs_less_than_a_k_by_k_matrix():
     out = subprocess.run([sys.executable, "-c", PEAK_CHILD], capture_output=True, text=True, timeout=600)
     assert out.returncode == 0, out.stderr
     res = json.loads(out.stdout.strip().splitlines()[-1])
     k_by_k_kb = 8 * res["K"] ** 2 / 1024
     ratio = record("se peak RSS increase / (8 K^2 bytes), K=1600", res["se_kb"] / k_by_k_kb)
     assert res["positive"]
-    # the triangular inverse is one K x K matrix; the full covariance path took three or more
-    assert ratio <= 1.5
+    # L^-1 is formed a panel of 256 columns at a time (here 1600 x 256, 0.16 of a K x K
+    # matrix); the full covariance path took three K x K matrices or more
+    assert ratio <= 0.5
