@@ -115,3 +115,16 @@ def test_row_labels_of_results():
     labelled = {n: (pd.Series(y, index=days), X) for n, (y, X) in eqs.items()}
     fit = blocksur.EquationSystem(labelled).fit("fgls")
     assert fit.resid.index.equals(days) and fit.rows_used.equals(days)
+
+
+def test_index_cache_stays_bounded_and_correct():
+    from blocksur import _fit
+
+    y, X = _eqs()["a"]
+    fits = [blocksur.EquationSystem({f"eq{i}": (y, X)}).fit("ols") for i in range(_fit._INDEX_CACHE_SIZE + 10)]
+    assert len(_fit._INDEX_CACHE) <= _fit._INDEX_CACHE_SIZE
+    for i, fit in enumerate(fits):
+        assert fit.coef.index.tolist() == [(f"eq{i}", "x0"), (f"eq{i}", "x1")]
+    # an evicted label set is rebuilt, equal to the first one built
+    again = blocksur.EquationSystem({"eq0": (y, X)}).fit("ols")
+    assert again.coef.index.equals(fits[0].coef.index)

@@ -63,7 +63,7 @@ def coef_index(names: list[str], regressors: list[list[str]]) -> pd.MultiIndex:
     if idx is None or idx.names != _INDEX_NAMES:
         idx = _build_coef_index(names, regressors)
         if len(_INDEX_CACHE) >= _INDEX_CACHE_SIZE:
-            _INDEX_CACHE.pop(next(iter(_INDEX_CACHE)))  # oldest first
+            _INDEX_CACHE.pop(next(iter(_INDEX_CACHE), None), None)  # oldest first (threads may race)
         _INDEX_CACHE[key] = idx
     return idx
 
