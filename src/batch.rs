@@ -42,6 +42,7 @@ pub fn fit_many(
     let next = AtomicUsize::new(0);
     let stop = AtomicBool::new(false);
     let work = |checks: bool| {
+        crate::prepare::IN_WORKER.with(|w| w.set(true));
         let mut done = 0usize;
         loop {
             if checks && done.is_multiple_of(32) && cancel() {
@@ -58,14 +59,13 @@ pub fn fit_many(
             done += 1;
         }
     };
+    let nested = crate::prepare::IN_WORKER.with(|w| w.get());
     std::thread::scope(|scope| {
         for _ in 1..threads {
             scope.spawn(|| work(false));
         }
         work(true);
     });
-    slots
-        .into_iter()
-        .map(|s| s.into_inner().unwrap_or(Err(crate::SurError::Interrupted)))
-        .collect()
+    crate::prepare::IN_WORKER.with(|w| w.set(nested));
+    slots.into_iter().map(|s| s.into_inner().unwrap_or(Err(crate::SurError::Interrupted))).collect()
 }

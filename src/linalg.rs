@@ -364,7 +364,7 @@ pub fn fmt_num(x: f64) -> String {
 pub fn thin_qr(a: Array2<f64>) -> Result<(Array2<f64>, Array2<f64>)> {
     let (t, m) = a.dim();
     let mut a = if a.t().is_standard_layout() { a } else { to_fortran(&a) };
-    let r = thin_qr_in_place(a.as_slice_memory_order_mut().expect("column-major and contiguous"), t, m)?;
+    let r = thin_qr_in_place(a.as_slice_memory_order_mut().expect("column-major and contiguous"), t, m, &|| false)?;
     Ok((a, r))
 }
 
@@ -372,8 +372,9 @@ pub fn thin_qr(a: Array2<f64>) -> Result<(Array2<f64>, Array2<f64>)> {
 /// it holds Q (orthonormal columns) and R (m x m, upper triangular) is returned, A = Q R.
 /// Narrow blocks (the regressors of one equation) use the unblocked Householder algorithm of
 /// LAPACK's geqr2/org2r written out, which has no per-call overhead or workspace; wide ones go
-/// to LAPACK's blocked geqrf/orgqr.
-pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize) -> Result<Array2<f64>> {
+/// to LAPACK's blocked geqrf/orgqr. On the written-out path `stop` is asked before each column
+/// (so that a very long column can be interrupted) and a yes returns `SurError::Interrupted`.
+pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize, stop: &dyn Fn() -> bool) -> Result<Array2<f64>> {
     assert_eq!(buf.len(), t * m, "thin_qr_in_place: buffer is not T x m");
     if t < m {
         return Err(SurError::numerical("QR", format!("{t} rows for {m} columns")));
@@ -385,6 +386,9 @@ pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize) -> Result<Array2<f6
     let mut tau = vec![0.0f64; m];
     // Factor: column j below the diagonal becomes the reflector v_j (v_j[0] = 1 implied).
     for j in 0..m {
+        if stop() {
+            return Err(SurError::Interrupted);
+        }
         let (left, right) = buf.split_at_mut((j + 1) * t);
         let x = &mut left[j * t + j..];
         let ss = dot(x, x);
@@ -412,6 +416,9 @@ pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize) -> Result<Array2<f6
     }
     // Q = H_0 .. H_{m-1} [I_m; 0], built backwards in place as in org2r.
     for j in (0..m).rev() {
+        if stop() {
+            return Err(SurError::Interrupted);
+        }
         let (left, right) = buf.split_at_mut((j + 1) * t);
         let colj = &mut left[j * t..];
         let tj = tau[j];
@@ -441,12 +448,21 @@ fn reflect(col: &mut [f64], tail: &[f64], tau: f64) {
     }
 }
 
-/// Dot product with eight independent partial sums (the compiler can keep them in vector
-/// registers; a single running sum is a chain of dependent additions).
-#[inline]
+/// Dot product: pairwise over halves down to blocks of 1024, each block summed in eight
+/// independent partial sums (vector registers; a single running sum is a chain of dependent
+/// additions). The rounding error grows with log2(n), not n: over 10^7 rows a running sum
+/// would cost several digits.
 pub fn dot(a: &[f64], b: &[f64]) -> f64 {
     let n = a.len().min(b.len());
-    let (a, b) = (&a[..n], &b[..n]);
+    if n > 1024 {
+        let h = (n / 2) & !7;
+        return dot(&a[..h], &b[..h]) + dot(&a[h..n], &b[h..n]);
+    }
+    dot_block(&a[..n], &b[..n])
+}
+
+#[inline]
+fn dot_block(a: &[f64], b: &[f64]) -> f64 {
     let mut acc = [0.0f64; 8];
     let (ca, cb) = (a.chunks_exact(8), b.chunks_exact(8));
     let (ra, rb) = (ca.remainder(), cb.remainder());
@@ -470,7 +486,11 @@ pub fn scaled_norm(x: &[f64]) -> f64 {
         return m;
     }
     let inv = 1.0 / m;
-    m * x.iter().map(|e| (e * inv) * (e * inv)).sum::<f64>().sqrt()
+    let mut ss = 0.0;
+    for c in x.chunks(1024) {
+        ss += c.iter().map(|e| (e * inv) * (e * inv)).sum::<f64>();
+    }
+    m * ss.sqrt()
 }
 
 fn lapack_qr_in_place(buf: &mut [f64], t: usize, m: usize) -> Result<Array2<f64>> {

@@ -302,8 +302,7 @@ fn factor_all(
 ) -> Result<Vec<EquationFactor>> {
     let n = blocks.len();
     let work: f64 = data.equations.iter().map(|e| t as f64 * ((e.n_regressors() + 1) as f64).powi(2)).sum();
-    let cores = std::thread::available_parallelism().map(|c| c.get()).unwrap_or(1);
-    let threads = if work < PARALLEL_WORK { 1 } else { cores.min(n).min(MAX_THREADS) };
+    let threads = if work < PARALLEL_WORK || IN_WORKER.with(|w| w.get()) { 1 } else { cores().min(n).min(MAX_THREADS) };
     let jobs: Vec<Mutex<Option<WBlock<'_>>>> = blocks.into_iter().map(|b| Mutex::new(Some(b))).collect();
     let results: Vec<Mutex<Option<Result<EquationFactor>>>> = (0..n).map(|_| Mutex::new(None)).collect();
     let next = AtomicUsize::new(0);
@@ -323,7 +322,17 @@ fn factor_all(
                 return;
             }
             let (q, qy) = jobs[i].lock().unwrap_or_else(|p| p.into_inner()).take().expect("each job is taken once");
-            let out = factor_into(&data.equations[i], t, &mut scratch, q, qy);
+            // Long columns: also ask between the columns of one equation (each step is then a
+            // pass over many rows); short ones only between equations.
+            let poll = || {
+                if is_caller && cancel() {
+                    stop.store(true, Ordering::Relaxed);
+                }
+                stop.load(Ordering::Relaxed)
+            };
+            let never = || false;
+            let out =
+                factor_into(&data.equations[i], t, &mut scratch, q, qy, if t >= LONG_COLUMN { &poll } else { &never });
             if out.is_err() {
                 first_error.fetch_min(i, Ordering::Relaxed);
             }
@@ -354,8 +363,23 @@ fn factor_all(
     Ok(factors)
 }
 
+/// The cores this process may use, asked once: the standard library reads the cgroup files
+/// on every call, which costs more than a small system's whole data pass.
+fn cores() -> usize {
+    static CORES: std::sync::OnceLock<usize> = std::sync::OnceLock::new();
+    *CORES.get_or_init(|| std::thread::available_parallelism().map(|c| c.get()).unwrap_or(1))
+}
+
+thread_local! {
+    /// Set on the threads of a batch of many systems, which are already one per core.
+    pub(crate) static IN_WORKER: std::cell::Cell<bool> = const { std::cell::Cell::new(false) };
+}
+
 /// One equation's columns of the not yet written W: Q_i (T x K_i) and q_i.
 type WBlock<'a> = (ArrayViewMut2<'a, MaybeUninit<f64>>, ArrayViewMut1<'a, MaybeUninit<f64>>);
+
+/// Columns at least this long are worth a Ctrl-C check each (a pass over them takes ~1 ms+).
+const LONG_COLUMN: usize = 1 << 18;
 
 /// Below this many flops-ish of step 0 (T (K_i + 1)^2 summed) threads cost more than they save.
 const PARALLEL_WORK: f64 = 2.0e6;
@@ -369,6 +393,7 @@ fn factor_into(
     scratch: &mut Vec<f64>,
     mut wq: ArrayViewMut2<MaybeUninit<f64>>,
     mut wy: ArrayViewMut1<MaybeUninit<f64>>,
+    stop: &dyn Fn() -> bool,
 ) -> Result<EquationFactor> {
     let k = eq.n_regressors();
     let m = k + 1;
@@ -383,6 +408,9 @@ fn factor_into(
     }
     let mut norms = Vec::with_capacity(m);
     for j in 0..m {
+        if stop() {
+            return Err(SurError::Interrupted);
+        }
         let col = &mut scratch[j * t..(j + 1) * t];
         let ss = dot(col, col); // NaN or inf when a value is (or the squares overflow)
         let nj = if ss.is_finite() && ss > 1e-290 {
@@ -406,8 +434,10 @@ fn factor_into(
         }
     }
     let (tss_centred, tss_raw) = tss(eq.y);
-    let rs = thin_qr_in_place(scratch, t, m)
-        .map_err(|e| SurError::numerical(&format!("QR of equation '{}'", eq.name), e))?;
+    let rs = thin_qr_in_place(scratch, t, m, stop).map_err(|e| match e {
+        SurError::Interrupted => e,
+        e => SurError::numerical(&format!("QR of equation '{}'", eq.name), e),
+    })?;
     check_rank(&eq.name, &eq.regressors, &rs, &norms[..k], t)?;
     let yscale = norms[k];
     let mut r = rs.slice(s![..k, ..k]).to_owned();

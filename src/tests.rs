@@ -556,3 +556,20 @@ fn parallel_data_pass_equals_sequential_and_reports_the_first_bad_equation() {
         other => panic!("expected collinear e6, got {other:?}"),
     }
 }
+
+#[test]
+fn long_dot_products_keep_their_digits() {
+    // Arithmetic fact: 0.1 * n rounded once is the correctly rounded sum of n copies of the
+    // double nearest 0.1. A running sum over 4 million terms drifts by ~1e-10 relative; the
+    // pairwise kernel must stay within a few units of the last place.
+    let n = 4_000_000usize;
+    let a = vec![0.1f64; n];
+    let b = vec![1.0f64; n];
+    let exact = 0.1 * n as f64;
+    let running: f64 = a.iter().sum();
+    assert!(((running - exact) / exact).abs() > 1e-12, "the check would not tell a running sum apart");
+    let d = crate::linalg::dot(&a, &b);
+    assert!(((d - exact) / exact).abs() < 1e-14, "dot {d} vs {exact}");
+    let nrm = crate::linalg::scaled_norm(&a);
+    assert_relative_eq!(nrm, (0.01 * n as f64).sqrt(), max_relative = 1e-14);
+}
