@@ -35,7 +35,7 @@ mod python;
 pub use error::{Result, SurError};
 pub use estimate::{CovKind, Divisor, Estimate, FitOptions, Method, Restrictions};
 pub use prepare::{CrossProducts, EquationFactor, Prepared};
-pub use stream::{CrossStats, Pass2Basis, RowFactors};
+pub use stream::{CrossStats, Pass2Basis, RowFactors, RowSummary};
 pub use system::{Equation, SystemData};
 
 // Link the BLAS/LAPACK implementation (system OpenBLAS).

@@ -9,7 +9,7 @@ use pyo3::types::PyDict;
 use crate::error::SurError;
 use crate::estimate::{CovKind, Divisor, Estimate, FitOptions, Method, Restrictions};
 use crate::prepare::Prepared;
-use crate::stream::{CrossStats, Pass2Basis, RowFactors};
+use crate::stream::{CrossStats, Pass2Basis, RowFactors, RowSummary};
 use crate::system::{Equation, SystemData};
 
 /// Raises the blocksur exception class for a core error, with its details as attributes.
@@ -417,29 +417,52 @@ fn factors_to_py<'py>(py: Python<'py>, f: RowFactors) -> (usize, Vec<Bound<'py, 
     (f.n_rows, f.r.into_iter().map(|a| a.into_pyarray(py)).collect())
 }
 
+/// The fields the pass-2 and one-pass summaries share: row count, column sums, y moments.
+type Shared = (usize, ndarray::Array1<f64>, Vec<f64>, Vec<f64>, Vec<f64>);
+
+fn item<'py>(d: &Bound<'py, PyDict>, k: &str, what: &str) -> PyResult<Bound<'py, pyo3::PyAny>> {
+    d.get_item(k)?.ok_or_else(|| PyValueError::new_err(format!("{what} lacks '{k}'")))
+}
+
+fn shared_from_py(d: &Bound<'_, PyDict>, what: &str) -> PyResult<Shared> {
+    Ok((
+        item(d, "n_rows", what)?.extract()?,
+        item(d, "colsum", what)?.extract::<PyReadonlyArray1<f64>>()?.as_array().to_owned(),
+        item(d, "y_mean", what)?.extract()?,
+        item(d, "y_m2", what)?.extract()?,
+        item(d, "y_raw", what)?.extract()?,
+    ))
+}
+
+fn shared_to_py<'py>(py: Python<'py>, s: Shared, key: &str, matrix: ndarray::Array2<f64>) -> PyResult<Bound<'py, PyDict>> {
+    let d = PyDict::new(py);
+    d.set_item("n_rows", s.0)?;
+    d.set_item(key, matrix.into_pyarray(py))?;
+    d.set_item("colsum", s.1.into_pyarray(py))?;
+    d.set_item("y_mean", s.2)?;
+    d.set_item("y_m2", s.3)?;
+    d.set_item("y_raw", s.4)?;
+    Ok(d)
+}
+
 fn stats_from_py(d: &Bound<'_, PyDict>) -> PyResult<CrossStats> {
-    let get = |k: &str| -> PyResult<Bound<'_, pyo3::PyAny>> {
-        d.get_item(k)?.ok_or_else(|| PyValueError::new_err(format!("pass-2 summary lacks '{k}'")))
-    };
-    Ok(CrossStats {
-        n_rows: get("n_rows")?.extract()?,
-        gram: get("gram")?.extract::<PyReadonlyArray2<f64>>()?.as_array().to_owned(),
-        colsum: get("colsum")?.extract::<PyReadonlyArray1<f64>>()?.as_array().to_owned(),
-        y_mean: get("y_mean")?.extract()?,
-        y_m2: get("y_m2")?.extract()?,
-        y_raw: get("y_raw")?.extract()?,
-    })
+    let (n_rows, colsum, y_mean, y_m2, y_raw) = shared_from_py(d, "pass-2 summary")?;
+    let gram = item(d, "gram", "pass-2 summary")?.extract::<PyReadonlyArray2<f64>>()?.as_array().to_owned();
+    Ok(CrossStats { n_rows, gram, colsum, y_mean, y_m2, y_raw })
 }
 
 fn stats_to_py(py: Python<'_>, s: CrossStats) -> PyResult<Bound<'_, PyDict>> {
-    let d = PyDict::new(py);
-    d.set_item("n_rows", s.n_rows)?;
-    d.set_item("gram", s.gram.into_pyarray(py))?;
-    d.set_item("colsum", s.colsum.into_pyarray(py))?;
-    d.set_item("y_mean", s.y_mean)?;
-    d.set_item("y_m2", s.y_m2)?;
-    d.set_item("y_raw", s.y_raw)?;
-    Ok(d)
+    shared_to_py(py, (s.n_rows, s.colsum, s.y_mean, s.y_m2, s.y_raw), "gram", s.gram)
+}
+
+fn summary_from_py(d: &Bound<'_, PyDict>) -> PyResult<RowSummary> {
+    let (n_rows, colsum, y_mean, y_m2, y_raw) = shared_from_py(d, "row summary")?;
+    let r = item(d, "r", "row summary")?.extract::<PyReadonlyArray2<f64>>()?.as_array().to_owned();
+    Ok(RowSummary { n_rows, r, colsum, y_mean, y_m2, y_raw })
+}
+
+fn summary_to_py(py: Python<'_>, s: RowSummary) -> PyResult<Bound<'_, PyDict>> {
+    shared_to_py(py, (s.n_rows, s.colsum, s.y_mean, s.y_m2, s.y_raw), "r", s.r)
 }
 
 fn default_names(n: usize, xs: &[PyReadonlyArray2<'_, f64>]) -> (Vec<String>, Vec<Vec<String>>) {
@@ -497,6 +520,45 @@ fn pass2_merge<'py>(py: Python<'py>, a: Bound<'py, PyDict>, b: Bound<'py, PyDict
     let (a, b) = (stats_from_py(&a)?, stats_from_py(&b)?);
     let out = detach_gated(py, || a.merge(b)).map_err(|e| raise(py, e))?;
     stats_to_py(py, out)
+}
+
+/// One-pass summary of a chunk (a square root of Z'Z for Z = [X_1 y_1 .. X_N y_N], column
+/// sums, y moments): a dict that `row_merge` combines and `row_finish` completes.
+#[pyfunction]
+#[pyo3(signature = (ys, xs, names, regressors, row_offset=0))]
+fn row_chunk<'py>(
+    py: Python<'py>,
+    ys: Vec<PyReadonlyArray1<'py, f64>>,
+    xs: Vec<PyReadonlyArray2<'py, f64>>,
+    names: Vec<String>,
+    regressors: Vec<Vec<String>>,
+    row_offset: usize,
+) -> PyResult<Bound<'py, PyDict>> {
+    let data = equations(&ys, &xs, &names, &regressors)?;
+    let out = detach_gated(py, || RowSummary::from_chunk(&data, row_offset)).map_err(|e| raise(py, e))?;
+    summary_to_py(py, out)
+}
+
+/// Merges two one-pass summaries.
+#[pyfunction]
+fn row_merge<'py>(py: Python<'py>, a: Bound<'py, PyDict>, b: Bound<'py, PyDict>) -> PyResult<Bound<'py, PyDict>> {
+    let (a, b) = (summary_from_py(&a)?, summary_from_py(&b)?);
+    let out = detach_gated(py, || a.merge(b)).map_err(|e| raise(py, e))?;
+    summary_to_py(py, out)
+}
+
+/// The pass-1 factors and pass-2 statistics of the rows a one-pass summary covers, for
+/// equations of `widths[i]` = K_i + 1 columns.
+#[pyfunction]
+#[allow(clippy::type_complexity)]
+fn row_finish<'py>(
+    py: Python<'py>,
+    summary: Bound<'py, PyDict>,
+    widths: Vec<usize>,
+) -> PyResult<((usize, Vec<Bound<'py, PyArray2<f64>>>), Bound<'py, PyDict>)> {
+    let s = summary_from_py(&summary)?;
+    let (f, st) = detach_gated(py, || s.finish(&widths)).map_err(|e| raise(py, e))?;
+    Ok((factors_to_py(py, f), stats_to_py(py, st)?))
 }
 
 /// The prepared system from merged pass-1 and pass-2 summaries of all rows.
@@ -644,6 +706,9 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(pass2_merge, m)?)?;
     m.add_function(wrap_pyfunction!(prepare_from_summaries, m)?)?;
     m.add_function(wrap_pyfunction!(fit_many, m)?)?;
+    m.add_function(wrap_pyfunction!(row_chunk, m)?)?;
+    m.add_function(wrap_pyfunction!(row_merge, m)?)?;
+    m.add_function(wrap_pyfunction!(row_finish, m)?)?;
     m.add_function(wrap_pyfunction!(blas_threads, m)?)?;
     m.add_class::<PyPrepared>()?;
     m.add_class::<PyEstimate>()?;

@@ -5,7 +5,8 @@
 //! numbers per equation travel. Pass 2 turns each chunk into its rows of
 //! W = [Q_1 .. Q_N, q_1 .. q_N] with [Q_i | q_i] = [X_i | y_i] R_i^+^-1 and sums the chunk Gram
 //! matrices W_c'W_c (P x P). Both summaries merge associatively, in any order and any tree, and
-//! `Prepared::from_summaries` finishes exactly as the in-memory path does.
+//! `Prepared::from_summaries` finishes exactly as the in-memory path does. `RowSummary` gets
+//! both summaries from one read of the rows (a tall-skinny QR of all the columns at once).
 
 use ndarray::{concatenate, s, Array1, Array2, Axis, ShapeBuilder};
 use ndarray_linalg::QRInto;
@@ -98,7 +99,9 @@ impl Pass2Basis {
         for r in &factors.r {
             let m = r.nrows();
             if m < 2 || r.ncols() != m || r.iter().any(|v| !v.is_finite()) {
-                return Err(SurError::InvalidOption("a pass-1 factor is not a finite square matrix of size K_i + 1".into()));
+                return Err(SurError::InvalidOption(
+                    "a pass-1 factor is not a finite square matrix of size K_i + 1".into(),
+                ));
             }
             let mut safe = r.clone();
             // A perfect fit leaves r[m-1, m-1] = 0; its q column is then immaterial (rho = 0).
@@ -129,7 +132,6 @@ impl CrossStats {
         let p = k + n;
         let mut w = Array2::<f64>::zeros((rows, p).f());
         let mut off = 0;
-        let (mut y_mean, mut y_m2, mut y_raw) = (Vec::new(), Vec::new(), Vec::new());
         for (i, eq) in data.equations.iter().enumerate() {
             let ki = eq.n_regressors();
             if basis.rinv[i].nrows() != ki + 1 {
@@ -142,11 +144,8 @@ impl CrossStats {
             w.slice_mut(s![.., off..off + ki]).assign(&qa.slice(s![.., ..ki]));
             w.column_mut(k + i).assign(&qa.column(ki).mapv(|v| v * basis.sign[i]));
             off += ki;
-            let mean = if rows > 0 { eq.y.sum() / rows as f64 } else { 0.0 };
-            y_mean.push(mean);
-            y_m2.push(eq.y.iter().map(|v| (v - mean) * (v - mean)).sum());
-            y_raw.push(eq.y.iter().map(|v| v * v).sum());
         }
+        let (y_mean, y_m2, y_raw) = y_moments(data, rows);
         Ok(CrossStats { n_rows: rows, gram: gram(w.view()), colsum: w.sum_axis(Axis(0)), y_mean, y_m2, y_raw })
     }
 
@@ -162,18 +161,10 @@ impl CrossStats {
         {
             return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
         }
-        let (na, nb) = (self.n_rows as f64, other.n_rows as f64);
-        let n = na + nb;
-        let mut y_mean = Vec::new();
-        let mut y_m2 = Vec::new();
-        for i in 0..self.y_mean.len() {
-            let d = other.y_mean[i] - self.y_mean[i];
-            let mean = if n > 0.0 { self.y_mean[i] + d * nb / n } else { 0.0 };
-            let m2 = self.y_m2[i] + other.y_m2[i] + if n > 0.0 { d * d * na * nb / n } else { 0.0 };
-            y_mean.push(mean);
-            y_m2.push(m2);
-        }
-        let y_raw = self.y_raw.iter().zip(&other.y_raw).map(|(a, b)| a + b).collect();
+        let (y_mean, y_m2, y_raw) = merge_moments(
+            (self.n_rows, &self.y_mean, &self.y_m2, &self.y_raw),
+            (other.n_rows, &other.y_mean, &other.y_m2, &other.y_raw),
+        );
         Ok(CrossStats {
             n_rows: self.n_rows + other.n_rows,
             gram: self.gram + other.gram,
@@ -182,6 +173,157 @@ impl CrossStats {
             y_m2,
             y_raw,
         })
+    }
+}
+
+/// Per equation: the mean of y, its sum of squares about the mean, and its raw sum of squares.
+fn y_moments(data: &SystemData, rows: usize) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
+    let (mut y_mean, mut y_m2, mut y_raw) = (Vec::new(), Vec::new(), Vec::new());
+    for eq in &data.equations {
+        let mean = if rows > 0 { eq.y.sum() / rows as f64 } else { 0.0 };
+        y_mean.push(mean);
+        y_m2.push(eq.y.iter().map(|v| (v - mean) * (v - mean)).sum());
+        y_raw.push(eq.y.iter().map(|v| v * v).sum());
+    }
+    (y_mean, y_m2, y_raw)
+}
+
+type Moments<'a> = (usize, &'a [f64], &'a [f64], &'a [f64]);
+
+/// The moments of the union of two sets of rows (Chan et al.'s update for the sum of squares).
+fn merge_moments(a: Moments<'_>, b: Moments<'_>) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
+    let (na, nb) = (a.0 as f64, b.0 as f64);
+    let n = na + nb;
+    let mut y_mean = Vec::new();
+    let mut y_m2 = Vec::new();
+    for i in 0..a.1.len() {
+        let d = b.1[i] - a.1[i];
+        y_mean.push(if n > 0.0 { a.1[i] + d * nb / n } else { 0.0 });
+        y_m2.push(a.2[i] + b.2[i] + if n > 0.0 { d * d * na * nb / n } else { 0.0 });
+    }
+    let y_raw = a.3.iter().zip(b.3).map(|(x, y)| x + y).collect();
+    (y_mean, y_m2, y_raw)
+}
+
+/// One-pass summary of some rows. With Z = [X_1 y_1 .. X_N y_N] (T x P, each equation's
+/// columns together), `r` is a square root of Z'Z (r'r = Z'Z, at most P rows) from tall-skinny
+/// QR: a chunk's R, and the R of two stacked summaries for their union. Orthogonal
+/// transformations only, so nothing is lost to the conditioning of Z'Z. With it come the column
+/// sums of Z and the moments of each y. `finish` turns it into exactly what the two passes
+/// give: Z = Q_Z r for an orthonormal Q_Z, so the QR [U_i u_i] R_i of equation i's columns of
+/// `r` makes Q_Z [U_i u_i] the Q factor of [X_i | y_i], and W'W is the Gram matrix of the
+/// small matrix [U_1 .. U_N, u_1 .. u_N] (P x P): one read of the rows instead of two.
+#[derive(Debug, Clone)]
+pub struct RowSummary {
+    pub n_rows: usize,
+    pub r: Array2<f64>,
+    pub colsum: Array1<f64>,
+    pub y_mean: Vec<f64>,
+    pub y_m2: Vec<f64>,
+    pub y_raw: Vec<f64>,
+}
+
+impl RowSummary {
+    /// The summary of one chunk whose first row is row `row_offset` of the sample.
+    pub fn from_chunk(data: &SystemData, row_offset: usize) -> Result<RowSummary> {
+        let rows = data.validate_chunk(row_offset, false)?;
+        let p: usize = data.equations.iter().map(|e| e.n_regressors() + 1).sum();
+        let mut z = Array2::<f64>::zeros((rows, p).f());
+        let mut off = 0;
+        for eq in &data.equations {
+            let k = eq.n_regressors();
+            z.slice_mut(s![.., off..off + k]).assign(&eq.x);
+            z.column_mut(off + k).assign(&eq.y);
+            off += k + 1;
+        }
+        let colsum = z.sum_axis(Axis(0));
+        let (y_mean, y_m2, y_raw) = y_moments(data, rows);
+        let r = if rows > p { qr_r(z, "QR of a chunk")? } else { z };
+        Ok(RowSummary { n_rows: rows, r, colsum, y_mean, y_m2, y_raw })
+    }
+
+    /// The summary of the union of two sets of rows.
+    pub fn merge(self, other: RowSummary) -> Result<RowSummary> {
+        let p = self.r.ncols();
+        if other.r.ncols() != p
+            || self.colsum.len() != p
+            || other.colsum.len() != p
+            || self.y_mean.len() != other.y_mean.len()
+            || self.y_m2.len() != self.y_mean.len()
+            || other.y_m2.len() != other.y_mean.len()
+            || self.y_raw.len() != self.y_mean.len()
+            || other.y_raw.len() != other.y_mean.len()
+        {
+            return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
+        }
+        let stacked = concatenate(Axis(0), &[self.r.view(), other.r.view()]).expect("same widths");
+        let mut f = Array2::<f64>::zeros(stacked.dim().f());
+        f.assign(&stacked);
+        let r = if f.nrows() > p { qr_r(f, "QR of stacked chunk summaries")? } else { f };
+        let (y_mean, y_m2, y_raw) = merge_moments(
+            (self.n_rows, &self.y_mean, &self.y_m2, &self.y_raw),
+            (other.n_rows, &other.y_mean, &other.y_m2, &other.y_raw),
+        );
+        Ok(RowSummary {
+            n_rows: self.n_rows + other.n_rows,
+            r,
+            colsum: self.colsum + other.colsum,
+            y_mean,
+            y_m2,
+            y_raw,
+        })
+    }
+
+    /// The pass-1 and pass-2 summaries of the same rows, for equations with `widths[i]` =
+    /// K_i + 1 columns each.
+    pub fn finish(&self, widths: &[usize]) -> Result<(RowFactors, CrossStats)> {
+        let n = widths.len();
+        let p: usize = widths.iter().sum();
+        if n == 0 || widths.contains(&0) || p != self.r.ncols() || self.colsum.len() != p || self.y_mean.len() != n {
+            return Err(SurError::InvalidOption("the summary does not match the system".into()));
+        }
+        if self.r.iter().any(|v| !v.is_finite()) {
+            return Err(SurError::InvalidOption("the summary holds non-finite values".into()));
+        }
+        let k = p - n;
+        // At least P rows, so that every equation's block is tall (zero rows change no product).
+        let rows = self.r.nrows().max(p);
+        let mut a = Array2::<f64>::zeros((rows, p).f());
+        a.slice_mut(s![..self.r.nrows(), ..]).assign(&self.r);
+        let mut v = Array2::<f64>::zeros((rows, p).f());
+        let mut colsum = Array1::<f64>::zeros(p);
+        let mut factors = Vec::with_capacity(n);
+        let (mut off, mut qoff) = (0, 0);
+        for (i, &w) in widths.iter().enumerate() {
+            let ki = w - 1;
+            let (q, r) = crate::linalg::thin_qr(a.slice(s![.., off..off + w]).to_owned())?;
+            let sign = if r[[ki, ki]] < 0.0 { -1.0 } else { 1.0 };
+            v.slice_mut(s![.., qoff..qoff + ki]).assign(&q.slice(s![.., ..ki]));
+            v.column_mut(k + i).assign(&q.column(ki).mapv(|x| x * sign));
+            // 1'[Q_i q_i] = 1'[X_i y_i] R^-1 (a zero pivot is named when finishing; a perfect
+            // fit's q is immaterial).
+            let mut safe = r.clone();
+            for j in 0..w {
+                if safe[[j, j]] == 0.0 {
+                    safe[[j, j]] = 1.0;
+                }
+            }
+            let c = self.colsum.slice(s![off..off + w]).dot(&upper_inverse(&safe)?);
+            colsum.slice_mut(s![qoff..qoff + ki]).assign(&c.slice(s![..ki]));
+            colsum[k + i] = if r[[ki, ki]] == 0.0 { 0.0 } else { sign * c[ki] };
+            factors.push(r);
+            off += w;
+            qoff += ki;
+        }
+        let stats = CrossStats {
+            n_rows: self.n_rows,
+            gram: gram(v.view()),
+            colsum,
+            y_mean: self.y_mean.clone(),
+            y_m2: self.y_m2.clone(),
+            y_raw: self.y_raw.clone(),
+        };
+        Ok((RowFactors { n_rows: self.n_rows, r: factors }, stats))
     }
 }
 

@@ -330,8 +330,24 @@ fn log_likelihood_formula_and_maximum() {
     assert!(det2 > det);
 }
 
-fn chunked_prepared(ys: &[Array1<f64>], xs: &[Array2<f64>], bounds: &[usize]) -> Prepared {
-    use crate::{CrossStats, Pass2Basis, RowFactors};
+/// Tree-merges summaries pairwise, to exercise associativity.
+fn tree_merge<T>(mut level: Vec<T>, merge: impl Fn(T, T) -> T) -> T {
+    while level.len() > 1 {
+        let mut next = Vec::new();
+        let mut it = level.into_iter();
+        while let Some(a) = it.next() {
+            next.push(match it.next() {
+                Some(b) => merge(a, b),
+                None => a,
+            });
+        }
+        level = next;
+    }
+    level.pop().unwrap()
+}
+
+fn chunked_prepared(ys: &[Array1<f64>], xs: &[Array2<f64>], bounds: &[usize], one_pass: bool) -> Prepared {
+    use crate::{CrossStats, Pass2Basis, RowFactors, RowSummary};
     let names: Vec<String> = (0..ys.len()).map(|i| format!("e{i}")).collect();
     let regs: Vec<Vec<String>> = xs.iter().map(|x| (0..x.ncols()).map(|j| format!("x{j}")).collect()).collect();
     let chunk = |a: usize, b: usize| {
@@ -344,21 +360,19 @@ fn chunked_prepared(ys: &[Array1<f64>], xs: &[Array2<f64>], bounds: &[usize]) ->
         )
     };
     let pieces: Vec<(usize, usize)> = bounds.windows(2).map(|w| (w[0], w[1])).collect();
-    // pass 1, merged as a tree (pairs), to exercise associativity
-    let mut level: Vec<RowFactors> =
-        pieces.iter().map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap()).collect();
-    while level.len() > 1 {
-        let mut next = Vec::new();
-        let mut it = level.into_iter();
-        while let Some(a) = it.next() {
-            next.push(match it.next() {
-                Some(b) => a.merge(b).unwrap(),
-                None => a,
-            });
-        }
-        level = next;
+    if one_pass {
+        let all = tree_merge(
+            pieces.iter().map(|&(a, b)| RowSummary::from_chunk(&chunk(a, b), a).unwrap()).collect(),
+            |a, b| a.merge(b).unwrap(),
+        );
+        let widths: Vec<usize> = xs.iter().map(|x| x.ncols() + 1).collect();
+        let (factors, stats) = all.finish(&widths).unwrap();
+        return Prepared::from_summaries(names, regs, &factors, &stats).unwrap();
     }
-    let factors = level.pop().unwrap();
+    let factors =
+        tree_merge(pieces.iter().map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap()).collect(), |a, b| {
+            a.merge(b).unwrap()
+        });
     let basis = Pass2Basis::new(&factors).unwrap();
     let mut stats: Option<CrossStats> = None;
     for &(a, b) in pieces.iter().rev() {
@@ -378,8 +392,9 @@ fn chunked_passes_equal_the_in_memory_fit() {
     let opts = opts(Method::IteratedFgls, Divisor::Ml);
     let a = full.estimate(&opts).unwrap();
     let va = full.coef_covariance(&a).unwrap();
-    for bounds in [vec![0, 53], vec![0, 1, 2, 3, 53], vec![0, 10, 11, 40, 53], (0..=53).collect::<Vec<_>>()] {
-        let prep = chunked_prepared(&ys, &xs, &bounds);
+    let all_bounds = [vec![0, 53], vec![0, 1, 2, 3, 53], vec![0, 10, 11, 40, 53], (0..=53).collect::<Vec<_>>()];
+    for (bounds, one_pass) in all_bounds.iter().flat_map(|b| [(b, false), (b, true)]) {
+        let prep = chunked_prepared(&ys, &xs, bounds, one_pass);
         let b = prep.estimate(&opts).unwrap();
         let vb = prep.coef_covariance(&b).unwrap();
         for j in 0..a.coef.len() {

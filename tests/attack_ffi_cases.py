@@ -252,6 +252,27 @@ case("prepare_from_summaries: names vs factors")(lambda: _core.prepare_from_summ
 case("prepare_from_summaries: n_rows mismatch")(lambda: _core.prepare_from_summaries(NAMES, REGS, pass1(), {**pass2(), "n_rows": 3}))
 case("prepare_from_summaries: zero factors", "any")(lambda: _core.prepare_from_summaries(NAMES, REGS, (T, [np.zeros((3, 3)), np.zeros((4, 4))]), pass2()))
 
+# -- row_chunk / row_merge / row_finish (one-pass summaries) -------------------------------------
+def rows():
+    return _core.row_chunk([Y, Y2], [X2, X3], NAMES, REGS)
+
+
+case("row_chunk: good", "any")(rows)
+case("row_chunk: one y, two X")(lambda: _core.row_chunk([Y], [X2, X3], NAMES, REGS))
+case("row_chunk: NaN")(lambda: _core.row_chunk([np.r_[np.nan, Y[1:]], Y2], [X2, X3], NAMES, REGS))
+case("row_chunk: rows differ")(lambda: _core.row_chunk([Y, Y2[:5]], [X2, X3], NAMES, REGS))
+case("row_merge: good", "any")(lambda: _core.row_merge(rows(), rows()))
+case("row_merge: other system")(lambda: _core.row_merge(rows(), _core.row_chunk([Y], [X2], ["a"], [["x0", "x1"]])))
+case("row_merge: missing keys")(lambda: _core.row_merge({}, rows()))
+case("row_merge: y lists of other lengths")(lambda: _core.row_merge(rows(), {**rows(), "y_m2": [1.0]}))
+case("row_finish: good", "any")(lambda: _core.row_finish(rows(), [3, 4]))
+case("row_finish: widths do not add up")(lambda: _core.row_finish(rows(), [3, 3]))
+case("row_finish: a zero width")(lambda: _core.row_finish(rows(), [0, 7]))
+case("row_finish: no widths")(lambda: _core.row_finish(rows(), []))
+case("row_finish: NaN in r")(lambda: _core.row_finish({**rows(), "r": np.full((7, 7), np.nan)}, [3, 4]))
+case("row_finish: colsum short")(lambda: _core.row_finish({**rows(), "colsum": np.zeros(2)}, [3, 4]))
+case("row_finish: wrong types")(lambda: _core.row_finish({**rows(), "n_rows": "x"}, [3, 4]))
+
 # -- fit_many (one array per equation, systems' rows stacked, system g = rows bounds[g]:bounds[g+1])
 FM = ([Y, Y2], [X2, X3])
 case("fit_many: empty", "any")(lambda: _core.fit_many([], [], [0], "fgls", "ml", 1e-10, 10, 2))

@@ -62,6 +62,23 @@ def pass2_chunk(
 def pass2_merge(a: dict[str, object], b: dict[str, object]) -> dict[str, object]:
     """Merges two pass-2 summaries."""
 
+def row_chunk(
+    ys: Sequence[_F64_1D],
+    xs: Sequence[_F64_2D],
+    names: Sequence[str],
+    regressors: Sequence[Sequence[str]],
+    row_offset: int = 0,
+) -> dict[str, object]:
+    """One-pass summary of a chunk: ``r`` (a square root of Z'Z for Z = [X_1 y_1 .. X_N y_N],
+    at most P rows), ``colsum`` (of Z), ``n_rows``, ``y_mean``, ``y_m2``, ``y_raw``."""
+
+def row_merge(a: dict[str, object], b: dict[str, object]) -> dict[str, object]:
+    """Merges two one-pass summaries (QR of the stacked square roots)."""
+
+def row_finish(summary: dict[str, object], widths: Sequence[int]) -> tuple[_Factors, dict[str, object]]:
+    """The pass-1 factors and pass-2 statistics of the rows a one-pass summary covers, for
+    equations of ``widths[i]`` = K_i + 1 columns."""
+
 def prepare_from_summaries(
     names: Sequence[str],
     regressors: Sequence[Sequence[str]],

@@ -1,11 +1,12 @@
 """Fits from rows that arrive in chunks: iterators of DataFrames or arrays, and Parquet files.
 
-A streamed fit reads the rows twice and keeps only small summaries in between:
-
-* pass 1 reduces each chunk to the R factor of every equation's ``[X_i | y_i]`` and merges it
-  into a running factor (``(K_i + 1)^2`` numbers per equation);
-* pass 2 turns each chunk into its rows of the orthonormal basis of the merged factors and adds
-  their cross-products (a P x P matrix, P = K + N).
+A streamed fit reads the rows once and keeps only a small summary: each chunk is reduced to
+the R factor of the QR of all its columns ``[X_1 y_1 .. X_N y_N]`` (P x P, P = K + N), merged
+into a running factor (the R of two stacked R factors), with column sums and the moments of each
+y. From the merged factor, one small QR per equation gives what a second pass over the rows
+would: the R factor of every equation's ``[X_i | y_i]`` and the cross-products of the
+orthonormal basis ``W`` (orthogonal transformations only: no digits are lost to squaring the
+conditioning, as forming ``Z'Z`` would). Dask fits use two passes over the partitions.
 
 The result is exactly the in-memory computation, reordered: coefficients, standard errors, Omega,
 R-squared and the log-likelihood agree with :meth:`EquationSystem.fit` to rounding, whatever the
@@ -342,7 +343,7 @@ def _is_pair(chunk: Any) -> bool:
     return isinstance(chunk, (tuple, list)) and len(chunk) == 2 and not isinstance(chunk[0], str)
 
 
-# -- the two passes ----------------------------------------------------------------------------
+# -- reading the rows --------------------------------------------------------------------------
 @dataclass(frozen=True)
 class StreamInfo:
     """Where the rows of a fit over chunks came from.
@@ -353,7 +354,8 @@ class StreamInfo:
     n_chunks : chunks (record batches, partitions) read in each pass
     n_rows_read : rows read in each pass
     n_rows_dropped : rows skipped for a missing or infinite value (``missing="drop"``)
-    seconds : wall time of pass 1 and pass 2
+    seconds : wall time of (reading and summarising the rows, finishing the summaries) for
+        chunks and Parquet files, which are read once; of (pass 1, pass 2) for Dask
     """
 
     source: str
@@ -411,13 +413,14 @@ def run_passes(
     source: str = "chunks",
     what: str = "chunk",
 ) -> tuple[Any, Any, Any, StreamInfo]:
-    """Both passes over the chunks ``open_chunks()`` yields (called once per pass). ``layout``
-    is a layout, or a function making one from the first chunk. Returns (layout, factors,
-    stats, info)."""
-    factors = None
+    """One read of the chunks ``open_chunks()`` yields: each chunk is reduced to a one-pass
+    summary (a tall-skinny QR of all its columns), the summaries are merged, and the result is
+    finished into the pass-1 factors and pass-2 statistics. ``layout`` is a layout, or a
+    function making one from the first chunk. Returns (layout, factors, stats, info)."""
+    summary = None
     read = dropped = chunks = 0
     t0 = time.perf_counter()
-    bar = _bar(progress, "blocksur pass 1/2 (factors)", total)
+    bar = _bar(progress, "blocksur (one pass over the rows)", total)
     it = iter(open_chunks())
     try:
         for chunk in it:
@@ -427,7 +430,8 @@ def run_passes(
             ys, xs, n_read, n_drop = layout.extract(chunk, f"{what} {chunks}")
             del chunk
             if len(ys[0]):
-                factors = merge_factors(factors, _core.pass1_chunk(ys, xs, names, regs, read))
+                part = _core.row_chunk(ys, xs, names, regs, read)
+                summary = part if summary is None else _core.row_merge(summary, part)
             del ys, xs
             read += n_read
             dropped += n_drop
@@ -438,30 +442,12 @@ def run_passes(
         _close(it)
     if chunks == 0:
         raise InputError(f"the {source} yielded no chunks")
-    if factors is None:
+    if summary is None:
         raise InputError(
             f"the {source} held no rows" + (f" ({dropped} rows dropped for missing values)" if dropped else "")
         )
     t1 = time.perf_counter()
-    stats = None
-    read2 = 0
-    bar = _bar(progress, "blocksur pass 2/2 (cross-products)", read)
-    it = iter(open_chunks())
-    try:
-        for i, chunk in enumerate(it):
-            ys, xs, n_read, _ = layout.extract(chunk, f"{what} {i}")
-            del chunk
-            if len(ys[0]):
-                stats = merge_stats(stats, _core.pass2_chunk(ys, xs, factors, read2))
-            del ys, xs
-            read2 += n_read
-            bar.update(n_read)
-    finally:
-        bar.close()
-        _close(it)
-    if stats is None:
-        raise InputError("the second pass read no rows: the chunk source must yield the same rows each time")
-    check_same_rows(factors, stats, layout.names)
+    factors, stats = _core.row_finish(summary, [len(r) + 1 for r in layout.regressors])
     info = StreamInfo(source, chunks, read, dropped, (t1 - t0, time.perf_counter() - t1))
     return layout, factors, stats, info
 
@@ -524,7 +510,7 @@ class _RowlessSystem(SystemLabels):
 
     def _not_kept(self) -> DataNotKeptError:
         return DataNotKeptError(
-            f"this fit was computed from {self._source} in two passes and keeps no rows, so "
+            f"this fit was computed from {self._source} and keeps no rows, so "
             "residuals, fitted values, robust covariances, the intercept F test and saving "
             "(to_dict, pickle) are not available; compute row-level quantities chunk by chunk "
             "with fit.predict, or fit the rows in memory with EquationSystem"
@@ -642,11 +628,10 @@ def _opener(chunks: Any) -> Callable[[], Iterable[Any]]:
             return it
 
         return open_chunks
-    if isinstance(chunks, Iterator) or not isinstance(chunks, Iterable):
+    if not isinstance(chunks, Iterable):
         raise InputError(
-            "a fit over chunks reads the rows twice: give a list of chunks or a function that "
-            "returns a fresh iterator of chunks each time it is called (not a generator or an "
-            "iterator, which can be read only once)"
+            f"chunks must be a list, an iterator or generator of chunks, or a function returning "
+            f"one; got a {type(chunks).__name__}"
         )
     if _is_single(chunks):
         raise InputError(
@@ -688,14 +673,14 @@ def fit_chunks(
     inference: str = "z",
     progress: bool | None = None,
 ) -> RowlessFit:
-    """Estimates a system from rows that arrive in chunks, reading them twice and holding one
+    """Estimates a system from rows that arrive in chunks, reading them once and holding one
     chunk at a time.
 
     Parameters
     ----------
     chunks
-        A function returning a fresh iterable of chunks each time it is called (it is called
-        twice), or a list of chunks. A chunk is either a table (pandas or polars DataFrame,
+        A list, iterator or generator of chunks, or a function returning an iterable of chunks
+        (called once). A chunk is either a table (pandas or polars DataFrame,
         pyarrow Table or RecordBatch, dict of columns), or a pair ``(ys, xs)`` of arrays:
         ``ys`` a list of N arrays of shape (t,) or one (t, N) array, ``xs`` a list of N arrays of
         shape (t, K_i). Chunks may have any number of rows, one included.
@@ -789,7 +774,7 @@ def fit_parquet(
     inference: str = "z",
     progress: bool | None = None,
 ) -> RowlessFit:
-    """Estimates a system from Parquet files, read twice in record batches of ``batch_size``
+    """Estimates a system from Parquet files, read once in record batches of ``batch_size``
     rows with pyarrow (only the columns the equations use).
 
     ``source`` is a file, a directory (its ``.parquet`` files in sorted order, subdirectories
