@@ -560,7 +560,7 @@ def main(argv=None):
         results["curve_t"] = pts
         report += [f"## Against T (N = {n_t}, K_i = {k_t}; FGLS + standard errors, ML Omega)", "",
                    "In memory up to 10^6 rows; the Parquet stream (`fit_parquet`, record batches of 65,536 rows from row groups of "
-                   f"{BLOCK} rows, two passes, snappy-compressed file) at every T.", "",
+                   f"{BLOCK} rows, one read of the file, snappy-compressed) at every T.", "",
                    table(["T", "floor W'W", "blocksur in memory", "numpy ref", "Parquet stream",
                           "in-memory/stream", "stream M rows/s", "in-memory peak RSS", "stream peak RSS",
                           "ref growth", "floor growth", "stream vs in-memory", "stream vs ref",
