@@ -190,11 +190,10 @@ impl Prepared {
 
 /// Column 2-norm, computed with scaling so that huge or tiny columns neither overflow nor underflow.
 pub(crate) fn norm(v: ArrayView1<f64>) -> f64 {
-    let m = v.iter().fold(0.0f64, |a, b| a.max(b.abs()));
-    if m == 0.0 {
-        return 0.0;
+    match v.as_slice() {
+        Some(s) => scaled_norm(s),
+        None => scaled_norm(&v.to_vec()),
     }
-    m * v.iter().map(|x| (x / m) * (x / m)).sum::<f64>().sqrt()
 }
 
 fn tss(y: ArrayView1<f64>) -> (f64, f64) {

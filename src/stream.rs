@@ -321,7 +321,7 @@ impl RowSummary {
         let stacked = concatenate(Axis(0), &[self.r.view(), other.r.view()]).expect("same widths");
         let mut f = Array2::<f64>::zeros(stacked.dim().f());
         f.assign(&stacked);
-        let r = if f.nrows() > p { qr_r(f, "QR of stacked chunk summaries")? } else { f };
+        let r = qr_r(f, "QR of stacked chunk summaries")?;
         let (y_mean, y_m2, y_raw) = merge_moments(
             (self.n_rows, &self.y_mean, &self.y_m2, &self.y_raw),
             (other.n_rows, &other.y_mean, &other.y_m2, &other.y_raw),
