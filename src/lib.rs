@@ -26,6 +26,7 @@ pub mod error;
 pub mod estimate;
 pub mod linalg;
 pub mod prepare;
+mod small;
 pub mod stream;
 pub mod system;
 

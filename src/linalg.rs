@@ -231,7 +231,7 @@ pub fn upper_solve(r: &Array2<f64>, b: &Array1<f64>) -> Result<Array1<f64>> {
 }
 
 /// Relative eigenvalue floor below which Omega counts as singular.
-fn singular_floor(n: usize) -> f64 {
+pub(crate) fn singular_floor(n: usize) -> f64 {
     (64.0 * n as f64 * f64::EPSILON).max(1e-13)
 }
 
@@ -382,8 +382,26 @@ pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize, stop: &dyn Fn() -> 
     if m > 24 {
         return lapack_qr_in_place(buf, t, m);
     }
-    let mut r = Array2::<f64>::zeros((m, m));
+    let mut r = vec![0.0f64; m * m];
     let mut tau = vec![0.0f64; m];
+    householder_qr(buf, t, m, &mut r, &mut tau, stop)?;
+    Ok(Array2::from_shape_vec((m, m), r).expect("m x m"))
+}
+
+/// The written-out Householder QR of `thin_qr_in_place`, with caller-owned space: `buf` holds
+/// the column-major T x m matrix (T >= m) and gets Q; `r` (m x m, row-major, every entry
+/// written) gets R; `tau` (m) is workspace. Small systems call it with buffers they reuse.
+pub(crate) fn householder_qr(
+    buf: &mut [f64],
+    t: usize,
+    m: usize,
+    r: &mut [f64],
+    tau: &mut [f64],
+    stop: &dyn Fn() -> bool,
+) -> Result<()> {
+    debug_assert!(buf.len() == t * m && t >= m && r.len() == m * m && tau.len() == m);
+    r.fill(0.0);
+    tau.fill(0.0);
     // Factor: column j below the diagonal becomes the reflector v_j (v_j[0] = 1 implied).
     for j in 0..m {
         if stop() {
@@ -403,7 +421,7 @@ pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize, stop: &dyn Fn() -> 
             tau[j] = -v0 / alpha;
             x[0] = alpha;
         }
-        r[[j, j]] = x[0];
+        r[j * m + j] = x[0];
         let v = &x[1..];
         let tj = tau[j];
         for c in 0..(m - j - 1) {
@@ -411,7 +429,7 @@ pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize, stop: &dyn Fn() -> 
             if tj != 0.0 {
                 reflect(col, v, tj);
             }
-            r[[j, j + 1 + c]] = col[0];
+            r[j * m + j + 1 + c] = col[0];
         }
     }
     // Q = H_0 .. H_{m-1} [I_m; 0], built backwards in place as in org2r.
@@ -434,7 +452,7 @@ pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize, stop: &dyn Fn() -> 
         colj[j] = 1.0 - tj;
         colj[..j].fill(0.0);
     }
-    Ok(r)
+    Ok(())
 }
 
 /// col <- (I - tau v v') col for the reflector v = [1; tail].

@@ -206,7 +206,7 @@ fn tss(y: ArrayView1<f64>) -> (f64, f64) {
 
 /// Relative tolerance on the diagonal of the column-scaled R below which a column counts as a
 /// linear combination of the earlier ones (the usual max(T, K) * eps rank rule).
-fn rank_tol(t: usize, k: usize) -> f64 {
+pub(crate) fn rank_tol(t: usize, k: usize) -> f64 {
     10.0 * (t.max(k) as f64) * f64::EPSILON
 }
 

@@ -625,21 +625,9 @@ fn fit_many<'py>(
     let (names, regs) = default_names(n, &xs);
     let yv: Vec<_> = ys.iter().map(|y| y.as_array()).collect();
     let xv: Vec<_> = xs.iter().map(|x| x.as_array()).collect();
-    let systems: Vec<SystemData> = bounds
-        .windows(2)
-        .map(|w| {
-            SystemData::new(
-                (0..n)
-                    .map(|i| {
-                        Equation::new(names[i].clone(), yv[i].slice(ndarray::s![w[0]..w[1]]), xv[i].slice(ndarray::s![w[0]..w[1], ..]))
-                            .with_regressors(regs[i].clone())
-                    })
-                    .collect(),
-            )
-        })
-        .collect();
+    let systems = crate::batch::Stacked::new(yv, xv, bounds, names, regs);
     let stop = Interrupt::default();
-    let results = detach_gated(py, || crate::batch::fit_many(&systems, &opts, threads, &|| stop.requested()));
+    let results = detach_gated(py, || crate::batch::fit_batch(&systems, &opts, threads, &|| stop.requested()));
     if results.iter().any(|r| matches!(r, Err(SurError::Interrupted))) {
         return Err(stop.raise(py, SurError::Interrupted));
     }
@@ -653,12 +641,12 @@ fn fit_many<'py>(
     for (i, r) in results.into_iter().enumerate() {
         match r {
             Ok(f) => {
-                coef.row_mut(i).assign(&f.estimate.coef);
+                coef.row_mut(i).assign(&f.coef);
                 se.row_mut(i).assign(&f.se);
-                omega.index_axis_mut(ndarray::Axis(0), i).assign(&f.estimate.omega);
-                n_iter[i] = f.estimate.n_iter;
-                converged[i] = f.estimate.converged;
-                loglik[i] = f.loglik.unwrap_or(f64::NEG_INFINITY);
+                omega.index_axis_mut(ndarray::Axis(0), i).assign(&f.omega);
+                n_iter[i] = f.n_iter;
+                converged[i] = f.converged;
+                loglik[i] = f.loglik;
                 errors.append(py.None())?;
             }
             Err(e) => errors.append((e.kind(), e.to_string()))?,
