@@ -412,6 +412,8 @@ def main(argv=None):
     ap.add_argument("--quick", action="store_true", help="small sizes, few repeats (smoke test)")
     ap.add_argument("--only", default=None,
                     help="comma-separated sections: n (curve vs N), t (curve vs T), targets")
+    ap.add_argument("--targets", default="1,2,3,4,5",
+                    help="with the targets section: which of the five targets to run (comma-separated numbers)")
     ap.add_argument("--out", default=os.path.join(HERE, "out"))
     ap.add_argument("--data-dir", default=None, help="where to write the Parquet files (default: a temp dir)")
     ap.add_argument("--keep-data", action="store_true", help="keep the Parquet files")
@@ -437,6 +439,7 @@ def main(argv=None):
         return 0
 
     sections = set((a.only or "n,t,targets").split(","))
+    tsel = set(a.targets.split(","))
     q = a.quick
     os.makedirs(a.out, exist_ok=True)
     stamp = _dt.datetime.now().strftime("%Y%m%d-%H%M%S")
@@ -522,7 +525,7 @@ def main(argv=None):
     paths = {}
     n_t, k_t = 10, 5
     ts = [1000, 10_000, 100_000] if q else [1000, 10_000, 100_000, 1_000_000, 10_000_000]
-    if "t" in sections or "targets" in sections:
+    if "t" in sections or ("targets" in sections and "3" in tsel):
         for t in (ts if "t" in sections else ts[-1:]):
             path = os.path.join(data_dir, f"rows-{t}.parquet")
             if not os.path.exists(path):
@@ -572,95 +575,102 @@ def main(argv=None):
     if "targets" in sections:
         wait_idle()
         log("\n== targets")
-        # 1. N=2000, T=500, K_i=4, Ledoit-Wolf: FGLS with standard errors
-        n1 = (300, 100, 4) if q else (2000, 500, 4)
-        r1 = run_worker({"kind": "bs", "n": n1[0], "t": n1[1], "k": n1[2], "omega": "ledoit-wolf",
-                         "solver": "auto", "repeats": 1 if not q else 3}, log)
-        ok = "error" not in r1 and r1.get("se_of") == "all" and r1["median"] < 60 and r1["peak"] < 8 * GB
-        targets.append([f"N={n1[0]}, T={n1[1]}, K_i={n1[2]}, Ledoit-Wolf: FGLS with standard errors",
-                        "< 60 s, < 8 GB peak", f"{fmt_t(r1.get('median'))}, peak {fmt_b(r1.get('peak'))} "
-                        f"({r1.get('solver')}, shrinkage {r1.get('shrinkage', float('nan')):.3f})",
-                        "PASS" if ok else "FAIL"])
-        log(f"  target 1: {targets[-1]}")
-        wait_idle()
-        # 2. N=10000, T=1000, K_i=4 via CG: coefficients
-        n2 = (1000, 200, 4) if q else (10_000, 1000, 4)
-        r2 = run_worker({"kind": "bs", "n": n2[0], "t": n2[1], "k": n2[2], "omega": "ledoit-wolf",
-                         "solver": "cg", "repeats": 1}, log, timeout=3600)
-        c2 = float(np.median(r2["coef_seconds"])) if r2.get("coef_seconds") else float("nan")
-        ok = "error" not in r2 and r2.get("solver") == "cg" and c2 < 600 and r2["peak"] < 16 * GB
-        targets.append([f"N={n2[0]}, T={n2[1]}, K_i={n2[2]} via CG (Ledoit-Wolf): coefficients",
-                        "< 10 min, < 16 GB peak",
-                        f"coefficients {fmt_t(c2)}, peak {fmt_b(r2.get('peak'))} (CG iterations "
-                        f"{r2.get('cg_iterations')})", "PASS" if ok else "FAIL"])
-        log(f"  target 2: {targets[-1]}")
-        wait_idle()
-        # 3. Parquet stream at the largest T against the in-memory fit of the same rows
-        t3 = ts[-1]
-        sv_s, sv_m = os.path.join(data_dir, "t3-stream.npz"), os.path.join(data_dir, "t3-inmem.npz")
-        reps3 = 3 if q else 2
-        s3 = run_worker({"kind": "stream", "n": n_t, "t": t3, "k": k_t, "path": paths[t3], "repeats": reps3,
-                         "save": sv_s}, log)
-        m3 = run_worker({"kind": "inmem_from_parquet", "n": n_t, "t": t3, "k": k_t, "path": paths[t3],
-                         "repeats": reps3, "save": sv_m}, log)
-        eq3 = compare_saved(sv_s, sv_m) if "error" not in s3 and "error" not in m3 else {}
-        # the numpy reference on the same rows, as a third opinion on which of the two is off
-        sv_r = os.path.join(data_dir, "t3-ref.npz")
-        need = 8 * t3 * (n_t * (k_t + 1)) * 2.5
-        if _available_memory() > need + 2 * GB:
-            r3 = run_worker({"kind": "ref", "n": n_t, "t": t3, "k": k_t, "repeats": 1, "save": sv_r}, log)
-        else:
-            r3 = {"error": f"skipped: needs about {need / GB:.0f} GB"}
-        eq3_ref = {"stream": compare_saved(sv_s, sv_r), "inmem": compare_saved(sv_m, sv_r)}
-        thr = m3.get("median", np.nan) / s3.get("median", np.nan)
-        worst = max(eq3.values()) if eq3 else float("nan")
-        ok = s3.get("peak", 1e99) < 1 * GB and thr >= 0.5 and worst <= 1e-10
-        targets.append([f"T={t3:.0e}, N={n_t}, K_i={k_t} from Parquet in chunks",
-                        "peak < 1 GB, throughput >= 50% of in-memory, equal to 1e-10",
-                        f"peak {fmt_b(s3.get('peak'))}; stream {fmt_t(s3.get('median'))} vs in-memory fit "
-                        f"{fmt_t(m3.get('median'))} (data already in memory; reading it took "
-                        f"{fmt_t(m3.get('read_seconds'))}): throughput {100 * thr:.0f}%; "
-                        f"max rel. difference {worst:.1e}; against the numpy reference (coef, se): stream "
-                        f"{worst_rel(eq3_ref['stream'])}, in-memory {worst_rel(eq3_ref['inmem'])}"
-                        + (f" ({r3['error']})" if "error" in r3 else ""), "PASS" if ok else "FAIL"])
-        log(f"  target 3: {targets[-1]}")
-        wait_idle()
-        # 4. Dask LocalCluster equals the in-memory fit
-        t4 = 100_000 if q else 1_000_000
-        p4 = paths.get(t4) or os.path.join(data_dir, f"rows-{t4}.parquet")
-        if not os.path.exists(p4):
-            write_parquet(p4, n_t, t4, k_t)
-        sv_d, sv_i = os.path.join(data_dir, "t4-dask.npz"), os.path.join(data_dir, "t4-inmem.npz")
-        d4 = run_worker({"kind": "dask", "n": n_t, "t": t4, "k": k_t, "path": p4, "save": sv_d}, log)
-        i4 = run_worker({"kind": "inmem_from_parquet", "n": n_t, "t": t4, "k": k_t, "path": p4, "save": sv_i}, log)
-        eq4 = compare_saved(sv_d, sv_i) if "error" not in d4 and "error" not in i4 else {}
-        sv_r4 = os.path.join(data_dir, "t4-ref.npz")
-        run_worker({"kind": "ref", "n": n_t, "t": t4, "k": k_t, "repeats": 1, "save": sv_r4}, log)
-        eq4_ref = {"dask": compare_saved(sv_d, sv_r4), "inmem": compare_saved(sv_i, sv_r4)}
-        worst4 = max(eq4.values()) if eq4 else float("nan")
-        targets.append([f"Dask LocalCluster (2 worker processes), T={t4:.0e}, N={n_t}, K_i={k_t}, "
-                        "dask DataFrame from Parquet", "equals the in-memory fit to 1e-10",
-                        f"max rel. difference {worst4:.1e} (coef, se, Omega, loglik); against the numpy "
-                        f"reference (coef, se): Dask {worst_rel(eq4_ref['dask'])}, in-memory "
-                        f"{worst_rel(eq4_ref['inmem'])}; cluster fit {fmt_t(d4.get('median'))} (cluster "
-                        "start not included)", "PASS" if worst4 <= 1e-10 else "FAIL"])
-        log(f"  target 4: {targets[-1]}")
-        wait_idle()
-        # 5. many systems
-        g5 = 2000 if q else 10_000
-        mb = run_worker({"kind": "many_batch", "g": g5, "n": 3, "t": 60, "k": 3, "repeats": 5}, log)
-        loop_n = 500 if q else 2000
-        ml = run_worker({"kind": "many_loop", "g": g5, "n": 3, "t": 60, "k": 3, "loop_systems": loop_n,
-                         "repeats": 3}, log)
-        loop_full = ml.get("median", np.nan) * g5 / loop_n
-        speed = loop_full / mb.get("median", np.nan)
-        cpu = mb.get("cpu_over_wall", np.nan)
-        ok = speed >= 10 and cpu >= 1.5
-        targets.append([f"{g5} systems of N=3, T=60, K_i=3 (fit_stacked, FGLS + se)",
-                        ">= 10x a Python loop of EquationSystem(...).fit, both cores",
-                        f"batch {fmt_t(mb.get('median'))} (CPU/wall {cpu:.2f}); loop {fmt_t(loop_full)} "
-                        f"(median of {loop_n} systems x {g5 // loop_n}): {speed:.0f}x", "PASS" if ok else "FAIL"])
-        log(f"  target 5: {targets[-1]}")
+        r1 = r2 = s3 = m3 = r3 = d4 = i4 = mb = ml = {}
+        eq3, eq3_ref, eq4, eq4_ref = {}, {}, {}, {}
+        if "1" in tsel:
+            # 1. N=2000, T=500, K_i=4, Ledoit-Wolf: FGLS with standard errors
+            n1 = (300, 100, 4) if q else (2000, 500, 4)
+            r1 = run_worker({"kind": "bs", "n": n1[0], "t": n1[1], "k": n1[2], "omega": "ledoit-wolf",
+                             "solver": "auto", "repeats": 1 if not q else 3}, log)
+            ok = "error" not in r1 and r1.get("se_of") == "all" and r1["median"] < 60 and r1["peak"] < 8 * GB
+            targets.append([f"N={n1[0]}, T={n1[1]}, K_i={n1[2]}, Ledoit-Wolf: FGLS with standard errors",
+                            "< 60 s, < 8 GB peak", f"{fmt_t(r1.get('median'))}, peak {fmt_b(r1.get('peak'))} "
+                            f"({r1.get('solver')}, shrinkage {r1.get('shrinkage', float('nan')):.3f})",
+                            "PASS" if ok else "FAIL"])
+            log(f"  target 1: {targets[-1]}")
+            wait_idle()
+        if "2" in tsel:
+            # 2. N=10000, T=1000, K_i=4 via CG: coefficients
+            n2 = (1000, 200, 4) if q else (10_000, 1000, 4)
+            r2 = run_worker({"kind": "bs", "n": n2[0], "t": n2[1], "k": n2[2], "omega": "ledoit-wolf",
+                             "solver": "cg", "repeats": 1}, log, timeout=3600)
+            c2 = float(np.median(r2["coef_seconds"])) if r2.get("coef_seconds") else float("nan")
+            ok = "error" not in r2 and r2.get("solver") == "cg" and c2 < 600 and r2["peak"] < 16 * GB
+            targets.append([f"N={n2[0]}, T={n2[1]}, K_i={n2[2]} via CG (Ledoit-Wolf): coefficients",
+                            "< 10 min, < 16 GB peak",
+                            f"coefficients {fmt_t(c2)}, peak {fmt_b(r2.get('peak'))} (CG iterations "
+                            f"{r2.get('cg_iterations')})", "PASS" if ok else "FAIL"])
+            log(f"  target 2: {targets[-1]}")
+            wait_idle()
+        if "3" in tsel:
+            # 3. Parquet stream at the largest T against the in-memory fit of the same rows
+            t3 = ts[-1]
+            sv_s, sv_m = os.path.join(data_dir, "t3-stream.npz"), os.path.join(data_dir, "t3-inmem.npz")
+            reps3 = 3 if q else 2
+            s3 = run_worker({"kind": "stream", "n": n_t, "t": t3, "k": k_t, "path": paths[t3], "repeats": reps3,
+                             "save": sv_s}, log)
+            m3 = run_worker({"kind": "inmem_from_parquet", "n": n_t, "t": t3, "k": k_t, "path": paths[t3],
+                             "repeats": reps3, "save": sv_m}, log)
+            eq3 = compare_saved(sv_s, sv_m) if "error" not in s3 and "error" not in m3 else {}
+            # the numpy reference on the same rows, as a third opinion on which of the two is off
+            sv_r = os.path.join(data_dir, "t3-ref.npz")
+            need = 8 * t3 * (n_t * (k_t + 1)) * 2.5
+            if _available_memory() > need + 2 * GB:
+                r3 = run_worker({"kind": "ref", "n": n_t, "t": t3, "k": k_t, "repeats": 1, "save": sv_r}, log)
+            else:
+                r3 = {"error": f"skipped: needs about {need / GB:.0f} GB"}
+            eq3_ref = {"stream": compare_saved(sv_s, sv_r), "inmem": compare_saved(sv_m, sv_r)}
+            thr = m3.get("median", np.nan) / s3.get("median", np.nan)
+            worst = max(eq3.values()) if eq3 else float("nan")
+            ok = s3.get("peak", 1e99) < 1 * GB and thr >= 0.5 and worst <= 1e-10
+            targets.append([f"T={t3:.0e}, N={n_t}, K_i={k_t} from Parquet in chunks",
+                            "peak < 1 GB, throughput >= 50% of in-memory, equal to 1e-10",
+                            f"peak {fmt_b(s3.get('peak'))}; stream {fmt_t(s3.get('median'))} vs in-memory fit "
+                            f"{fmt_t(m3.get('median'))} (data already in memory; reading it took "
+                            f"{fmt_t(m3.get('read_seconds'))}): throughput {100 * thr:.0f}%; "
+                            f"max rel. difference {worst:.1e}; against the numpy reference (coef, se): stream "
+                            f"{worst_rel(eq3_ref['stream'])}, in-memory {worst_rel(eq3_ref['inmem'])}"
+                            + (f" ({r3['error']})" if "error" in r3 else ""), "PASS" if ok else "FAIL"])
+            log(f"  target 3: {targets[-1]}")
+            wait_idle()
+        if "4" in tsel:
+            # 4. Dask LocalCluster equals the in-memory fit
+            t4 = 100_000 if q else 1_000_000
+            p4 = paths.get(t4) or os.path.join(data_dir, f"rows-{t4}.parquet")
+            if not os.path.exists(p4):
+                write_parquet(p4, n_t, t4, k_t)
+            sv_d, sv_i = os.path.join(data_dir, "t4-dask.npz"), os.path.join(data_dir, "t4-inmem.npz")
+            d4 = run_worker({"kind": "dask", "n": n_t, "t": t4, "k": k_t, "path": p4, "save": sv_d}, log)
+            i4 = run_worker({"kind": "inmem_from_parquet", "n": n_t, "t": t4, "k": k_t, "path": p4, "save": sv_i}, log)
+            eq4 = compare_saved(sv_d, sv_i) if "error" not in d4 and "error" not in i4 else {}
+            sv_r4 = os.path.join(data_dir, "t4-ref.npz")
+            run_worker({"kind": "ref", "n": n_t, "t": t4, "k": k_t, "repeats": 1, "save": sv_r4}, log)
+            eq4_ref = {"dask": compare_saved(sv_d, sv_r4), "inmem": compare_saved(sv_i, sv_r4)}
+            worst4 = max(eq4.values()) if eq4 else float("nan")
+            targets.append([f"Dask LocalCluster (2 worker processes), T={t4:.0e}, N={n_t}, K_i={k_t}, "
+                            "dask DataFrame from Parquet", "equals the in-memory fit to 1e-10",
+                            f"max rel. difference {worst4:.1e} (coef, se, Omega, loglik); against the numpy "
+                            f"reference (coef, se): Dask {worst_rel(eq4_ref['dask'])}, in-memory "
+                            f"{worst_rel(eq4_ref['inmem'])}; cluster fit {fmt_t(d4.get('median'))} (cluster "
+                            "start not included)", "PASS" if worst4 <= 1e-10 else "FAIL"])
+            log(f"  target 4: {targets[-1]}")
+            wait_idle()
+        if "5" in tsel:
+            # 5. many systems
+            g5 = 2000 if q else 10_000
+            mb = run_worker({"kind": "many_batch", "g": g5, "n": 3, "t": 60, "k": 3, "repeats": 5}, log)
+            loop_n = 500 if q else 2000
+            ml = run_worker({"kind": "many_loop", "g": g5, "n": 3, "t": 60, "k": 3, "loop_systems": loop_n,
+                             "repeats": 3}, log)
+            loop_full = ml.get("median", np.nan) * g5 / loop_n
+            speed = loop_full / mb.get("median", np.nan)
+            cpu = mb.get("cpu_over_wall", np.nan)
+            ok = speed >= 10 and cpu >= 1.5
+            targets.append([f"{g5} systems of N=3, T=60, K_i=3 (fit_stacked, FGLS + se)",
+                            ">= 10x a Python loop of EquationSystem(...).fit, both cores",
+                            f"batch {fmt_t(mb.get('median'))} (CPU/wall {cpu:.2f}); loop {fmt_t(loop_full)} "
+                            f"(median of {loop_n} systems x {g5 // loop_n}): {speed:.0f}x", "PASS" if ok else "FAIL"])
+            log(f"  target 5: {targets[-1]}")
         results["targets"] = {"1": r1, "2": r2, "3": {"stream": s3, "inmem": m3, "ref": r3, "agree": eq3,
                                                      "agree_ref": eq3_ref},
                               "4": {"dask": d4, "inmem": i4, "agree": eq4, "agree_ref": eq4_ref},

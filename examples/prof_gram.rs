@@ -66,4 +66,28 @@ fn main() {
         Prepared::new_matrix_free(&data, &|| false).unwrap();
     });
     println!("N={n} T={t} K_i={k} P={p}: gram {g:.2} ms, step 0 (matrix-free prepare) {mf:.2} ms, prepare {prep:.2} ms ({:.2}x gram)", prep / g);
+    // one further IFGLS iteration: (12 steps - 2 steps) / 10, on the prepared system
+    let prepared = Prepared::new(&data).unwrap();
+    let steps = |m: usize| blocksur::FitOptions { method: blocksur::Method::IteratedFgls, tol: 0.0, max_iter: m, ..Default::default() };
+    let (o2, o12) = (steps(2), steps(12));
+    let t2 = time(reps, || {
+        prepared.estimate(&o2).unwrap();
+    });
+    let t12 = time(reps, || {
+        prepared.estimate(&o12).unwrap();
+    });
+    let kk = n * k;
+    let m = {
+        let a = Array2::from_shape_fn((kk, kk), |_| rnd());
+        let mut m = a.t().dot(&a);
+        for i in 0..kk {
+            m[[i, i]] += kk as f64;
+        }
+        blocksur::linalg::to_fortran(&m)
+    };
+    let chol = time(reps, || {
+        blocksur::linalg::chol_lower(m.clone()).unwrap();
+    });
+    let per = (t12 - t2) / 10.0;
+    println!("IFGLS: one further iteration {per:.3} ms ({:.1}% of gram); Cholesky of the K={kk} GLS matrix {chol:.3} ms", 100.0 * per / g);
 }

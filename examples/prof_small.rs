@@ -1,4 +1,5 @@
 // Times the data pass on a small system (the per-call overhead case). Not part of the tests.
+// `--prepare-only` loops the data pass alone (for `perf record`).
 use blocksur::{Equation, Prepared, SystemData};
 use ndarray::{Array1, Array2};
 use std::time::Instant;
@@ -22,6 +23,13 @@ fn main() {
         Prepared::new(&data).unwrap();
     }
     println!("prepare: {:.1} us", t0.elapsed().as_secs_f64() * 1e6 / reps as f64);
+    if std::env::args().any(|a| a == "--prepare-only") {
+        // for `perf record`: the data pass alone, long enough to sample
+        for _ in 0..20 * reps {
+            Prepared::new(&data).unwrap();
+        }
+        return;
+    }
     let t0 = Instant::now();
     for _ in 0..reps {
         data.validate().unwrap();

@@ -324,6 +324,7 @@ impl Prepared {
         start: &Array1<f64>,
         opts: &FitOptions,
         cancel: &(dyn Fn() -> bool + Sync),
+        warm: Option<&Array2<f64>>,
     ) -> Result<GlsStep> {
         let n = self.n_eq();
         let k = self.n_coef();
@@ -332,12 +333,12 @@ impl Prepared {
             let lr = est.low_rank.as_ref().map(|(d, c, e)| (d, *c, e));
             let (op, cond) = OmegaOp::new(self, omega, lr)?;
             let (delta, its, res) = self.cg_solve(&op, start, opts.cg_tol, opts.cg_max_iter, cancel)?;
-            return Ok((delta, Weight::MatrixFree, cond, Some((its, res))));
+            return Ok((delta, StepWeight::Done(Weight::MatrixFree), cond, Some((its, res))));
         }
         let (sigma_inv, cond) = invert_omega(omega, &self.names, self.n_obs, &self.y_scales())?;
         let gram = match &self.cross {
             CrossProducts::SharedRegressors { .. } => {
-                return Ok((Array1::zeros(k), Weight::Shared(omega.clone()), cond, None))
+                return Ok((Array1::zeros(k), StepWeight::Done(Weight::Shared(omega.clone())), cond, None))
             }
             CrossProducts::General { gram } => gram,
             CrossProducts::MatrixFree { .. } => unreachable!(),
@@ -373,7 +374,20 @@ impl Prepared {
         let weights = Array2::from_shape_fn((n, n), |(e, j)| sigma_inv[[e, j]] * rho[j]);
         let qc = gram.slice(s![..k, k..k + n]);
         let h = Array1::from_shape_fn(k, |a| qc.row(a).dot(&weights.row(eq_of[a])));
-        let chol = chol_lower(m).ok_or_else(|| SurError::SingularOmega {
+        if let Some(l) = warm {
+            if let Some((delta, iterations)) = warm_pcg(&m, l, &h, start) {
+                return Ok((delta, StepWeight::Pending { m, iterations }, cond, None));
+            }
+        }
+        let chol = self.factor_gls(m)?;
+        let delta = chol_solve(&chol, &h)?;
+        Ok((delta, StepWeight::Done(Weight::Chol(chol)), cond, None))
+    }
+
+    /// The Cholesky factor of the GLS matrix M (lower triangle given), or the singular-Omega
+    /// error that says why it has none.
+    fn factor_gls(&self, m: Array2<f64>) -> Result<Array2<f64>> {
+        chol_lower(m).ok_or_else(|| SurError::SingularOmega {
             equations: self.names.clone(),
             detail: format!(
                 "the GLS normal matrix is not numerically positive definite: the estimated \
@@ -385,9 +399,7 @@ impl Prepared {
                 self.n_eq(),
                 self.n_obs
             ),
-        })?;
-        let delta = chol_solve(&chol, &h)?;
-        Ok((delta, Weight::Chol(chol), cond, None))
+        })
     }
 
     /// W^-1 V for a K x m matrix V.
@@ -555,6 +567,7 @@ impl Prepared {
         };
         let (mut delta, mut restricted) = impose(Array1::zeros(k), &Weight::Identity)?;
         let mut weight = Weight::Identity;
+        let mut pending: Option<Array2<f64>> = None;
         let mut s = self.residual_crossprod(&delta);
         let mut oest = self.omega_at(&delta, &s, opts.divisor, data)?;
         let mut n_iter = 0;
@@ -566,20 +579,42 @@ impl Prepared {
         if opts.method != Method::Ols {
             let max_iter = if opts.method == Method::Fgls { 1 } else { opts.max_iter };
             converged = opts.method == Method::Fgls;
+            // Steps after the first of an unrestricted iterated fit solve with conjugate
+            // gradients preconditioned by the last Cholesky factor (the GLS matrix changes
+            // little from step to step); the final step's matrix is factored at the end.
+            let warm_allowed = opts.method == Method::IteratedFgls && constraint.is_none();
+            let mut refactor = false;
             while n_iter < max_iter {
                 if cancel() {
                     return Err(SurError::Interrupted);
                 }
-                let (unrestricted, w, cond, cg) = self.gls_step(&oest, &delta, opts, cancel)?;
+                let warm = match (&weight, warm_allowed && !refactor) {
+                    (Weight::Chol(l), true) => Some(l),
+                    _ => None,
+                };
+                let (unrestricted, sw, cond, cg) = self.gls_step(&oest, &delta, opts, cancel, warm)?;
                 omega_cond = cond;
                 if let Some((its, res)) = cg {
                     cg_iterations.push(its);
                     cg_residual = res;
                 }
-                let (new_delta, parts) = impose(unrestricted, &w)?;
+                let new_delta = match sw {
+                    StepWeight::Done(w) => {
+                        let (d, parts) = impose(unrestricted, &w)?;
+                        weight = w;
+                        restricted = parts;
+                        pending = None;
+                        refactor = false;
+                        d
+                    }
+                    StepWeight::Pending { m, iterations } => {
+                        // `weight` keeps the factor that preconditioned this step
+                        pending = Some(m);
+                        refactor = iterations > PCG_REFACTOR;
+                        unrestricted
+                    }
+                };
                 n_iter += 1;
-                weight = w;
-                restricted = parts;
                 let crit = self.criterion(&z, &delta, &new_delta);
                 if !crit.is_finite() {
                     return Err(SurError::numerical("iterated FGLS", "the coefficients became non-finite"));
@@ -598,6 +633,9 @@ impl Prepared {
                     oest = self.omega_at(&delta, &s, opts.divisor, data)?;
                 }
             }
+        }
+        if let Some(m) = pending.take() {
+            weight = Weight::Chol(self.factor_gls(m)?);
         }
         let OmegaEst { omega, shrinkage, .. } = oest;
         let gamma = &z + &delta;
@@ -1014,7 +1052,98 @@ impl Restrictions {
 
 /// One GLS step: delta, the weight, the condition estimate of Omega, and (matrix-free) the CG
 /// iterations and final relative residual.
-type GlsStep = (Array1<f64>, Weight, f64, Option<(usize, f64)>);
+type GlsStep = (Array1<f64>, StepWeight, f64, Option<(usize, f64)>);
+
+/// The weight a GLS step leaves: final, or the GLS matrix M (lower triangle) of a step solved
+/// by preconditioned conjugate gradients, still to be factored if it is the last step.
+enum StepWeight {
+    Done(Weight),
+    Pending { m: Array2<f64>, iterations: usize },
+}
+
+/// A warm-started solve that needed more iterations than this has the next step factor afresh.
+const PCG_REFACTOR: usize = 8;
+/// Iterations after which a warm-started solve gives up (the step is then solved directly).
+const PCG_MAX: usize = 40;
+
+/// Solves M x = h (M symmetric, lower triangle, column-major) by conjugate gradients from `x0`,
+/// preconditioned with the Cholesky factor `l` of a nearby matrix, to the rounding level of a
+/// direct solve: ||h - M x|| <= 16 eps (||M||_F ||x|| + ||h||) in the Jacobi-scaled system,
+/// checked on the residual recomputed from scratch. Returns None (solve directly) when that is not reached in PCG_MAX
+/// iterations or a step loses positive curvature (M not positive definite).
+fn warm_pcg(m: &Array2<f64>, l: &Array2<f64>, h: &Array1<f64>, x0: &Array1<f64>) -> Option<(Array1<f64>, usize)> {
+    use crate::linalg::{axpy, chol_solve_in_place, dot, sym_lower_matvec};
+    let k = h.len();
+    let (mb, lb) = (m.as_slice_memory_order()?, l.as_slice_memory_order()?);
+    if !m.t().is_standard_layout() || !l.t().is_standard_layout() || l.nrows() != k || m.nrows() != k {
+        return None;
+    }
+    let h = h.as_slice()?;
+    // The stopping test is made in the Jacobi-scaled system D^-1/2 M D^-1/2 (D = diag M), so
+    // that equations in very different units are each solved to their own rounding level, as
+    // the (scale-invariant) Cholesky solve does.
+    let sd: Vec<f64> = (0..k).map(|j| mb[j * k + j].sqrt()).collect();
+    if sd.iter().any(|v| !(*v > 0.0 && v.is_finite())) {
+        return None;
+    }
+    let mut fro = 0.0;
+    for j in 0..k {
+        for i in j..k {
+            let v = mb[j * k + i] / (sd[i] * sd[j]);
+            fro += if i == j { v * v } else { 2.0 * v * v };
+        }
+    }
+    let fro = fro.sqrt();
+    let scaled_norm = |v: &[f64], up: bool| -> f64 {
+        v.iter().zip(&sd).map(|(a, d)| if up { a * d } else { a / d }).map(|a| a * a).sum::<f64>().sqrt()
+    };
+    let hn = scaled_norm(h, false);
+    let mut x = x0.to_vec();
+    let mut q = vec![0.0; k];
+    let residual = |x: &[f64], q: &mut Vec<f64>| -> Vec<f64> {
+        sym_lower_matvec(mb, k, x, q);
+        h.iter().zip(q.iter()).map(|(a, b)| a - b).collect()
+    };
+    let mut r = residual(&x, &mut q);
+    let mut z = r.clone();
+    chol_solve_in_place(lb, k, &mut z);
+    let mut p = z.clone();
+    let mut rz = dot(&r, &z);
+    for it in 0..=PCG_MAX {
+        let thr = 16.0 * f64::EPSILON * (fro * scaled_norm(&x, true) + hn);
+        if scaled_norm(&r, false) <= thr {
+            // the updated residual drifts from the true one: confirm on a fresh one
+            r = residual(&x, &mut q);
+            if scaled_norm(&r, false) <= thr {
+                return Some((Array1::from(x), it));
+            }
+            z.copy_from_slice(&r);
+            chol_solve_in_place(lb, k, &mut z);
+            p.copy_from_slice(&z);
+            rz = dot(&r, &z);
+        }
+        if it == PCG_MAX {
+            break;
+        }
+        sym_lower_matvec(mb, k, &p, &mut q);
+        let pq = dot(&p, &q);
+        if !(pq > 0.0 && pq.is_finite() && rz.is_finite()) {
+            return None;
+        }
+        let alpha = rz / pq;
+        axpy(&mut x, &p, alpha);
+        axpy(&mut r, &q, -alpha);
+        z.copy_from_slice(&r);
+        chol_solve_in_place(lb, k, &mut z);
+        let rz_new = dot(&r, &z);
+        let beta = rz_new / rz;
+        rz = rz_new;
+        for (pi, zi) in p.iter_mut().zip(&z) {
+            *pi = zi + beta * *pi;
+        }
+    }
+    None
+}
 
 /// Omega and what the matrix-free path needs to apply its inverse cheaply.
 struct OmegaEst {

@@ -14,7 +14,7 @@ use std::mem::MaybeUninit;
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::Mutex;
 
-use ndarray::{s, Array1, Array2, ArrayView1, ArrayViewMut1, ArrayViewMut2, Axis, ShapeBuilder};
+use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, ArrayViewMut1, ArrayViewMut2, Axis, ShapeBuilder};
 
 use crate::error::{Result, SurError};
 use crate::linalg::{
@@ -396,14 +396,24 @@ fn factor_into(
 ) -> Result<EquationFactor> {
     let k = eq.n_regressors();
     let m = k + 1;
-    if scratch.len() < t * m {
-        scratch.resize(t * m, 0.0);
+    if scratch.len() < t * (m + 1) {
+        scratch.resize(t * (m + 1), 0.0);
     }
-    let scratch = &mut scratch[..t * m]; // every entry is overwritten below
+    // [X_i | y_i], then Q_i and the QR's residual direction; then the refined residual
+    let (scratch, ebuf) = scratch[..t * (m + 1)].split_at_mut(t * m); // all overwritten below
     {
+        // in row blocks, asking `stop` between them (a long copy takes a while)
         let mut a = ArrayViewMut2::from_shape((t, m).f(), &mut scratch[..]).expect("t x m column-major");
-        a.slice_mut(s![.., ..k]).assign(&eq.x);
-        a.column_mut(k).assign(&eq.y);
+        let mut start = 0;
+        while start < t {
+            if stop() {
+                return Err(SurError::Interrupted);
+            }
+            let end = (start + REFINE_ROWS).min(t);
+            a.slice_mut(s![start..end, ..k]).assign(&eq.x.slice(s![start..end, ..]));
+            a.slice_mut(s![start..end, k]).assign(&eq.y.slice(s![start..end]));
+            start = end;
+        }
     }
     let mut norms = Vec::with_capacity(m);
     for j in 0..m {
@@ -443,14 +453,29 @@ fn factor_into(
     for j in 0..k {
         r.column_mut(j).mapv_inplace(|v| v * norms[j]);
     }
-    let z = rs.slice(s![..k, k]).mapv(|v| v * yscale);
+    let mut z = rs.slice(s![..k, k]).mapv(|v| v * yscale);
     let last = rs[[k, k]];
     let sign = if last < 0.0 { -1.0 } else { 1.0 };
-    let rho = last.abs() * yscale;
+    if stop() {
+        return Err(SurError::Interrupted);
+    }
+    let rho = refine_fit(
+        eq.x,
+        eq.y,
+        &scratch[..k * t],
+        t,
+        r.as_slice().expect("fresh k x k array"),
+        z.as_slice_mut().expect("fresh vector"),
+        ebuf,
+        stop,
+    )?;
     let cond = cond_of_scaled(&rs, k);
     // Write Q_i and q_i into W; the column sums of Q_i say whether it spans the constant.
     let mut s2 = 0.0;
     for j in 0..k {
+        if stop() {
+            return Err(SurError::Interrupted);
+        }
         let src = &scratch[j * t..(j + 1) * t];
         let mut dst = wq.column_mut(j);
         let mut sum = 0.0;
@@ -460,12 +485,89 @@ fn factor_into(
         }
         s2 += sum * sum;
     }
-    for (d, v) in wy.iter_mut().zip(&scratch[k * t..]) {
-        d.write(sign * v);
+    if rho > 0.0 {
+        let inv = 1.0 / rho;
+        for (d, v) in wy.iter_mut().zip(ebuf.iter()) {
+            d.write(v * inv);
+        }
+    } else {
+        // an exact fit: any unit vector orthogonal to Q_i serves, the QR's own one
+        for (d, v) in wy.iter_mut().zip(&scratch[k * t..]) {
+            d.write(sign * v);
+        }
     }
     let spans_constant = (t as f64 - s2).abs() <= 1e-9 * t as f64;
     Ok(EquationFactor { r, z, rho, spans_constant, tss_centred, tss_raw, cond })
 }
+
+/// One step of iterative refinement of an equation's least-squares fit in the data's own units
+/// (Golub and Wilkinson's refinement with the QR factors): b = R^-1 z, e = y - X b from the
+/// data in doubled precision (`residual_dot2`), z += Q'e, e -= Q (Q'e). Returns the residual
+/// norm rho and leaves the residual in `e` (orthogonal to Q to rounding).
+///
+/// The QR's own residual norm carries an error of about eps cond(X) relative to rho, and a
+/// residual computed from the data in working precision one of eps |X||b| / |e| (large when
+/// the intercept and the regressors' levels cancel, as in NIST's Longley data): the doubled
+/// precision removes the second, the projection the part of the first in the column space of
+/// X. Every residual variance and standard error inherits rho. `q` holds Q (T x k,
+/// column-major), `r` R in data units (k x k, row-major).
+pub(crate) fn refine_fit(
+    x: ArrayView2<f64>,
+    y: ArrayView1<f64>,
+    q: &[f64],
+    t: usize,
+    r: &[f64],
+    z: &mut [f64],
+    e: &mut [f64],
+    stop: &dyn Fn() -> bool,
+) -> Result<f64> {
+    let k = z.len();
+    let mut b = [0.0f64; 64];
+    let mut bv = vec![];
+    let b: &mut [f64] = if k <= 64 {
+        &mut b[..k]
+    } else {
+        bv.resize(k, 0.0);
+        &mut bv
+    };
+    for i in (0..k).rev() {
+        let mut v = z[i];
+        for c in (i + 1)..k {
+            v -= r[i * k + c] * b[c];
+        }
+        b[i] = v / r[i * k + i];
+    }
+    let e = &mut e[..t];
+    // in row blocks, asking `stop` between them (a long column takes a while)
+    let mut start = 0;
+    while start < t {
+        if stop() {
+            return Err(SurError::Interrupted);
+        }
+        let end = (start + REFINE_ROWS).min(t);
+        crate::linalg::residual_dot2(
+            x.slice(s![start..end, ..]),
+            y.slice(s![start..end]),
+            b,
+            &mut e[start..end],
+        );
+        start = end;
+    }
+    for j in 0..k {
+        if stop() {
+            return Err(SurError::Interrupted);
+        }
+        let qj = &q[j * t..(j + 1) * t];
+        let c = dot(qj, e);
+        z[j] += c;
+        crate::linalg::axpy(e, qj, -c);
+    }
+    let ss = dot(e, e);
+    Ok(if ss.is_finite() && ss > 1e-290 { ss.sqrt() } else { scaled_norm(e) })
+}
+
+/// Rows of one block of the copy and of the refinement's residual pass (between Ctrl-C checks).
+const REFINE_ROWS: usize = 1 << 18;
 
 /// Steps 0 and 1 when every equation has the same regressors: one QR for X, and the residual
 /// matrix E = Y - Q Q'Y (T x N) in place of the P x P Gram matrix.
@@ -488,7 +590,23 @@ fn shared_regressors(data: &SystemData, t: usize) -> Result<(Vec<EquationFactor>
     // Reorthogonalise once: removes what rounding left of the projection (twice is enough).
     let corr = q.t().dot(&e);
     e -= &q.dot(&corr);
-    let zmat = zmat + corr;
+    let mut zmat = zmat + corr;
+    // Refine each equation's fit from the data in doubled precision (see `refine_fit`).
+    {
+        let qbuf = q.as_slice_memory_order().filter(|_| q.t().is_standard_layout()).expect("column-major Q");
+        let rbuf = r.as_standard_layout().into_owned();
+        let mut zi = vec![0.0; k];
+        let mut ei = vec![0.0; t];
+        for (i, eq) in data.equations.iter().enumerate() {
+            for (d, v) in zi.iter_mut().zip(zmat.column(i)) {
+                *d = *v;
+            }
+            let rbuf = rbuf.as_slice().expect("standard layout");
+            refine_fit(eq.x, eq.y, qbuf, t, rbuf, &mut zi, &mut ei, &|| false)?;
+            zmat.column_mut(i).assign(&ArrayView1::from(&zi[..]));
+            e.column_mut(i).assign(&ArrayView1::from(&ei[..]));
+        }
+    }
     let colsum = q.sum_axis(ndarray::Axis(0));
     let spans = (t as f64 - colsum.dot(&colsum)).abs() <= 1e-9 * t as f64;
     let cond = cond_of_scaled(&rs, k);

@@ -16,7 +16,7 @@ use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
 use crate::batch::BatchFit;
 use crate::estimate::{Divisor, FitOptions, Method};
 use crate::linalg::{dot, householder_qr, singular_floor};
-use crate::prepare::rank_tol;
+use crate::prepare::{rank_tol, refine_fit};
 
 /// Largest K + N the small path takes (the K x K matrices stay in the cache).
 pub(crate) const MAX_COLUMNS: usize = 96;
@@ -52,6 +52,8 @@ pub(crate) struct Work {
     ga: Vec<f64>,
     col: Vec<usize>,
     eq: Vec<usize>,
+    /// T: a residual.
+    e: Vec<f64>,
     /// N: rho, y scale, q column, equation offsets (N + 1).
     rho: Vec<f64>,
     yscale: Vec<f64>,
@@ -352,10 +354,19 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
             }
             ws.z[a + row] = rs[row * mi + ki] * yscale;
         }
+        // refined residual (as the general path): q_i = e / rho
         let last = rs[ki * mi + ki];
-        ws.rho[i] = last.abs() * yscale;
-        if last < 0.0 {
-            for v in buf[ki * t..].iter_mut() {
+        let e = sized(&mut ws.e, t);
+        let (qx, qy) = buf.split_at_mut(ki * t);
+        let rho = refine_fit(xs[i].view(), ys[i].view(), qx, t, r, &mut ws.z[a..a + ki], e, &|| false).ok()?;
+        ws.rho[i] = rho;
+        if rho > 0.0 {
+            let inv = 1.0 / rho;
+            for (d, v) in qy.iter_mut().zip(e.iter()) {
+                *d = v * inv;
+            }
+        } else if last < 0.0 {
+            for v in qy.iter_mut() {
                 *v = -*v;
             }
         }

@@ -703,3 +703,38 @@ fn small_path_declines_what_the_general_path_must_judge() {
     assert!(matches!(&out[3], Err(SurError::Collinear { column, .. }) if column == "x2"));
     let _ = yv;
 }
+
+/// Iterated FGLS step by step against the dense textbook iteration (Omega = S/T of the
+/// previous step's residuals, then dense GLS): the warm-started conjugate-gradient steps give
+/// the direct solves' coefficients, and the final covariance is that of the last step.
+#[test]
+fn iterated_steps_follow_the_dense_textbook_iteration() {
+    let (ys, xs) = system(&[3, 2, 4, 3], 30, 515);
+    let d = data(&ys, &xs);
+    let prep = Prepared::new(&d).unwrap();
+    let resid_omega = |b: &Array1<f64>| {
+        let t = ys[0].len() as f64;
+        let mut e = Vec::new();
+        let mut off = 0;
+        for (y, x) in ys.iter().zip(&xs) {
+            e.push(y - &x.dot(&b.slice(s![off..off + x.ncols()])));
+            off += x.ncols();
+        }
+        Array2::from_shape_fn((e.len(), e.len()), |(i, j)| e[i].dot(&e[j]) / t)
+    };
+    let mut b: Array1<f64> = ys.iter().zip(&xs).flat_map(|(y, x)| ols(y, x).to_vec()).collect();
+    let mut omega = resid_omega(&b);
+    for steps in 1..=6usize {
+        let (bd, cov) = dense_gls(&ys, &xs, &omega);
+        let o = FitOptions { method: Method::IteratedFgls, tol: 0.0, max_iter: steps, ..Default::default() };
+        let est = prep.estimate(&o).unwrap();
+        assert_eq!(est.n_iter, steps);
+        let se = prep.coef_standard_errors(&est, crate::CovKind::Classical, None).unwrap();
+        for j in 0..bd.len() {
+            assert_relative_eq!(est.coef[j], bd[j], max_relative = 1e-10);
+            assert_relative_eq!(se[j], cov[[j, j]].sqrt(), max_relative = 1e-10);
+        }
+        b = bd;
+        omega = resid_omega(&b);
+    }
+}
