@@ -18,11 +18,17 @@ fn main() {
         Prepared::new(&data).unwrap();
     }
     let reps = 5000;
-    let t0 = Instant::now();
-    for _ in 0..reps {
-        Prepared::new(&data).unwrap();
+    // the fastest of 50 batches of 100 calls: on a shared machine the minimum is the stable
+    // figure (others' load only ever adds)
+    let mut best = f64::INFINITY;
+    for _ in 0..50 {
+        let t0 = Instant::now();
+        for _ in 0..100 {
+            Prepared::new(&data).unwrap();
+        }
+        best = best.min(t0.elapsed().as_secs_f64() * 1e6 / 100.0);
     }
-    println!("prepare: {:.1} us", t0.elapsed().as_secs_f64() * 1e6 / reps as f64);
+    println!("prepare: {best:.1} us (fastest batch of 100)");
     if std::env::args().any(|a| a == "--prepare-only") {
         // for `perf record`: the data pass alone, long enough to sample
         for _ in 0..20 * reps {

@@ -661,32 +661,38 @@ fn residual_dot2_with(
         let z = t - s;
         (t, c + ((s - (t - z)) + (p - z)) + ep)
     };
-    let k = b.len();
-    match x.as_slice() {
-        Some(xs) if x.is_standard_layout() && k > 0 => {
-            for ((d, yv), row) in e.iter_mut().zip(y.iter()).zip(xs.chunks_exact(k)) {
-                let (mut s, mut c) = (*yv, 0.0);
-                for (xv, bj) in row.iter().zip(b) {
-                    (s, c) = step(s, c, *xv, *bj);
+    // Rows in blocks of 256: within a block every row's sum is independent of the others, so
+    // the column-by-column updates pipeline (row by row, each step waits on the previous one).
+    const B: usize = 256;
+    let t = e.len();
+    let mut start = 0;
+    while start < t {
+        let end = (start + B).min(t);
+        let n = end - start;
+        let mut sum = [0.0f64; B];
+        let mut err = [0.0f64; B];
+        for (d, v) in sum[..n].iter_mut().zip(y.slice(ndarray::s![start..end]).iter()) {
+            *d = *v;
+        }
+        for (j, bj) in b.iter().enumerate() {
+            let col = x.slice(ndarray::s![start..end, j]);
+            match col.as_slice() {
+                Some(c) => {
+                    for ((s, r), xv) in sum[..n].iter_mut().zip(err[..n].iter_mut()).zip(c) {
+                        (*s, *r) = step(*s, *r, *xv, *bj);
+                    }
                 }
-                *d = s + c;
+                None => {
+                    for ((s, r), xv) in sum[..n].iter_mut().zip(err[..n].iter_mut()).zip(col.iter()) {
+                        (*s, *r) = step(*s, *r, *xv, *bj);
+                    }
+                }
             }
         }
-        _ => {
-            // column by column, the error terms kept in a second pass-through buffer
-            let mut comp = vec![0.0f64; e.len()];
-            for (d, yv) in e.iter_mut().zip(y.iter()) {
-                *d = *yv;
-            }
-            for (j, bj) in b.iter().enumerate() {
-                for ((d, c), xv) in e.iter_mut().zip(comp.iter_mut()).zip(x.column(j).iter()) {
-                    (*d, *c) = step(*d, *c, *xv, *bj);
-                }
-            }
-            for (d, c) in e.iter_mut().zip(&comp) {
-                *d += c;
-            }
+        for ((d, s), r) in e[start..end].iter_mut().zip(&sum[..n]).zip(&err[..n]) {
+            *d = s + r;
         }
+        start = end;
     }
 }
 
