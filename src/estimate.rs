@@ -188,6 +188,9 @@ pub struct Estimate {
     /// residual of the last solve (empty and NaN on the direct path).
     pub cg_iterations: Vec<usize>,
     pub cg_residual: f64,
+    /// Direct path, iterated fit: the steps solved by conjugate gradients preconditioned with
+    /// the previous factor, and their iteration counts (empty when every step was factored).
+    pub warm_iterations: Vec<usize>,
     weight: Weight,
     restricted: Option<RestrictedParts>,
 }
@@ -568,6 +571,7 @@ impl Prepared {
         let (mut delta, mut restricted) = impose(Array1::zeros(k), &Weight::Identity)?;
         let mut weight = Weight::Identity;
         let mut pending: Option<Array2<f64>> = None;
+        let mut warm_iterations = Vec::new();
         let mut s = self.residual_crossprod(&delta);
         let mut oest = self.omega_at(&delta, &s, opts.divisor, data)?;
         let mut n_iter = 0;
@@ -582,7 +586,7 @@ impl Prepared {
             // Steps after the first of an unrestricted iterated fit solve with conjugate
             // gradients preconditioned by the last Cholesky factor (the GLS matrix changes
             // little from step to step); the final step's matrix is factored at the end.
-            let warm_allowed = opts.method == Method::IteratedFgls && constraint.is_none();
+            let warm_allowed = opts.method == Method::IteratedFgls && constraint.is_none() && k >= PCG_MIN_K;
             let mut refactor = false;
             while n_iter < max_iter {
                 if cancel() {
@@ -609,6 +613,7 @@ impl Prepared {
                     }
                     StepWeight::Pending { m, iterations } => {
                         // `weight` keeps the factor that preconditioned this step
+                        warm_iterations.push(iterations);
                         pending = Some(m);
                         refactor = iterations > PCG_REFACTOR;
                         unrestricted
@@ -663,6 +668,7 @@ impl Prepared {
             shrinkage,
             cg_iterations,
             cg_residual,
+            warm_iterations,
             weight,
             restricted,
         })
@@ -1061,6 +1067,9 @@ enum StepWeight {
     Pending { m: Array2<f64>, iterations: usize },
 }
 
+/// Below this many coefficients a fresh Cholesky factor costs less than the conjugate-gradient
+/// iterations' bookkeeping (case (a), K = 20: 8 us per direct step, 18 us warm-started).
+const PCG_MIN_K: usize = 48;
 /// A warm-started solve that needed more iterations than this has the next step factor afresh.
 const PCG_REFACTOR: usize = 8;
 /// Iterations after which a warm-started solve gives up (the step is then solved directly).

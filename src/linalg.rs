@@ -654,17 +654,22 @@ fn residual_dot2_with(
     e: &mut [f64],
     two_prod: impl Fn(f64, f64) -> (f64, f64),
 ) {
-    // s + c: the running sum and its accumulated error (Knuth's two-sum).
-    let step = |s: f64, c: f64, xv: f64, bj: f64| {
-        let (p, ep) = two_prod(-bj, xv);
-        let t = s + p;
-        let z = t - s;
-        (t, c + ((s - (t - z)) + (p - z)) + ep)
-    };
-    // Rows in blocks of 256: within a block every row's sum is independent of the others, so
-    // the column-by-column updates pipeline (row by row, each step waits on the previous one).
+    // Per row a running sum and its accumulated error (Knuth's two-sum of each exact product
+    // p + ep). Rows go in blocks of 256, column by column: within a block every row's sum is
+    // independent of the others, so the updates vectorise (row by row, each step would wait
+    // on the previous one). Row-major or strided columns are first copied into a block.
     const B: usize = 256;
+    let k = b.len();
     let t = e.len();
+    if k == 0 {
+        for (d, v) in e.iter_mut().zip(y.iter()) {
+            *d = *v;
+        }
+        return;
+    }
+    let mut cols = vec![0.0f64; k * B.min(t)];
+    let rows = x.as_slice().filter(|_| x.is_standard_layout());
+    let colmajor = x.as_slice_memory_order().filter(|_| x.t().is_standard_layout() && x.nrows() == t);
     let mut start = 0;
     while start < t {
         let end = (start + B).min(t);
@@ -674,23 +679,42 @@ fn residual_dot2_with(
         for (d, v) in sum[..n].iter_mut().zip(y.slice(ndarray::s![start..end]).iter()) {
             *d = *v;
         }
-        for (j, bj) in b.iter().enumerate() {
-            let col = x.slice(ndarray::s![start..end, j]);
-            match col.as_slice() {
-                Some(c) => {
-                    for ((s, r), xv) in sum[..n].iter_mut().zip(err[..n].iter_mut()).zip(c) {
-                        (*s, *r) = step(*s, *r, *xv, *bj);
+        if colmajor.is_none() {
+            match rows {
+                Some(rs) => {
+                    for (i, row) in rs[start * k..end * k].chunks_exact(k).enumerate() {
+                        for (j, v) in row.iter().enumerate() {
+                            cols[j * n + i] = *v;
+                        }
                     }
                 }
                 None => {
-                    for ((s, r), xv) in sum[..n].iter_mut().zip(err[..n].iter_mut()).zip(col.iter()) {
-                        (*s, *r) = step(*s, *r, *xv, *bj);
+                    for j in 0..k {
+                        let dst = &mut cols[j * n..(j + 1) * n];
+                        for (d, v) in dst.iter_mut().zip(x.slice(ndarray::s![start..end, j]).iter()) {
+                            *d = *v;
+                        }
                     }
                 }
             }
         }
-        for ((d, s), r) in e[start..end].iter_mut().zip(&sum[..n]).zip(&err[..n]) {
-            *d = s + r;
+        for (j, bj) in b.iter().enumerate() {
+            let col: &[f64] = match colmajor {
+                Some(cm) => &cm[j * t + start..j * t + end],
+                None => &cols[j * n..(j + 1) * n],
+            };
+            let nb = -*bj;
+            for ((sv, rv), xv) in sum[..n].iter_mut().zip(err[..n].iter_mut()).zip(col) {
+                let (p, ep) = two_prod(nb, *xv);
+                let s0 = *sv;
+                let tt = s0 + p;
+                let z = tt - s0;
+                *rv += ((s0 - (tt - z)) + (p - z)) + ep;
+                *sv = tt;
+            }
+        }
+        for ((d, sv), rv) in e[start..end].iter_mut().zip(&sum[..n]).zip(&err[..n]) {
+            *d = sv + rv;
         }
         start = end;
     }

@@ -709,7 +709,8 @@ fn small_path_declines_what_the_general_path_must_judge() {
 /// the direct solves' coefficients, and the final covariance is that of the last step.
 #[test]
 fn iterated_steps_follow_the_dense_textbook_iteration() {
-    let (ys, xs) = system(&[3, 2, 4, 3], 30, 515);
+    // K = 50: at or above the size where steps after the first are warm-started
+    let (ys, xs) = system(&[13, 12, 14, 11], 60, 515);
     let d = data(&ys, &xs);
     let prep = Prepared::new(&d).unwrap();
     let resid_omega = |b: &Array1<f64>| {
@@ -729,6 +730,9 @@ fn iterated_steps_follow_the_dense_textbook_iteration() {
         let o = FitOptions { method: Method::IteratedFgls, tol: 0.0, max_iter: steps, ..Default::default() };
         let est = prep.estimate(&o).unwrap();
         assert_eq!(est.n_iter, steps);
+        // step 2 is warm-started; a later one factors afresh after a slow warm solve
+        assert_eq!(est.warm_iterations.is_empty(), steps == 1, "{:?}", est.warm_iterations);
+        assert!(est.warm_iterations.len() < steps);
         let se = prep.coef_standard_errors(&est, crate::CovKind::Classical, None).unwrap();
         for j in 0..bd.len() {
             assert_relative_eq!(est.coef[j], bd[j], max_relative = 1e-10);
