@@ -1,5 +1,5 @@
 // Times the data pass on a small system (the per-call overhead case). Not part of the tests.
-// `--prepare-only` loops the data pass alone (for `perf record`).
+// `--prepare-only` / `--estimate-only` loop the data pass / an FGLS estimate alone (for `perf record`).
 use blocksur::{Equation, Prepared, SystemData};
 use ndarray::{Array1, Array2};
 use std::time::Instant;
@@ -29,6 +29,23 @@ fn main() {
         best = best.min(t0.elapsed().as_secs_f64() * 1e6 / 100.0);
     }
     println!("prepare: {best:.1} us (fastest batch of 100)");
+    let prep = Prepared::new(&data).unwrap();
+    let fgls = blocksur::FitOptions::default();
+    let mut best = f64::INFINITY;
+    for _ in 0..50 {
+        let t0 = Instant::now();
+        for _ in 0..100 {
+            prep.estimate(&fgls).unwrap();
+        }
+        best = best.min(t0.elapsed().as_secs_f64() * 1e6 / 100.0);
+    }
+    println!("estimate (fgls): {best:.1} us (fastest batch of 100)");
+    if std::env::args().any(|a| a == "--estimate-only") {
+        for _ in 0..20 * reps {
+            prep.estimate(&fgls).unwrap();
+        }
+        return;
+    }
     if std::env::args().any(|a| a == "--prepare-only") {
         // for `perf record`: the data pass alone, long enough to sample
         for _ in 0..20 * reps {

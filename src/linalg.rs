@@ -13,7 +13,7 @@ pub fn gram(w: ArrayView2<f64>) -> Array2<f64> {
 }
 
 /// Largest T P^2 whose Gram matrix is formed by dot products rather than BLAS syrk.
-const SMALL_GRAM: f64 = 1.0e6;
+pub(crate) const SMALL_GRAM: f64 = 1.0e6;
 
 /// W'W accumulated over row blocks sized so that each block takes a fraction of a second; between
 /// blocks `cancel` is asked whether to stop (it returns Err(Interrupted) when it says yes).
@@ -95,6 +95,14 @@ pub fn triangular_condition(r: &Array2<f64>) -> f64 {
     if n == 0 {
         return 1.0;
     }
+    if (n as usize) <= SMALL_DENSE {
+        // small: the exact 1-norm condition number, from the inverse
+        let norm1 = |m: &Array2<f64>| m.columns().into_iter().map(|c| c.iter().map(|v| v.abs()).sum::<f64>()).fold(0.0, f64::max);
+        return match upper_inverse(r) {
+            Ok(inv) if inv.iter().all(|v| v.is_finite()) => norm1(r) * norm1(&inv),
+            _ => f64::INFINITY,
+        };
+    }
     let f = to_fortran(r);
     let (mut rcond, mut info) = (0.0, 0);
     let mut work = vec![0.0; 3 * n as usize];
@@ -129,6 +137,13 @@ pub fn spd_condition(a: &Array2<f64>, l: &Array2<f64>) -> f64 {
         return 1.0;
     }
     let anorm = a.columns().into_iter().map(|c| c.iter().map(|v| v.abs()).sum::<f64>()).fold(0.0, f64::max);
+    if (n as usize) <= SMALL_DENSE {
+        // small: the exact 1-norm condition number, from the inverse
+        return match chol_inverse(l) {
+            Ok(inv) => anorm * inv.columns().into_iter().map(|c| c.iter().map(|v| v.abs()).sum::<f64>()).fold(0.0, f64::max),
+            Err(_) => f64::INFINITY,
+        };
+    }
     let (mut rcond, mut info) = (0.0, 0);
     let mut work = vec![0.0; 3 * n as usize];
     let mut iwork = vec![0i32; n as usize];
@@ -177,6 +192,59 @@ pub(crate) fn chol_solve_in_place(l: &[f64], n: usize, b: &mut [f64]) {
     }
 }
 
+/// Up to this order the Cholesky factor, its solves and inverse, and the condition numbers are
+/// computed here rather than by LAPACK: for a handful of rows a LAPACK call costs more in
+/// overhead (and OpenBLAS thread wake-ups) than in arithmetic.
+const SMALL_DENSE: usize = 40;
+
+/// In-place lower Cholesky factor of a column-major n x n buffer (lower triangle read; upper
+/// zeroed), left-looking by columns. False when a pivot is not positive (not positive definite).
+fn small_chol(a: &mut [f64], n: usize) -> bool {
+    for j in 0..n {
+        // column j below the diagonal minus L[j.., ..j] L[j, ..j]'
+        for l in 0..j {
+            let ljl = a[l * n + j];
+            if ljl != 0.0 {
+                for i in j..n {
+                    a[j * n + i] -= a[l * n + i] * ljl;
+                }
+            }
+        }
+        let d = a[j * n + j];
+        if !(d > 0.0 && d.is_finite()) {
+            return false;
+        }
+        let dj = d.sqrt();
+        a[j * n + j] = dj;
+        let inv = 1.0 / dj;
+        for i in (j + 1)..n {
+            a[j * n + i] *= inv;
+        }
+        for i in 0..j {
+            a[j * n + i] = 0.0;
+        }
+    }
+    true
+}
+
+/// L^-1 (lower, column-major, n x n) of a lower-triangular column-major L, column by column.
+fn small_lower_inverse(l: &[f64], n: usize) -> Vec<f64> {
+    let mut u = vec![0.0f64; n * n];
+    for j in 0..n {
+        // solve L x = e_j, x[..j] = 0
+        let col = &mut u[j * n..(j + 1) * n];
+        col[j] = 1.0;
+        for c in j..n {
+            let v = col[c] / l[c * n + c];
+            col[c] = v;
+            for i in (c + 1)..n {
+                col[i] -= l[c * n + i] * v;
+            }
+        }
+    }
+    u
+}
+
 /// Lower Cholesky factor of a symmetric positive definite matrix (only its lower triangle is
 /// read), in place by LAPACK potrf. Returns None when the matrix is not positive definite.
 pub fn chol_lower(mut a: Array2<f64>) -> Option<Array2<f64>> {
@@ -186,6 +254,13 @@ pub fn chol_lower(mut a: Array2<f64>) -> Option<Array2<f64>> {
     }
     if !a.t().is_standard_layout() {
         a = a.reversed_axes().as_standard_layout().reversed_axes().to_owned();
+    }
+    if (n as usize) <= SMALL_DENSE {
+        let buf = a.as_slice_memory_order_mut().expect("column-major");
+        if !small_chol(buf, n as usize) {
+            return None;
+        }
+        return Some(a);
     }
     let mut info = 0;
     // SAFETY: `a` is an n x n column-major buffer.
@@ -209,6 +284,12 @@ pub fn chol_solve(l: &Array2<f64>, b: &Array1<f64>) -> Result<Array1<f64>> {
     if n == 0 {
         return Ok(x);
     }
+    if (n as usize) <= SMALL_DENSE {
+        if let (Some(lb), Some(xb)) = (l.as_slice_memory_order(), x.as_slice_mut()) {
+            chol_solve_in_place(lb, n as usize, xb);
+            return Ok(x);
+        }
+    }
     let mut info = 0;
     // SAFETY: `l` is n x n column-major; `x` holds n contiguous values.
     unsafe { lapack_sys::dpotrs_(&(b'L' as std::ffi::c_char), &n, &1, l.as_ptr(), &n, x.as_mut_ptr(), &n, &mut info) };
@@ -225,6 +306,21 @@ pub fn chol_inverse(l: &Array2<f64>) -> Result<Array2<f64>> {
     let n = a.nrows() as i32;
     if n == 0 {
         return Ok(a);
+    }
+    if (n as usize) <= SMALL_DENSE {
+        if let Some(lb) = l.as_slice_memory_order() {
+            let n = n as usize;
+            let u = small_lower_inverse(lb, n);
+            // (L L')^-1 = U'U, U = L^-1 lower: entry (i, j) sums over rows r >= max(i, j)
+            for j in 0..n {
+                for i in j..n {
+                    let v = dot(&u[j * n + i..(j + 1) * n], &u[i * n + i..(i + 1) * n]);
+                    a[[i, j]] = v;
+                    a[[j, i]] = v;
+                }
+            }
+            return Ok(a);
+        }
     }
     let mut info = 0;
     // SAFETY: `a` is an n x n column-major buffer.
@@ -718,6 +814,20 @@ fn residual_dot2_with(
         }
         start = end;
     }
+}
+
+/// Sum of a slice in eight partial sums (a single running sum is a chain of dependent
+/// additions, four cycles each).
+pub(crate) fn sum(x: &[f64]) -> f64 {
+    let mut acc = [0.0f64; 8];
+    let c = x.chunks_exact(8);
+    let rest: f64 = c.remainder().iter().sum();
+    for ch in c {
+        for l in 0..8 {
+            acc[l] += ch[l];
+        }
+    }
+    ((acc[0] + acc[4]) + (acc[1] + acc[5])) + ((acc[2] + acc[6]) + (acc[3] + acc[7])) + rest
 }
 
 /// 2-norm scaled by the largest magnitude, for columns whose plain sum of squares would

@@ -125,7 +125,11 @@ impl Prepared {
         if matrix_free {
             return Ok(done(factors, CrossProducts::MatrixFree { w }));
         }
-        let mut g = gram_blocked(w.view(), cancel)?;
+        let mut g = if (t as f64) * ((k + n) as f64).powi(2) <= crate::linalg::SMALL_GRAM {
+            gram_across(&w, &offsets)
+        } else {
+            gram_blocked(w.view(), cancel)?
+        };
         drop(w);
         // Exact by construction: orthonormal columns within an equation, q_i orthogonal to Q_i.
         for i in 0..n {
@@ -186,6 +190,30 @@ impl Prepared {
         }
         Ok(b)
     }
+}
+
+/// W'W for a small W (column-major, all columns written), by dot products between the columns
+/// of different equations only: the blocks within an equation are known (I and 0) and set by
+/// the caller.
+fn gram_across(w: &Array2<f64>, offsets: &[usize]) -> Array2<f64> {
+    let (t, p) = w.dim();
+    let n = offsets.len() - 1;
+    let k = offsets[n];
+    let buf = w.as_slice_memory_order().expect("W is column-major and contiguous");
+    let eq_of = |c: usize| if c < k { offsets.partition_point(|&o| o <= c) - 1 } else { c - k };
+    let owner: Vec<usize> = (0..p).map(eq_of).collect();
+    let mut g = Array2::<f64>::zeros((p, p).f());
+    for j in 0..p {
+        let cj = &buf[j * t..(j + 1) * t];
+        for i in (j + 1)..p {
+            if owner[i] != owner[j] {
+                let v = dot(&buf[i * t..(i + 1) * t], cj);
+                g[[i, j]] = v;
+                g[[j, i]] = v;
+            }
+        }
+    }
+    g
 }
 
 /// Column 2-norm, computed with scaling so that huge or tiny columns neither overflow nor underflow.
@@ -410,7 +438,21 @@ fn factor_into(
                 return Err(SurError::Interrupted);
             }
             let end = (start + REFINE_ROWS).min(t);
-            a.slice_mut(s![start..end, ..k]).assign(&eq.x.slice(s![start..end, ..]));
+            match eq.x.as_slice().filter(|_| eq.x.is_standard_layout()) {
+                // row-major: scatter each row into the k columns (ndarray's strided assign
+                // is several times slower for narrow rows)
+                Some(xs) => {
+                    let cols = a.as_slice_memory_order_mut().expect("fresh column-major view");
+                    let rows = &xs[start * k..end * k];
+                    for j in 0..k {
+                        // column by column: sequential writes, reads within the same lines
+                        for (d, row) in cols[j * t + start..j * t + end].iter_mut().zip(rows.chunks_exact(k)) {
+                            *d = row[j];
+                        }
+                    }
+                }
+                None => a.slice_mut(s![start..end, ..k]).assign(&eq.x.slice(s![start..end, ..])),
+            }
             a.slice_mut(s![start..end, k]).assign(&eq.y.slice(s![start..end]));
             start = end;
         }
@@ -478,11 +520,19 @@ fn factor_into(
         }
         let src = &scratch[j * t..(j + 1) * t];
         let mut dst = wq.column_mut(j);
-        let mut sum = 0.0;
-        for (d, v) in dst.iter_mut().zip(src) {
-            d.write(*v);
-            sum += v;
+        match dst.as_slice_mut() {
+            Some(d) => {
+                for (d, v) in d.iter_mut().zip(src) {
+                    d.write(*v);
+                }
+            }
+            None => {
+                for (d, v) in dst.iter_mut().zip(src) {
+                    d.write(*v);
+                }
+            }
         }
+        let sum = crate::linalg::sum(src);
         s2 += sum * sum;
     }
     if rho > 0.0 {

@@ -145,7 +145,7 @@ class SystemFit:
         self.restrictions = restrictions
         self.covariance = covariance
         self.inference = inference
-        names = system.equation_names
+        names = system._names  # read only here (equation_names hands users a copy)
         self._names = names
         self._coef_index = coef_index(names, system._regressors)
 

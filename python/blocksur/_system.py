@@ -30,6 +30,7 @@ _COVARIANCES = ("classical", "hc0", "hc1")
 
 
 @functools.cache
+@functools.lru_cache(maxsize=1)
 def _default_memory_limit() -> float:
     try:
         return 0.5 * os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
@@ -276,9 +277,12 @@ class EquationSystem(SystemLabels):
     def direct_memory(self) -> int:
         """Bytes the direct solver needs beyond the data: the (K+N)^2 cross-products plus
         three K x K matrices (the GLS matrix, its factor, the covariance)."""
-        k = sum(len(r) for r in self._regressors)
-        p = k + self.n_eq
-        return 8 * (p * p + 3 * k * k)
+        cached = self.__dict__.get("_direct_memory")
+        if cached is None:
+            k = sum(len(r) for r in self._regressors)
+            p = k + self.n_eq
+            cached = self.__dict__["_direct_memory"] = 8 * (p * p + 3 * k * k)
+        return cached
 
     def fit(
         self,
