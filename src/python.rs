@@ -46,7 +46,6 @@ fn raise(py: Python<'_>, err: SurError) -> PyErr {
 
 /// Checks for Ctrl-C from inside released-GIL work: briefly takes the interpreter lock and runs
 /// Python's signal handlers; keeps the KeyboardInterrupt (or other error) they raise.
-#[derive(Default)]
 /// With a `callback`, each check also calls it with the number of checks so far (a progress
 /// hook: one call per equation and row block of the data pass, per GLS step of a fit); an
 /// exception it raises stops the work and is re-raised.
@@ -54,6 +53,26 @@ struct Interrupt {
     error: std::sync::Mutex<Option<PyErr>>,
     callback: Option<Py<PyAny>>,
     count: std::sync::atomic::AtomicUsize,
+    /// Without a callback Python is asked at most once per `QUIET`, the first time `QUIET`
+    /// after the start (taking the interpreter lock back costs more than a small system's
+    /// whole data pass): `last` is the time of the last check, in ns since `start`.
+    start: std::time::Instant,
+    last: std::sync::atomic::AtomicU64,
+}
+
+/// Least time between two signal checks of work without a progress callback.
+const QUIET: std::time::Duration = std::time::Duration::from_millis(5);
+
+impl Default for Interrupt {
+    fn default() -> Self {
+        Interrupt {
+            error: Default::default(),
+            callback: None,
+            count: Default::default(),
+            start: std::time::Instant::now(),
+            last: Default::default(),
+        }
+    }
 }
 
 impl Interrupt {
@@ -62,6 +81,14 @@ impl Interrupt {
     }
 
     fn requested(&self) -> bool {
+        if self.callback.is_none() {
+            use std::sync::atomic::Ordering::Relaxed;
+            let now = self.start.elapsed().as_nanos() as u64;
+            if now < self.last.load(Relaxed) + QUIET.as_nanos() as u64 {
+                return self.error.lock().map(|e| e.is_some()).unwrap_or(true);
+            }
+            self.last.store(now, Relaxed);
+        }
         Python::attach(|py| {
             let mut outcome = py.check_signals();
             if let (Ok(()), Some(cb)) = (&outcome, &self.callback) {
