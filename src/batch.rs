@@ -119,8 +119,12 @@ impl<'a> Systems for Stacked<'a> {
         SystemData::new(
             (0..self.ys.len())
                 .map(|i| {
-                    Equation::new(self.names[i].clone(), self.ys[i].slice(s![a..b]), self.xs[i].slice(s![a..b, ..]))
-                        .with_regressors(self.regressors[i].clone())
+                    Equation::named(
+                        self.names[i].clone(),
+                        self.ys[i].slice(s![a..b]),
+                        self.xs[i].slice(s![a..b, ..]),
+                        self.regressors[i].clone(),
+                    )
                 })
                 .collect(),
         )

@@ -561,6 +561,7 @@ fn factor_into(
 /// precision removes the second, the projection the part of the first in the column space of
 /// X. Every residual variance and standard error inherits rho. `q` holds Q (T x k,
 /// column-major), `r` R in data units (k x k, row-major).
+#[allow(clippy::too_many_arguments)]
 pub(crate) fn refine_fit(
     x: ArrayView2<f64>,
     y: ArrayView1<f64>,

@@ -151,7 +151,7 @@ fn equations<'a>(
         .zip(xs)
         .zip(names.iter().zip(regressors))
         .map(|((y, x), (name, regs))| {
-            Equation::new(name.clone(), y.as_array(), x.as_array()).with_regressors(regs.clone())
+            Equation::named(name.clone(), y.as_array(), x.as_array(), regs.clone())
         })
         .collect();
     Ok(SystemData::new(eqs))

@@ -79,7 +79,7 @@ fn chol(a: &mut [f64], n: usize) -> Option<f64> {
         for l in 0..j {
             d -= a[j * n + l] * a[j * n + l];
         }
-        if !(d > 0.0) || !d.is_finite() {
+        if d.is_nan() || d <= 0.0 || d.is_infinite() {
             return None;
         }
         worst = worst.min(d / dmax);

@@ -21,6 +21,11 @@ impl<'a> Equation<'a> {
         Equation { name: name.into(), y, x, regressors }
     }
 
+    /// An equation with the given regressor names (one per column of `x`).
+    pub fn named(name: impl Into<String>, y: ArrayView1<'a, f64>, x: ArrayView2<'a, f64>, regressors: Vec<String>) -> Self {
+        Equation { name: name.into(), y, x, regressors }
+    }
+
     /// The same equation with the given regressor names.
     pub fn with_regressors(mut self, names: Vec<String>) -> Self {
         self.regressors = names;
@@ -30,6 +35,17 @@ impl<'a> Equation<'a> {
     pub fn n_regressors(&self) -> usize {
         self.x.ncols()
     }
+}
+
+/// The index of the first item whose key an earlier item already has: a plain scan for the
+/// few names of a small system (hashing costs more than its whole check), a hash set for many.
+fn first_duplicate<'k>(keys: impl ExactSizeIterator<Item = &'k str>) -> Option<usize> {
+    let keys: Vec<&str> = keys.collect();
+    if keys.len() <= 32 {
+        return (1..keys.len()).find(|&i| keys[..i].contains(&keys[i]));
+    }
+    let mut seen = std::collections::HashSet::with_capacity(keys.len());
+    keys.iter().position(|k| !seen.insert(*k))
 }
 
 /// A system of equations observed on a common sample of T rows.
@@ -68,9 +84,9 @@ impl<'a> SystemData<'a> {
     pub fn validate_shapes(&self, whole: bool) -> Result<usize> {
         let first = self.equations.first().ok_or(SurError::EmptySystem)?;
         let t = first.y.len();
-        let mut seen = std::collections::HashSet::new();
-        for eq in &self.equations {
-            if !seen.insert(eq.name.as_str()) {
+        let dup = first_duplicate(self.equations.iter().map(|e| e.name.as_str()));
+        for (i, eq) in self.equations.iter().enumerate() {
+            if dup == Some(i) {
                 return Err(SurError::ShapeMismatch {
                     equation: eq.name.clone(),
                     detail: "the name is used by more than one equation; names must be unique".into(),
@@ -100,11 +116,8 @@ impl<'a> SystemData<'a> {
                     eq.x.ncols()
                 )));
             }
-            let mut names = std::collections::HashSet::new();
-            for r in &eq.regressors {
-                if !names.insert(r.as_str()) {
-                    return Err(shape(format!("regressor name '{r}' appears twice")));
-                }
+            if let Some(j) = first_duplicate(eq.regressors.iter().map(|r| r.as_str())) {
+                return Err(shape(format!("regressor name '{}' appears twice", eq.regressors[j])));
             }
             if whole && t <= eq.x.ncols() {
                 return Err(SurError::TooFewObservations {

@@ -780,3 +780,24 @@ fn small_dense_kernels_match_lapack() {
     bad[[3, 3]] = -1.0;
     assert!(chol_lower(to_fortran(&bad)).is_none());
 }
+
+/// Duplicate names are found for few and for many equations (the scan and the hash-set paths
+/// of the name check), naming the first repeated one.
+#[test]
+fn duplicate_names_are_reported_for_few_and_many_equations() {
+    for n in [3usize, 40] {
+        let (ys, xs) = system(&vec![2; n], 20, 77);
+        let mut d = data(&ys, &xs);
+        d.equations[n - 1].name = d.equations[1].name.clone();
+        match d.validate() {
+            Err(SurError::ShapeMismatch { equation, detail }) => {
+                assert_eq!(equation, "e1");
+                assert!(detail.contains("more than one equation"), "{detail}");
+            }
+            other => panic!("expected a duplicate-name error, got {other:?}"),
+        }
+        let mut d = data(&ys, &xs);
+        d.equations[0].regressors = vec!["a".into(), "a".into()];
+        assert!(matches!(d.validate(), Err(SurError::ShapeMismatch { detail, .. }) if detail.contains("'a' appears twice")));
+    }
+}
