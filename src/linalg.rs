@@ -12,6 +12,24 @@ pub fn gram(w: ArrayView2<f64>) -> Array2<f64> {
     gram_blocked(w, &|| false).expect("gram without cancellation cannot be interrupted")
 }
 
+/// W'W by dot products of the columns of a column-major T x P buffer, skipping the pairs
+/// (i, j), i >= j, that `skip` names (they stay zero), returned full and symmetric.
+pub(crate) fn gram_dots(buf: &[f64], t: usize, p: usize, skip: impl Fn(usize, usize) -> bool) -> Array2<f64> {
+    let mut g = Array2::<f64>::zeros((p, p).f());
+    for j in 0..p {
+        let cj = &buf[j * t..(j + 1) * t];
+        for i in j..p {
+            if skip(i, j) {
+                continue;
+            }
+            let v = dot(&buf[i * t..(i + 1) * t], cj);
+            g[[i, j]] = v;
+            g[[j, i]] = v;
+        }
+    }
+    g
+}
+
 /// Largest T P^2 whose Gram matrix is formed by dot products rather than BLAS syrk.
 pub(crate) const SMALL_GRAM: f64 = 1.0e6;
 
@@ -33,17 +51,8 @@ pub fn gram_blocked(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> R
     // Small: plain dot products. A BLAS call would wake its thread pool, which costs more than
     // the product itself at this size (and the pairwise dot keeps the rounding of long sums).
     if (t as f64) * (p as f64) * (p as f64) <= SMALL_GRAM {
-        let buf = w.as_slice_memory_order().filter(|b| b.len() == t * p);
-        if let Some(buf) = buf {
-            for j in 0..p {
-                let cj = &buf[j * t..(j + 1) * t];
-                for i in j..p {
-                    let v = dot(&buf[i * t..(i + 1) * t], cj);
-                    g[[i, j]] = v;
-                    g[[j, i]] = v;
-                }
-            }
-            return Ok(g);
+        if let Some(buf) = w.as_slice_memory_order().filter(|b| b.len() == t * p) {
+            return Ok(gram_dots(buf, t, p, |_, _| false));
         }
     }
     // About 2e9 flops per block (a fraction of a second), blocks of equal size.
@@ -199,7 +208,7 @@ const SMALL_DENSE: usize = 40;
 
 /// In-place lower Cholesky factor of a column-major n x n buffer (lower triangle read; upper
 /// zeroed), left-looking by columns. False when a pivot is not positive (not positive definite).
-fn small_chol(a: &mut [f64], n: usize) -> bool {
+pub(crate) fn small_chol(a: &mut [f64], n: usize) -> bool {
     for j in 0..n {
         // column j below the diagonal minus L[j.., ..j] L[j, ..j]'
         for l in 0..j {
@@ -227,9 +236,10 @@ fn small_chol(a: &mut [f64], n: usize) -> bool {
     true
 }
 
-/// L^-1 (lower, column-major, n x n) of a lower-triangular column-major L, column by column.
-fn small_lower_inverse(l: &[f64], n: usize) -> Vec<f64> {
-    let mut u = vec![0.0f64; n * n];
+/// U = L^-1 (lower, column-major, n x n, into `u`) of a lower-triangular column-major L,
+/// column by column.
+pub(crate) fn small_lower_inverse(l: &[f64], n: usize, u: &mut [f64]) {
+    u[..n * n].fill(0.0);
     for j in 0..n {
         // solve L x = e_j, x[..j] = 0
         let col = &mut u[j * n..(j + 1) * n];
@@ -242,7 +252,6 @@ fn small_lower_inverse(l: &[f64], n: usize) -> Vec<f64> {
             }
         }
     }
-    u
 }
 
 /// Lower Cholesky factor of a symmetric positive definite matrix (only its lower triangle is
@@ -310,7 +319,8 @@ pub fn chol_inverse(l: &Array2<f64>) -> Result<Array2<f64>> {
     if (n as usize) <= SMALL_DENSE {
         if let Some(lb) = l.as_slice_memory_order() {
             let n = n as usize;
-            let u = small_lower_inverse(lb, n);
+            let mut u = vec![0.0f64; n * n];
+            small_lower_inverse(lb, n, &mut u);
             // (L L')^-1 = U'U, U = L^-1 lower: entry (i, j) sums over rows r >= max(i, j)
             for j in 0..n {
                 for i in j..n {
@@ -763,9 +773,37 @@ fn residual_dot2_with(
         }
         return;
     }
-    let mut cols = vec![0.0f64; k * B.min(t)];
     let rows = x.as_slice().filter(|_| x.is_standard_layout());
     let colmajor = x.as_slice_memory_order().filter(|_| x.t().is_standard_layout() && x.nrows() == t);
+    // a column block for row-major or strided X, from a per-thread buffer (the small-system
+    // path calls this once per equation of every system)
+    thread_local! {
+        static BLOCK: std::cell::Cell<Vec<f64>> = const { std::cell::Cell::new(Vec::new()) };
+    }
+    let mut cols = BLOCK.with(|cell| cell.take());
+    if colmajor.is_none() && cols.len() < k * B.min(t) {
+        cols.resize(k * B.min(t), 0.0);
+    }
+    dot2_blocks(x, y, b, e, &two_prod, rows, colmajor, &mut cols);
+    BLOCK.with(|cell| cell.replace(cols));
+}
+
+/// The blocks of `residual_dot2_with`.
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
+fn dot2_blocks(
+    x: ArrayView2<f64>,
+    y: ndarray::ArrayView1<f64>,
+    b: &[f64],
+    e: &mut [f64],
+    two_prod: &impl Fn(f64, f64) -> (f64, f64),
+    rows: Option<&[f64]>,
+    colmajor: Option<&[f64]>,
+    cols: &mut [f64],
+) {
+    const B: usize = 256;
+    let k = b.len();
+    let t = e.len();
     let mut start = 0;
     while start < t {
         let end = (start + B).min(t);

@@ -200,20 +200,9 @@ fn gram_across(w: &Array2<f64>, offsets: &[usize]) -> Array2<f64> {
     let n = offsets.len() - 1;
     let k = offsets[n];
     let buf = w.as_slice_memory_order().expect("W is column-major and contiguous");
-    let eq_of = |c: usize| if c < k { offsets.partition_point(|&o| o <= c) - 1 } else { c - k };
-    let owner: Vec<usize> = (0..p).map(eq_of).collect();
-    let mut g = Array2::<f64>::zeros((p, p).f());
-    for j in 0..p {
-        let cj = &buf[j * t..(j + 1) * t];
-        for i in (j + 1)..p {
-            if owner[i] != owner[j] {
-                let v = dot(&buf[i * t..(i + 1) * t], cj);
-                g[[i, j]] = v;
-                g[[j, i]] = v;
-            }
-        }
-    }
-    g
+    let owner: Vec<usize> =
+        (0..p).map(|c| if c < k { offsets.partition_point(|&o| o <= c) - 1 } else { c - k }).collect();
+    crate::linalg::gram_dots(buf, t, p, |i, j| owner[i] == owner[j])
 }
 
 /// Column 2-norm, computed with scaling so that huge or tiny columns neither overflow nor underflow.

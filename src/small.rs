@@ -15,7 +15,7 @@ use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
 
 use crate::batch::BatchFit;
 use crate::estimate::{Divisor, FitOptions, Method};
-use crate::linalg::{dot, householder_qr, singular_floor};
+use crate::linalg::{chol_solve_in_place, dot, householder_qr, singular_floor, small_chol, small_lower_inverse};
 use crate::prepare::{rank_tol, refine_fit};
 
 /// Largest K + N the small path takes (the K x K matrices stay in the cache).
@@ -37,7 +37,7 @@ pub(crate) struct Work {
     /// Scratch for one equation's scaled R ((k_i + 1)^2) and tau.
     rs: Vec<f64>,
     tau: Vec<f64>,
-    /// GLS matrix M and its Cholesky factor (K x K row-major), then L^-1.
+    /// GLS matrix M and its Cholesky factor (K x K column-major), then L^-1.
     m: Vec<f64>,
     u: Vec<f64>,
     /// N x N: S, Omega, correlation / its factor, Omega^-1.
@@ -68,76 +68,15 @@ fn sized<T: Clone + Default>(v: &mut Vec<T>, n: usize) -> &mut [T] {
     &mut v[..n]
 }
 
-/// Lower Cholesky factor in place (row-major n x n, lower triangle read and written, upper
-/// zeroed). Returns the smallest squared pivot relative to the largest diagonal entry, or None
-/// when a pivot is not positive.
+/// Lower Cholesky factor in place (column-major n x n, lower triangle read and written, upper
+/// zeroed; `linalg::small_chol`). Returns the smallest squared pivot relative to the largest
+/// diagonal entry, or None when a pivot is not positive.
 fn chol(a: &mut [f64], n: usize) -> Option<f64> {
     let dmax = (0..n).map(|i| a[i * n + i]).fold(0.0f64, f64::max);
-    let mut worst = f64::INFINITY;
-    for j in 0..n {
-        let mut d = a[j * n + j];
-        for l in 0..j {
-            d -= a[j * n + l] * a[j * n + l];
-        }
-        if d.is_nan() || d <= 0.0 || d.is_infinite() {
-            return None;
-        }
-        worst = worst.min(d / dmax);
-        let dj = d.sqrt();
-        a[j * n + j] = dj;
-        for i in (j + 1)..n {
-            let mut v = a[i * n + j];
-            for l in 0..j {
-                v -= a[i * n + l] * a[j * n + l];
-            }
-            a[i * n + j] = v / dj;
-        }
-        for c in (j + 1)..n {
-            a[j * n + c] = 0.0;
-        }
+    if !small_chol(a, n) {
+        return None;
     }
-    Some(worst)
-}
-
-/// Solves L L' x = b in place.
-fn chol_solve(l: &[f64], n: usize, b: &mut [f64]) {
-    for i in 0..n {
-        let mut v = b[i];
-        for c in 0..i {
-            v -= l[i * n + c] * b[c];
-        }
-        b[i] = v / l[i * n + i];
-    }
-    for i in (0..n).rev() {
-        let mut v = b[i];
-        for c in (i + 1)..n {
-            v -= l[c * n + i] * b[c];
-        }
-        b[i] = v / l[i * n + i];
-    }
-}
-
-/// U = L^-1 (lower triangular, row-major) by forward substitution, column by column.
-fn lower_inverse(l: &[f64], n: usize, u: &mut [f64]) {
-    u.fill(0.0);
-    for j in 0..n {
-        u[j * n + j] = 1.0 / l[j * n + j];
-        for i in (j + 1)..n {
-            let mut v = 0.0;
-            for c in j..i {
-                v -= l[i * n + c] * u[c * n + j];
-            }
-            u[i * n + j] = v / l[i * n + i];
-        }
-    }
-}
-
-/// Whether equations 1.. have the regressors of equation 0 (as `SystemData::identical_regressors`).
-fn identical(xs: &[ArrayView2<f64>]) -> bool {
-    let x0 = &xs[0];
-    xs[1..].iter().all(|x| {
-        x.shape() == x0.shape() && (std::ptr::eq(x.as_ptr(), x0.as_ptr()) && x.strides() == x0.strides() || x == x0)
-    })
+    Some((0..n).map(|j| a[j * n + j] * a[j * n + j] / dmax).fold(f64::INFINITY, f64::min))
 }
 
 impl Work {
@@ -208,13 +147,12 @@ impl Work {
             return None;
         }
         // (L L')^-1 = U'U with U = L^-1; Omega^-1 = D (corr^-1) D.
-        lower_inverse(&self.c[..n * n], n, &mut self.u[..n * n]);
+        small_lower_inverse(&self.c[..n * n], n, &mut self.u[..n * n]);
+        let u = &self.u[..n * n];
         for i in 0..n {
             for j in 0..=i {
-                let mut v = 0.0;
-                for r in i..n {
-                    v += self.u[r * n + i] * self.u[r * n + j];
-                }
+                // sum over r >= i of U[r][i] U[r][j] (U column-major)
+                let v = dot(&u[i * n + i..(i + 1) * n], &u[j * n + i..(j + 1) * n]);
                 let v = v * dinv[i] * dinv[j];
                 self.sig[i * n + j] = v;
                 self.sig[j * n + i] = v;
@@ -231,7 +169,7 @@ impl Work {
             let grow = &self.g[self.col[a] * p..(self.col[a] + 1) * p];
             let sa = &self.sig[self.eq[a] * n..(self.eq[a] + 1) * n];
             for b in 0..=a {
-                m[a * k + b] = grow[self.col[b]] * sa[self.eq[b]];
+                m[b * k + a] = grow[self.col[b]] * sa[self.eq[b]]; // (a, b), column-major lower
             }
             let mut h = 0.0;
             for j in 0..n {
@@ -243,7 +181,7 @@ impl Work {
         if worst <= MARGIN * 1e-13 {
             return None;
         }
-        chol_solve(m, k, &mut self.next[..k]);
+        chol_solve_in_place(m, k, &mut self.next[..k]);
         Some(())
     }
 
@@ -286,7 +224,7 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
     if p > MAX_COLUMNS {
         return None;
     }
-    let shared = n > 1 && identical(xs);
+    let shared = n > 1 && xs[1..].iter().all(|x| crate::system::same_matrix(x, &xs[0]));
     for v in [&mut ws.z, &mut ws.delta, &mut ws.next] {
         sized(v, k).fill(0.0);
     }
@@ -450,7 +388,7 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
     let mut se = Array1::<f64>::zeros(k);
     let mut roff = 0;
     if gls_done {
-        lower_inverse(&ws.m[..k * k], k, &mut ws.u[..k * k]);
+        small_lower_inverse(&ws.m[..k * k], k, &mut ws.u[..k * k]);
     }
     for i in 0..n {
         let (a, ki) = (ws.off[i], ws.off[i + 1] - ws.off[i]);
@@ -471,7 +409,7 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
                 for row in a..k {
                     let mut v = 0.0;
                     for l in c..ki {
-                        v += ws.u[row * k + a + l] * rinv[c * ki + l];
+                        v += ws.u[(a + l) * k + row] * rinv[c * ki + l]; // U[row][a + l]
                     }
                     acc += v * v;
                 }

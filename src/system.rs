@@ -48,6 +48,12 @@ fn first_duplicate<'k>(keys: impl ExactSizeIterator<Item = &'k str>) -> Option<u
     keys.iter().position(|k| !seen.insert(*k))
 }
 
+/// Whether two regressor matrices hold the same values: the same view of the same memory, or
+/// equal element by element.
+pub(crate) fn same_matrix(a: &ArrayView2<f64>, b: &ArrayView2<f64>) -> bool {
+    a.shape() == b.shape() && (std::ptr::eq(a.as_ptr(), b.as_ptr()) && a.strides() == b.strides() || a == b)
+}
+
 /// A system of equations observed on a common sample of T rows.
 #[derive(Debug, Clone)]
 pub struct SystemData<'a> {
@@ -133,10 +139,7 @@ impl<'a> SystemData<'a> {
     /// True when every equation has the same regressor matrix (values, not names).
     pub fn identical_regressors(&self) -> bool {
         let x0 = &self.equations[0].x;
-        self.equations[1..].iter().all(|eq| {
-            eq.x.shape() == x0.shape()
-                && (std::ptr::eq(eq.x.as_ptr(), x0.as_ptr()) && eq.x.strides() == x0.strides() || eq.x == *x0)
-        })
+        self.equations[1..].iter().all(|eq| same_matrix(&eq.x, x0))
     }
 
     /// Residuals y_i - X_i b_i computed from the data (T x N), for stacked coefficients `coef`.
