@@ -24,6 +24,7 @@ pub mod batch;
 pub mod cg;
 pub mod error;
 pub mod estimate;
+mod gram;
 pub mod linalg;
 pub mod prepare;
 mod small;

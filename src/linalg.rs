@@ -37,9 +37,8 @@ pub(crate) const SMALL_GRAM: f64 = 1.0e6;
 /// blocks `cancel` is asked whether to stop (it returns Err(Interrupted) when it says yes).
 pub fn gram_blocked(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
     let (t, p) = w.dim();
-    let mut g = Array2::<f64>::zeros((p, p).f());
     if t == 0 || p == 0 {
-        return Ok(g);
+        return Ok(Array2::<f64>::zeros((p, p).f()));
     }
     let owned;
     let w = if w.t().is_standard_layout() {
@@ -55,6 +54,33 @@ pub fn gram_blocked(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> R
             return Ok(gram_dots(buf, t, p, |_, _| false));
         }
     }
+    if let Some(kernel) = crate::gram::Kernel::best() {
+        if let Some(buf) = w.as_slice_memory_order().filter(|b| b.len() == t * p) {
+            let threads = if (t as f64) * (p as f64) * (p as f64) < PARALLEL_GRAM { 1 } else { crate::prepare::work_threads() };
+            return crate::gram::gram_packed(kernel, buf, t, p, threads, cancel);
+        }
+    }
+    gram_syrk(w, cancel)
+}
+
+/// Below this T P^2 one thread forms the Gram matrix (starting a second costs more than it saves).
+const PARALLEL_GRAM: f64 = 4.0e6;
+
+/// W'W by BLAS syrk over row blocks (column-major `w`), asking `cancel` between blocks: the
+/// path for CPUs without AVX2/FMA, and the comparison the benchmarks make.
+pub fn gram_syrk(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
+    let (t, p) = w.dim();
+    let mut g = Array2::<f64>::zeros((p, p).f());
+    if t == 0 || p == 0 {
+        return Ok(g);
+    }
+    let owned;
+    let w = if w.t().is_standard_layout() {
+        w
+    } else {
+        owned = to_fortran(&w.to_owned());
+        owned.view()
+    };
     // About 2e9 flops per block (a fraction of a second), blocks of equal size.
     let rows = ((2e9 / (p as f64 * p as f64)) as usize).clamp(256, t.max(256));
     let rows = t.div_ceil(t.div_ceil(rows));

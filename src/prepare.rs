@@ -318,7 +318,7 @@ fn factor_all(
 ) -> Result<Vec<EquationFactor>> {
     let n = blocks.len();
     let work: f64 = data.equations.iter().map(|e| t as f64 * ((e.n_regressors() + 1) as f64).powi(2)).sum();
-    let threads = if work < PARALLEL_WORK || IN_WORKER.with(|w| w.get()) { 1 } else { cores().min(n).min(MAX_THREADS) };
+    let threads = if work < PARALLEL_WORK { 1 } else { work_threads().min(n) };
     let jobs: Vec<Mutex<Option<WBlock<'_>>>> = blocks.into_iter().map(|b| Mutex::new(Some(b))).collect();
     let results: Vec<Mutex<Option<Result<EquationFactor>>>> = (0..n).map(|_| Mutex::new(None)).collect();
     let next = AtomicUsize::new(0);
@@ -381,6 +381,21 @@ fn factor_all(
 
 /// The cores this process may use, asked once: the standard library reads the cgroup files
 /// on every call, which costs more than a small system's whole data pass.
+/// Threads for this module's own parallel work: the cores, capped by the thread count of the
+/// OpenBLAS pool (the one knob users set, `blas_threads` or threadpoolctl), one on the threads
+/// of a batch of many systems (already one per core).
+pub(crate) fn work_threads() -> usize {
+    extern "C" {
+        fn openblas_get_num_threads() -> std::os::raw::c_int;
+    }
+    if IN_WORKER.with(|w| w.get()) {
+        return 1;
+    }
+    // SAFETY: a plain OpenBLAS query.
+    let blas = unsafe { openblas_get_num_threads() }.max(1) as usize;
+    cores().min(blas).min(MAX_THREADS)
+}
+
 fn cores() -> usize {
     static CORES: std::sync::OnceLock<usize> = std::sync::OnceLock::new();
     *CORES.get_or_init(|| std::thread::available_parallelism().map(|c| c.get()).unwrap_or(1))
@@ -401,8 +416,15 @@ const LONG_COLUMN: usize = 1 << 18;
 const PARALLEL_WORK: f64 = 2.0e6;
 const MAX_THREADS: usize = 8;
 
-/// Step 0 for one equation: copy [X_i | y_i] into `scratch` (checking it is finite), scale each
-/// column to unit norm, QR in place, and write Q_i and the signed residual direction q_i into W.
+/// Step 0 for one equation: copy X_i into `scratch` (checking it is finite), QR in place,
+/// Q_i'y_i, one step of refinement in doubled precision, and write Q_i and the residual
+/// direction q_i into W.
+///
+/// y_i is not part of the QR: the refinement computes the residual from the data anyway,
+/// and leaving it out saves a fifth to a third of the QR's passes over the rows. Columns are
+/// not scaled either (Householder QR is columnwise backward stable, so scaling changes
+/// nothing but over- and underflow): only a column whose norm is far from 1 is scaled. The
+/// rank and condition checks use R with unit-norm columns, as before.
 fn factor_into(
     eq: &Equation,
     t: usize,
@@ -412,15 +434,14 @@ fn factor_into(
     stop: &dyn Fn() -> bool,
 ) -> Result<EquationFactor> {
     let k = eq.n_regressors();
-    let m = k + 1;
-    if scratch.len() < t * (m + 1) {
-        scratch.resize(t * (m + 1), 0.0);
+    if scratch.len() < t * (k + 1) {
+        scratch.resize(t * (k + 1), 0.0);
     }
-    // [X_i | y_i], then Q_i and the QR's residual direction; then the refined residual
-    let (scratch, ebuf) = scratch[..t * (m + 1)].split_at_mut(t * m); // all overwritten below
+    // X_i, then Q_i; then y_i and the refined residual
+    let (scratch, ebuf) = scratch[..t * (k + 1)].split_at_mut(t * k); // all overwritten below
     {
         // in row blocks, asking `stop` between them (a long copy takes a while)
-        let mut a = ArrayViewMut2::from_shape((t, m).f(), &mut scratch[..]).expect("t x m column-major");
+        let mut a = ArrayViewMut2::from_shape((t, k).f(), &mut scratch[..]).expect("t x k column-major");
         let mut start = 0;
         while start < t {
             if stop() {
@@ -440,14 +461,15 @@ fn factor_into(
                         }
                     }
                 }
-                None => a.slice_mut(s![start..end, ..k]).assign(&eq.x.slice(s![start..end, ..])),
+                None => a.slice_mut(s![start..end, ..]).assign(&eq.x.slice(s![start..end, ..])),
             }
-            a.slice_mut(s![start..end, k]).assign(&eq.y.slice(s![start..end]));
             start = end;
         }
     }
-    let mut norms = Vec::with_capacity(m);
-    for j in 0..m {
+    // Column norms; a column far from unit scale is scaled (by `scale[j]`) against overflow.
+    let mut norms = Vec::with_capacity(k);
+    let mut scale = Vec::with_capacity(k);
+    for j in 0..k {
         if stop() {
             return Err(SurError::Interrupted);
         }
@@ -459,37 +481,43 @@ fn factor_into(
             check_finite(eq, 0)?;
             scaled_norm(col)
         };
-        if j < k && nj == 0.0 {
+        if nj == 0.0 {
             return Err(zero_column(&eq.name, &eq.regressors[j]));
         }
-        let yscale = if nj > 0.0 { nj } else { 1.0 };
-        if j == k {
-            norms.push(yscale);
+        norms.push(nj);
+        if (1e-100..=1e100).contains(&nj) {
+            scale.push(1.0);
         } else {
-            norms.push(nj);
-        }
-        let inv = 1.0 / norms[j];
-        for v in col.iter_mut() {
-            *v *= inv;
+            let inv = 1.0 / nj;
+            for v in col.iter_mut() {
+                *v *= inv;
+            }
+            scale.push(nj);
         }
     }
     let (tss_centred, tss_raw) = tss(eq.y);
-    let rs = thin_qr_in_place(scratch, t, m, stop).map_err(|e| match e {
+    if !(tss_raw.is_finite() && tss_centred.is_finite()) {
+        check_finite(eq, 0)?;
+    }
+    let rq = thin_qr_in_place(scratch, t, k, stop).map_err(|e| match e {
         SurError::Interrupted => e,
         e => SurError::numerical(&format!("QR of equation '{}'", eq.name), e),
     })?;
-    check_rank(&eq.name, &eq.regressors, &rs, &norms[..k], t)?;
-    let yscale = norms[k];
-    let mut r = rs.slice(s![..k, ..k]).to_owned();
+    // R in data units, and with unit-norm columns for the rank and condition checks
+    let mut r = rq;
+    let mut rs = r.clone();
     for j in 0..k {
-        r.column_mut(j).mapv_inplace(|v| v * norms[j]);
+        let (to_data, to_unit) = (scale[j], scale[j] / norms[j]);
+        r.column_mut(j).mapv_inplace(|v| v * to_data);
+        rs.column_mut(j).mapv_inplace(|v| v * to_unit);
     }
-    let mut z = rs.slice(s![..k, k]).mapv(|v| v * yscale);
-    let last = rs[[k, k]];
-    let sign = if last < 0.0 { -1.0 } else { 1.0 };
+    check_rank(&eq.name, &eq.regressors, &rs, &norms, t)?;
     if stop() {
         return Err(SurError::Interrupted);
     }
+    // z = Q'y (y copied first: it may be a strided view)
+    ebuf.iter_mut().zip(eq.y.iter()).for_each(|(d, v)| *d = *v);
+    let mut z = Array1::from_iter((0..k).map(|j| dot(&scratch[j * t..(j + 1) * t], ebuf)));
     let rho = refine_fit(
         eq.x,
         eq.y,
@@ -530,13 +558,45 @@ fn factor_into(
             d.write(v * inv);
         }
     } else {
-        // an exact fit: any unit vector orthogonal to Q_i serves, the QR's own one
-        for (d, v) in wy.iter_mut().zip(&scratch[k * t..]) {
-            d.write(sign * v);
+        // an exact fit: any unit vector orthogonal to Q_i serves
+        orthogonal_unit(&scratch[..k * t], t, k, ebuf);
+        for (d, v) in wy.iter_mut().zip(ebuf.iter()) {
+            d.write(*v);
         }
     }
     let spans_constant = (t as f64 - s2).abs() <= 1e-9 * t as f64;
     Ok(EquationFactor { r, z, rho, spans_constant, tss_centred, tss_raw, cond })
+}
+
+/// A unit vector orthogonal to the k orthonormal columns in `q` (T x k, column-major, k < T):
+/// the first of the unit vectors e_0 .. e_k whose part orthogonal to Q keeps a squared norm of
+/// at least 1/(k + 1) (one must: those parts' squared norms add up to at least 1), projected
+/// twice ("twice is enough") and normalised.
+fn orthogonal_unit(q: &[f64], t: usize, k: usize, out: &mut [f64]) {
+    let out = &mut out[..t];
+    let mut best = (0usize, -1.0f64);
+    for c in 0..=k.min(t - 1) {
+        // |P e_c|^2 = sum_j Q[c, j]^2
+        let inside: f64 = (0..k).map(|j| q[j * t + c] * q[j * t + c]).sum();
+        let outside = 1.0 - inside;
+        if outside > best.1 {
+            best = (c, outside);
+        }
+        if outside >= 1.0 / (k as f64 + 1.0) {
+            break;
+        }
+    }
+    out.fill(0.0);
+    out[best.0] = 1.0;
+    for _ in 0..2 {
+        for j in 0..k {
+            let qj = &q[j * t..(j + 1) * t];
+            let c = dot(qj, out);
+            crate::linalg::axpy(out, qj, -c);
+        }
+    }
+    let n = dot(out, out).sqrt();
+    out.iter_mut().for_each(|v| *v /= n);
 }
 
 /// One step of iterative refinement of an equation's least-squares fit in the data's own units

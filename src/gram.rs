@@ -1,0 +1,407 @@
+//! The Gram matrix W'W of a tall column-major matrix by a packed, register-blocked kernel
+//! (AVX-512, or AVX2 + FMA), run on this module's own threads.
+//!
+//! Why not BLAS syrk: the system OpenBLAS (0.3.21 on the target machine) runs syrk for the
+//! shapes of the data pass (P of a few hundred, T in the thousands) at about the speed of one
+//! thread even with a pool of two, and its idle workers spin for a tenth of a second after a
+//! call, competing with the threads of the next step. Here each block of KC rows of W is packed
+//! once into panels of `width` columns (row-interleaved), shared by all threads as both
+//! operands; the threads then claim units of the lower triangle (one row panel against up to
+//! NC columns) and add `width` x `width`/2 tiles, kept in registers over the block's rows,
+//! into the product. Each entry is summed block by block in a fixed order, whichever thread
+//! adds a block: the result does not depend on the number of threads.
+
+use ndarray::{Array2, ShapeBuilder};
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::sync::Barrier;
+
+use crate::error::{Result, SurError};
+
+/// Rows of W per block, at most: a tile is then 256 steps of the kernel.
+const KC: usize = 128;
+
+/// Columns of the product per unit of work (their packed panels, NC x KC, fit in L2).
+const NC: usize = 256;
+
+/// Rows per block for `p` packed columns: KC, or fewer so that the two packed buffers stay
+/// under 24 MB (the data pass of very wide systems is held to a memory budget).
+fn block_rows(p: usize) -> usize {
+    ((24 << 20) / (16 * p.max(1))).clamp(64, KC) / 16 * 16
+}
+
+/// The two kernels: an AVX-512 one (16 x 8 tiles from 16-wide panels) and an AVX2 + FMA one
+/// (8 x 4 tiles from 8-wide panels). In both, a tile's columns are half of one panel, so a
+/// single packed copy of each row block serves as both operands of the product.
+#[derive(Clone, Copy, PartialEq, Eq, Debug)]
+pub(crate) enum Kernel {
+    Avx512,
+    Avx2,
+}
+
+impl Kernel {
+    /// The best kernel this CPU runs, or None (then BLAS syrk serves).
+    pub(crate) fn best() -> Option<Kernel> {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::is_x86_feature_detected!("avx512f") {
+                return Some(Kernel::Avx512);
+            }
+            if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
+                return Some(Kernel::Avx2);
+            }
+        }
+        None
+    }
+
+    /// Panel width: rows of a tile; a tile has half as many columns.
+    fn width(self) -> usize {
+        match self {
+            Kernel::Avx512 => 16,
+            Kernel::Avx2 => 8,
+        }
+    }
+
+    /// Adds the tile sum over k < kc of a[k width + ii] b[k width + jj] (ii < width, jj <
+    /// width / 2) into C at `c` (column-major, leading dimension `ldc`), rows ii < `rows` and
+    /// columns jj < `cols` of the tile only.
+    ///
+    /// # Safety
+    /// The CPU has the kernel's features; `a` and `b` point to kc rows of `width` values (b may
+    /// point into the middle of a row: only its first width / 2 values are read); `c` plus the
+    /// tile's rows and columns lies inside C, and no other thread writes there meanwhile.
+    #[allow(clippy::too_many_arguments)]
+    unsafe fn run(self, kc: usize, a: *const f64, b: *const f64, c: *mut f64, ldc: usize, rows: usize, cols: usize) {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: passed on from the caller.
+        unsafe {
+            match self {
+                Kernel::Avx512 => kernel_16x8(kc, a, b, c, ldc, rows, cols),
+                Kernel::Avx2 => kernel_8x4(kc, a, b, c, ldc, rows, cols),
+            }
+        }
+        #[cfg(not(target_arch = "x86_64"))]
+        unreachable!("no kernel off x86_64: {kc} {a:?} {b:?} {c:?} {ldc} {rows} {cols}")
+    }
+}
+
+/// The product written by the threads: raw because they write disjoint rows of it.
+struct Out {
+    ptr: *mut f64,
+    p: usize,
+}
+// SAFETY: within a block each row tile is claimed by one thread, blocks are ordered by the
+// barriers, and the array outlives the scoped threads.
+unsafe impl Sync for Out {}
+
+/// The two packed copies of row blocks (double-buffered: while one block is multiplied, the
+/// next may be packed), written by all threads between barriers.
+struct Panels {
+    ptr: [*mut f64; 2],
+}
+// SAFETY: between two barriers each thread writes only its own panels of the buffer being
+// packed, and the buffer being read is not written (see `lower_rows`).
+unsafe impl Sync for Panels {}
+
+/// W'W for the column-major T x P matrix in `w` (leading dimension T), full and symmetric,
+/// by `kernel` (one this CPU runs: `Kernel::best`) on up to `threads` threads (the calling one
+/// included; only it asks `cancel`, once per block of KC rows).
+pub(crate) fn gram_packed(
+    kernel: Kernel,
+    w: &[f64],
+    t: usize,
+    p: usize,
+    threads: usize,
+    cancel: &(dyn Fn() -> bool + Sync),
+) -> Result<Array2<f64>> {
+    assert_eq!(w.len(), t * p, "gram_packed: W is not T x P");
+    let mut g = Array2::<f64>::zeros((p, p).f());
+    if t == 0 || p == 0 {
+        return Ok(g);
+    }
+    let pw = kernel.width();
+    let groups = p.div_ceil(pw);
+    let parts = threads.clamp(1, groups);
+    let kc_max = block_rows(groups * pw);
+    // 64-byte aligned (a half panel row of the AVX-512 kernel is then one cache line)
+    let len = groups * pw * kc_max;
+    let mut bufs = [vec![0.0f64; len + 8], vec![0.0f64; len + 8]];
+    let aligned = |b: &mut Vec<f64>| {
+        let off = b.as_ptr().align_offset(64);
+        // SAFETY: off < 8 (f64 alignment is 8), within the 8 spare values.
+        unsafe { b.as_mut_ptr().add(off) }
+    };
+    let panels = Panels { ptr: [aligned(&mut bufs[0]), aligned(&mut bufs[1])] };
+    let out = Out { ptr: g.as_mut_ptr(), p };
+    let stop = AtomicBool::new(false);
+    let barrier = Barrier::new(parts);
+    let (packed, done) = (AtomicUsize::new(0), AtomicUsize::new(0));
+    // Column blocks in turn; within one, the row panels from the bottom (the longest) up.
+    let mut units = Vec::new();
+    for jc in (0..p).step_by(NC) {
+        for gi in (jc / pw..groups).rev() {
+            units.push((gi, jc));
+        }
+    }
+    let job = Job { kernel, w, t, p, kc_max, groups, units, packed: &packed, done: &done, panels: &panels, out: &out, stop: &stop, barrier: &barrier };
+    if parts > 1 {
+        std::thread::scope(|sc| {
+            for _ in 1..parts {
+                let job = &job;
+                sc.spawn(move || job.lower_rows(false, &|| false));
+            }
+            job.lower_rows(true, cancel);
+        });
+    } else {
+        job.lower_rows(true, cancel);
+    }
+    drop(bufs);
+    if stop.load(Ordering::Relaxed) {
+        return Err(SurError::Interrupted);
+    }
+    // The tiles on the diagonal also wrote some entries above it; mirror the lower triangle.
+    for j in 0..p {
+        for i in (j + 1)..p {
+            g[[j, i]] = g[[i, j]];
+        }
+    }
+    Ok(g)
+}
+
+struct Job<'a> {
+    kernel: Kernel,
+    w: &'a [f64],
+    t: usize,
+    p: usize,
+    kc_max: usize,
+    groups: usize,
+    /// (row panel, first column) of each unit of product work, in claiming order.
+    units: Vec<(usize, usize)>,
+    packed: &'a AtomicUsize,
+    done: &'a AtomicUsize,
+    panels: &'a Panels,
+    out: &'a Out,
+    stop: &'a AtomicBool,
+    barrier: &'a Barrier,
+}
+
+impl Job<'_> {
+    /// One thread's part: for each block of KC rows of W, pack panels, wait for the others,
+    /// then add row tiles into the product. Panels and row tiles are claimed one at a time
+    /// (largest rows first), so a thread delayed by other load does less of the work. Each
+    /// entry of the product is still summed block by block in a fixed order, whichever thread
+    /// adds a block's tile: the result does not depend on the threads.
+    ///
+    /// One barrier per block: the buffers alternate, and a thread packs block b + 1 only after
+    /// every thread has passed block b's barrier, hence finished multiplying block b - 1, which
+    /// used the same buffer. Row tiles of a block are written by one thread each, and blocks
+    /// are ordered by the barriers.
+    fn lower_rows(&self, is_caller: bool, cancel: &dyn Fn() -> bool) {
+        let (t, p, pw) = (self.t, self.p, self.kernel.width());
+        let half = pw / 2;
+        let mut t0 = 0;
+        let mut block = 0;
+        while t0 < t {
+            let kc = self.kc_max.min(t - t0);
+            let buf = self.panels.ptr[block % 2];
+            while let Some(g) = claim(self.packed, block, self.groups) {
+                // SAFETY: panel g of this buffer is this thread's to write (claimed once) until
+                // the barrier; no thread reads this buffer until then.
+                let dst = unsafe { std::slice::from_raw_parts_mut(buf.add(g * pw * kc), pw * kc) };
+                match pw {
+                    16 => pack::<16>(self.w, t, t0, kc, g * 16, p, dst),
+                    _ => pack::<8>(self.w, t, t0, kc, g * 8, p, dst),
+                }
+            }
+            if is_caller && cancel() {
+                self.stop.store(true, Ordering::Relaxed);
+            }
+            self.barrier.wait();
+            if self.stop.load(Ordering::Relaxed) {
+                return;
+            }
+            // Units: the row tiles of one panel (pw rows) against one block of NC columns,
+            // column blocks in turn (their panels stay in L2 while the row panels stream).
+            while let Some(u) = claim(self.done, block, self.units.len()) {
+                let (gi, jc) = self.units[u];
+                let i0 = gi * pw;
+                let i_end = (i0 + pw).min(p);
+                // SAFETY: the buffer was fully packed before the barrier and is not written
+                // until every thread passes the next one.
+                let a = unsafe { buf.add(gi * pw * kc) as *const f64 };
+                for j0 in (jc..i_end.min(jc + NC)).step_by(half) {
+                    let b = unsafe { buf.add((j0 / pw) * pw * kc + j0 % pw) as *const f64 };
+                    let j_end = (j0 + half).min(p);
+                    // SAFETY: the CPU has the kernel's features (Kernel::best); a and b hold kc
+                    // rows of pw values; rows i0..i_end and columns j0..j_end (claimed by this
+                    // thread for this block) lie inside the P x P product.
+                    unsafe {
+                        let c = self.out.ptr.add(i0 + j0 * self.out.p);
+                        self.kernel.run(kc, a, b, c, self.out.p, i_end - i0, j_end - j0);
+                    }
+                }
+            }
+            t0 += kc;
+            block += 1;
+        }
+    }
+}
+
+/// Claims the next of `units` units of work of block `block` from `counter`, which counts
+/// the units claimed over all blocks (block b's are b * units .. (b + 1) * units): None when
+/// the block has none left. A counter ahead of the block (other threads already in the next
+/// one cannot be: they wait at its barrier) is impossible, and one behind it is brought up.
+fn claim(counter: &AtomicUsize, block: usize, units: usize) -> Option<usize> {
+    let (start, end) = (block * units, (block + 1) * units);
+    let mut v = counter.load(Ordering::Relaxed);
+    loop {
+        let cur = v.max(start);
+        if cur >= end {
+            return None;
+        }
+        match counter.compare_exchange_weak(v, cur + 1, Ordering::Relaxed, Ordering::Relaxed) {
+            Ok(_) => return Some(cur - start),
+            Err(now) => v = now,
+        }
+    }
+}
+
+static ZEROS: [f64; KC] = [0.0; KC];
+
+/// Rows t0..t0+kc of the columns c0..c0+WIDTH of W (those at or past `end` as zeros) into
+/// `dst`, row-interleaved: dst[tt WIDTH + j] = W[t0 + tt, c0 + j]. Writes are sequential.
+fn pack<const WIDTH: usize>(w: &[f64], t: usize, t0: usize, kc: usize, c0: usize, end: usize, dst: &mut [f64]) {
+    let cols: [&[f64]; WIDTH] =
+        std::array::from_fn(|j| if c0 + j < end { &w[(c0 + j) * t + t0..(c0 + j) * t + t0 + kc] } else { &ZEROS[..kc] });
+    for (tt, d) in dst[..kc * WIDTH].chunks_exact_mut(WIDTH).enumerate() {
+        for (dj, col) in d.iter_mut().zip(&cols) {
+            // SAFETY: tt < kc and every column slice has length kc.
+            *dj = unsafe { *col.get_unchecked(tt) };
+        }
+    }
+}
+
+/// Adds the accumulated tile (column-major, `width` rows) into C: whole columns by vector
+/// loads and stores when the tile is full, element by element otherwise.
+#[inline(always)]
+unsafe fn add_tile(tile: &[f64], width: usize, c: *mut f64, ldc: usize, rows: usize, cols: usize) {
+    for jj in 0..cols {
+        for ii in 0..rows {
+            // SAFETY: (ii, jj) is inside the tile's part of C (the caller's contract).
+            unsafe { *c.add(ii + jj * ldc) += tile[jj * width + ii] };
+        }
+    }
+}
+
+/// One tile kernel per instruction set, from one template: `$w` rows (two vectors of `$l`
+/// lanes) by `$w / 2` columns, one fused multiply-add per term; the tile is added into C by
+/// whole vectors when it is full, element by element (through `add_tile`) at the edges.
+macro_rules! tile_kernel {
+    ($(#[$doc:meta])* $name:ident, $feature:literal, $w:literal, $l:literal,
+     $zero:ident, $load:ident, $store:ident, $splat:expr, $fma:ident, $add:ident) => {
+        $(#[$doc])*
+        #[cfg(target_arch = "x86_64")]
+        #[target_feature(enable = $feature)]
+        unsafe fn $name(kc: usize, a: *const f64, b: *const f64, c: *mut f64, ldc: usize, rows: usize, cols: usize) {
+            use std::arch::x86_64::*;
+            // SAFETY (whole body): the caller's contract of `Kernel::run`.
+            unsafe {
+                for jj in 0..cols {
+                    _mm_prefetch::<_MM_HINT_T0>(c.add(jj * ldc) as *const i8);
+                    _mm_prefetch::<_MM_HINT_T0>(c.add(jj * ldc + $w - 1) as *const i8);
+                }
+                let mut acc = [[$zero(); 2]; $w / 2];
+                for k in 0..kc {
+                    let a0 = $load(a.add(k * $w));
+                    let a1 = $load(a.add(k * $w + $l));
+                    let bk = b.add(k * $w);
+                    for (jj, cj) in acc.iter_mut().enumerate() {
+                        let bj = $splat(bk.add(jj));
+                        cj[0] = $fma(a0, bj, cj[0]);
+                        cj[1] = $fma(a1, bj, cj[1]);
+                    }
+                }
+                if rows == $w && cols == $w / 2 {
+                    for (jj, cj) in acc.iter().enumerate() {
+                        let col = c.add(jj * ldc);
+                        $store(col, $add($load(col), cj[0]));
+                        $store(col.add($l), $add($load(col.add($l)), cj[1]));
+                    }
+                } else {
+                    let mut tile = [0.0f64; 128];
+                    for (jj, cj) in acc.iter().enumerate() {
+                        $store(tile.as_mut_ptr().add(jj * $w), cj[0]);
+                        $store(tile.as_mut_ptr().add(jj * $w + $l), cj[1]);
+                    }
+                    add_tile(&tile, $w, c, ldc, rows, cols);
+                }
+            }
+        }
+    };
+}
+
+tile_kernel!(
+    /// The AVX-512 tile: 16 x 8 in sixteen 8-wide accumulators.
+    kernel_16x8, "avx512f", 16, 8, _mm512_setzero_pd, _mm512_loadu_pd, _mm512_storeu_pd,
+    |p: *const f64| _mm512_set1_pd(*p), _mm512_fmadd_pd, _mm512_add_pd
+);
+tile_kernel!(
+    /// The AVX2 tile: 8 x 4 in eight 4-wide accumulators.
+    kernel_8x4, "avx2,fma", 8, 4, _mm256_setzero_pd, _mm256_loadu_pd, _mm256_storeu_pd,
+    |p: *const f64| _mm256_broadcast_sd(&*p), _mm256_fmadd_pd, _mm256_add_pd
+);
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use approx::assert_relative_eq;
+
+    fn data(t: usize, p: usize) -> Vec<f64> {
+        let mut seed = 7u64;
+        (0..t * p)
+            .map(|_| {
+                seed = seed.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+                (seed >> 11) as f64 / (1u64 << 53) as f64 - 0.3
+            })
+            .collect()
+    }
+
+    /// The packed kernel against plain sums of products (the definition of W'W), on shapes
+    /// that leave partial tiles and row blocks, for 1-3 threads; the result must not depend on
+    /// the thread count at all (each entry is summed by one thread in a fixed order).
+    #[test]
+    fn packed_gram_matches_the_definition_and_ignores_the_thread_count() {
+        let Some(kernel) = Kernel::best() else {
+            return; // the BLAS path serves such CPUs; nothing of this kernel runs there
+        };
+        for &(t, p) in &[(1, 1), (3, 2), (255, 7), (257, 13), (600, 50), (1000, 97), (513, 131)] {
+            let w = data(t, p);
+            let one = gram_packed(kernel, &w, t, p, 1, &|| false).unwrap();
+            #[cfg(target_arch = "x86_64")]
+            if kernel == Kernel::Avx512 {
+                // the AVX2 kernel too, where the CPU runs both: the same sums in the same order
+                assert!(gram_packed(Kernel::Avx2, &w, t, p, 2, &|| false).unwrap() == one, "t={t} p={p}: AVX2 differs");
+            }
+            for i in 0..p {
+                for j in 0..p {
+                    let exact: f64 = (0..t).map(|r| w[i * t + r] * w[j * t + r]).sum();
+                    assert_relative_eq!(one[[i, j]], exact, epsilon = 1e-12 * t as f64, max_relative = 1e-12);
+                    assert_eq!(one[[i, j]], one[[j, i]], "symmetric at {i},{j}");
+                }
+            }
+            for threads in [2, 3] {
+                let many = gram_packed(kernel, &w, t, p, threads, &|| false).unwrap();
+                assert!(many == one, "t={t} p={p}: {threads} threads differ from one");
+            }
+        }
+    }
+
+    #[test]
+    fn packed_gram_stops_when_asked() {
+        let Some(kernel) = Kernel::best() else {
+            return;
+        };
+        let (t, p) = (2000, 40);
+        let w = data(t, p);
+        assert!(matches!(gram_packed(kernel, &w, t, p, 2, &|| true), Err(SurError::Interrupted)));
+    }
+}
