@@ -13,7 +13,10 @@ Example
 FrozenList(['equation', 'regressor'])
 """
 
-from ._core import __version__, blas_threads
+from ._loader import load_core as _load_core
+
+_load_core()
+from ._core import __version__, blas_threads  # noqa: E402
 from ._fit import SystemFit
 from ._tests import HypothesisTestResult
 from ._system import EquationSystem
