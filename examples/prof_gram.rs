@@ -60,6 +60,13 @@ fn main() {
     let g = time(reps, || {
         blocksur::linalg::gram(w.view());
     });
+    if std::env::var("ONLY").as_deref() == Ok("step0") {
+        let mf = time(reps, || {
+            Prepared::new_matrix_free(&data, &|| false).unwrap();
+        });
+        println!("step 0 (matrix-free prepare) {mf:.2} ms");
+        return;
+    }
     let gs = time(reps, || {
         blocksur::linalg::gram_syrk(w.view(), &|| false).unwrap();
     });

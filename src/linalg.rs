@@ -660,6 +660,109 @@ unsafe fn axpy_fma(y: &mut [f64], x: &[f64], alpha: f64) {
     }
 }
 
+/// out[j] = q_j'v for the columns q_j of the column-major T x out.len() block `q`, four
+/// columns per pass over the rows (v is read once per four columns), each by the pairwise
+/// scheme of `dot`.
+pub(crate) fn dots(q: &[f64], t: usize, v: &[f64], out: &mut [f64]) {
+    let v = &v[..t];
+    let col = |j: usize| &q[j * t..(j + 1) * t];
+    let mut j = 0;
+    while j + 4 <= out.len() {
+        out[j..j + 4].copy_from_slice(&dot4([col(j), col(j + 1), col(j + 2), col(j + 3)], v));
+        j += 4;
+    }
+    for (jj, o) in out.iter_mut().enumerate().skip(j) {
+        *o = dot(col(jj), v);
+    }
+}
+
+fn dot4(c: [&[f64]; 4], v: &[f64]) -> [f64; 4] {
+    let n = v.len();
+    if n > 1024 {
+        let h = (n / 2) & !7;
+        let a = dot4(c.map(|x| &x[..h]), &v[..h]);
+        let b = dot4(c.map(|x| &x[h..n]), &v[h..n]);
+        return [a[0] + b[0], a[1] + b[1], a[2] + b[2], a[3] + b[3]];
+    }
+    #[cfg(target_arch = "x86_64")]
+    if fma_available() {
+        // SAFETY: the CPU has AVX2 and FMA (checked once, at run time).
+        return unsafe { dot4_fma(c, v) };
+    }
+    c.map(|x| dot_block_portable(x, v))
+}
+
+/// Four dot products with one vector, each in eight partial sums (two 4-wide registers).
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn dot4_fma(c: [&[f64]; 4], v: &[f64]) -> [f64; 4] {
+    use std::arch::x86_64::*;
+    let n = v.len();
+    assert!(c.iter().all(|x| x.len() >= n));
+    let mut acc = [[_mm256_setzero_pd(); 2]; 4];
+    let mut i = 0;
+    while i + 8 <= n {
+        // SAFETY: i + 7 < n, within v and every column (length checked above).
+        unsafe {
+            let v0 = _mm256_loadu_pd(v.as_ptr().add(i));
+            let v1 = _mm256_loadu_pd(v.as_ptr().add(i + 4));
+            for (a, x) in acc.iter_mut().zip(&c) {
+                a[0] = _mm256_fmadd_pd(_mm256_loadu_pd(x.as_ptr().add(i)), v0, a[0]);
+                a[1] = _mm256_fmadd_pd(_mm256_loadu_pd(x.as_ptr().add(i + 4)), v1, a[1]);
+            }
+        }
+        i += 8;
+    }
+    let mut out = [0.0f64; 4];
+    for ((o, a), x) in out.iter_mut().zip(&acc).zip(&c) {
+        let mut lanes = [0.0f64; 4];
+        // SAFETY: four doubles into a four-double array.
+        unsafe { _mm256_storeu_pd(lanes.as_mut_ptr(), _mm256_add_pd(a[0], a[1])) };
+        let mut s = (lanes[0] + lanes[2]) + (lanes[1] + lanes[3]);
+        for r in i..n {
+            s = x[r].mul_add(v[r], s);
+        }
+        *o = s;
+    }
+    out
+}
+
+/// v -= sum_j c_j q_j for the columns q_j of the column-major T x c.len() block `q`, four
+/// columns per pass over the rows.
+pub(crate) fn sub_combination(v: &mut [f64], q: &[f64], t: usize, c: &[f64]) {
+    let v = &mut v[..t];
+    let col = |j: usize| &q[j * t..(j + 1) * t];
+    let mut j = 0;
+    while j + 4 <= c.len() {
+        let (cols, w) = ([col(j), col(j + 1), col(j + 2), col(j + 3)], [-c[j], -c[j + 1], -c[j + 2], -c[j + 3]]);
+        #[cfg(target_arch = "x86_64")]
+        if fma_available() {
+            // SAFETY: the CPU has AVX2 and FMA (checked once, at run time).
+            unsafe { combination4_fma(v, cols, w) };
+            j += 4;
+            continue;
+        }
+        combination4(v, cols, w);
+        j += 4;
+    }
+    for jj in j..c.len() {
+        axpy(v, col(jj), -c[jj]);
+    }
+}
+
+#[inline(always)]
+fn combination4(v: &mut [f64], c: [&[f64]; 4], w: [f64; 4]) {
+    for ((((o, a), b), d), e) in v.iter_mut().zip(c[0]).zip(c[1]).zip(c[2]).zip(c[3]) {
+        *o = w[3].mul_add(*e, w[2].mul_add(*d, w[1].mul_add(*b, w[0].mul_add(*a, *o))));
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn combination4_fma(v: &mut [f64], c: [&[f64]; 4], w: [f64; 4]) {
+    combination4(v, c, w)
+}
+
 /// Dot product: pairwise over halves down to blocks of 1024, each block summed in eight
 /// independent partial sums (vector registers; a single running sum is a chain of dependent
 /// additions). The rounding error grows with log2(n), not n: over 10^7 rows a running sum

@@ -416,9 +416,9 @@ const LONG_COLUMN: usize = 1 << 18;
 const PARALLEL_WORK: f64 = 2.0e6;
 const MAX_THREADS: usize = 8;
 
-/// Step 0 for one equation: copy X_i into `scratch` (checking it is finite), QR in place,
-/// Q_i'y_i, one step of refinement in doubled precision, and write Q_i and the residual
-/// direction q_i into W.
+/// Step 0 for one equation: copy X_i into its columns of W (checking it is finite), QR in
+/// place there (leaving Q_i), Q_i'y_i, one step of refinement in doubled precision, and the
+/// residual direction q_i into its column of W. `scratch` (per thread) holds the residual.
 ///
 /// y_i is not part of the QR: the refinement computes the residual from the data anyway,
 /// and leaving it out saves a fifth to a third of the QR's passes over the rows. Columns are
@@ -434,14 +434,14 @@ fn factor_into(
     stop: &dyn Fn() -> bool,
 ) -> Result<EquationFactor> {
     let k = eq.n_regressors();
-    if scratch.len() < t * (k + 1) {
-        scratch.resize(t * (k + 1), 0.0);
+    if scratch.len() < t {
+        scratch.resize(t, 0.0);
     }
-    // X_i, then Q_i; then y_i and the refined residual
-    let (scratch, ebuf) = scratch[..t * (k + 1)].split_at_mut(t * k); // all overwritten below
+    let ebuf = &mut scratch[..t]; // y_i, then the refined residual
+    // W's columns of Q_i: one contiguous T x k column-major block
+    let block = wq.as_slice_memory_order_mut().filter(|b| b.len() == t * k).expect("W is column-major");
     {
         // in row blocks, asking `stop` between them (a long copy takes a while)
-        let mut a = ArrayViewMut2::from_shape((t, k).f(), &mut scratch[..]).expect("t x k column-major");
         let mut start = 0;
         while start < t {
             if stop() {
@@ -452,20 +452,29 @@ fn factor_into(
                 // row-major: scatter each row into the k columns (ndarray's strided assign
                 // is several times slower for narrow rows)
                 Some(xs) => {
-                    let cols = a.as_slice_memory_order_mut().expect("fresh column-major view");
                     let rows = &xs[start * k..end * k];
                     for j in 0..k {
                         // column by column: sequential writes, reads within the same lines
-                        for (d, row) in cols[j * t + start..j * t + end].iter_mut().zip(rows.chunks_exact(k)) {
-                            *d = row[j];
+                        for (d, row) in block[j * t + start..j * t + end].iter_mut().zip(rows.chunks_exact(k)) {
+                            d.write(row[j]);
                         }
                     }
                 }
-                None => a.slice_mut(s![start..end, ..]).assign(&eq.x.slice(s![start..end, ..])),
+                None => {
+                    for j in 0..k {
+                        let src = eq.x.slice(s![start..end, j]);
+                        for (d, v) in block[j * t + start..j * t + end].iter_mut().zip(src.iter()) {
+                            d.write(*v);
+                        }
+                    }
+                }
             }
             start = end;
         }
     }
+    // SAFETY: the loop above wrote every one of the t * k values (it returns before this line
+    // when interrupted), and MaybeUninit<f64> has the layout of f64.
+    let scratch: &mut [f64] = unsafe { &mut *(block as *mut [MaybeUninit<f64>] as *mut [f64]) };
     // Column norms; a column far from unit scale is scaled (by `scale[j]`) against overflow.
     let mut norms = Vec::with_capacity(k);
     let mut scale = Vec::with_capacity(k);
@@ -517,7 +526,8 @@ fn factor_into(
     }
     // z = Q'y (y copied first: it may be a strided view)
     ebuf.iter_mut().zip(eq.y.iter()).for_each(|(d, v)| *d = *v);
-    let mut z = Array1::from_iter((0..k).map(|j| dot(&scratch[j * t..(j + 1) * t], ebuf)));
+    let mut z = Array1::<f64>::zeros(k);
+    crate::linalg::dots(scratch, t, ebuf, z.as_slice_mut().expect("fresh vector"));
     let rho = refine_fit(
         eq.x,
         eq.y,
@@ -529,27 +539,10 @@ fn factor_into(
         stop,
     )?;
     let cond = cond_of_scaled(&rs, k);
-    // Write Q_i and q_i into W; the column sums of Q_i say whether it spans the constant.
+    // Q_i is in place in W; its column sums say whether it spans the constant.
     let mut s2 = 0.0;
     for j in 0..k {
-        if stop() {
-            return Err(SurError::Interrupted);
-        }
-        let src = &scratch[j * t..(j + 1) * t];
-        let mut dst = wq.column_mut(j);
-        match dst.as_slice_mut() {
-            Some(d) => {
-                for (d, v) in d.iter_mut().zip(src) {
-                    d.write(*v);
-                }
-            }
-            None => {
-                for (d, v) in dst.iter_mut().zip(src) {
-                    d.write(*v);
-                }
-            }
-        }
-        let sum = crate::linalg::sum(src);
+        let sum = crate::linalg::sum(&scratch[j * t..(j + 1) * t]);
         s2 += sum * sum;
     }
     if rho > 0.0 {
@@ -653,15 +646,23 @@ pub(crate) fn refine_fit(
         );
         start = end;
     }
-    for j in 0..k {
-        if stop() {
-            return Err(SurError::Interrupted);
-        }
-        let qj = &q[j * t..(j + 1) * t];
-        let c = dot(qj, e);
-        z[j] += c;
-        crate::linalg::axpy(e, qj, -c);
+    if stop() {
+        return Err(SurError::Interrupted);
     }
+    // z += Q'e, e -= Q (Q'e): Q is orthonormal to rounding, so one classical projection serves
+    let mut cbuf = [0.0f64; 64];
+    let mut cvec = vec![];
+    let c: &mut [f64] = if k <= 64 {
+        &mut cbuf[..k]
+    } else {
+        cvec.resize(k, 0.0);
+        &mut cvec
+    };
+    crate::linalg::dots(q, t, e, c);
+    for (zj, cj) in z.iter_mut().zip(c.iter()) {
+        *zj += cj;
+    }
+    crate::linalg::sub_combination(e, q, t, c);
     let ss = dot(e, e);
     Ok(if ss.is_finite() && ss > 1e-290 { ss.sqrt() } else { scaled_norm(e) })
 }
