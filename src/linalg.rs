@@ -599,12 +599,11 @@ pub(crate) fn householder_qr(
         r[j * m + j] = x[0];
         let v = &x[1..];
         let tj = tau[j];
+        if tj != 0.0 {
+            reflect_columns(&mut right[..(m - j - 1) * t], t, j, v, tj);
+        }
         for c in 0..(m - j - 1) {
-            let col = &mut right[c * t + j..(c + 1) * t];
-            if tj != 0.0 {
-                reflect(col, v, tj);
-            }
-            r[j * m + j + 1 + c] = col[0];
+            r[j * m + j + 1 + c] = right[c * t + j];
         }
     }
     // Q = H_0 .. H_{m-1} [I_m; 0], built backwards in place as in org2r.
@@ -616,10 +615,7 @@ pub(crate) fn householder_qr(
         let colj = &mut left[j * t..];
         let tj = tau[j];
         if tj != 0.0 {
-            let v = &colj[j + 1..];
-            for c in 0..(m - j - 1) {
-                reflect(&mut right[c * t + j..(c + 1) * t], v, tj);
-            }
+            reflect_columns(&mut right[..(m - j - 1) * t], t, j, &colj[j + 1..], tj);
         }
         for e in colj[j + 1..].iter_mut() {
             *e *= -tj;
@@ -637,6 +633,84 @@ fn reflect(col: &mut [f64], tail: &[f64], tau: f64) {
     let d = tau * (*head + dot(tail, rest));
     *head -= d;
     axpy(rest, tail, -d);
+}
+
+/// `reflect` on rows j.. of each column of the column-major block `cols` (T rows each), up
+/// to four columns per two passes over the rows (the reflector is read once per group).
+fn reflect_columns(cols: &mut [f64], t: usize, j: usize, tail: &[f64], tau: f64) {
+    let mut groups = cols.chunks_mut(4 * t);
+    for group in &mut groups {
+        let n = group.len() / t;
+        let mut it = group.chunks_exact_mut(t).map(|c| &mut c[j..]);
+        match n {
+            4 => reflect_group::<4>(std::array::from_fn(|_| it.next().expect("four columns")), tail, tau),
+            3 => reflect_group::<3>(std::array::from_fn(|_| it.next().expect("three columns")), tail, tau),
+            2 => reflect_group::<2>(std::array::from_fn(|_| it.next().expect("two columns")), tail, tau),
+            _ => {
+                for c in it {
+                    reflect(c, tail, tau);
+                }
+            }
+        }
+    }
+}
+
+/// `reflect` on N columns at once.
+fn reflect_group<const N: usize>(mut cs: [&mut [f64]; N], tail: &[f64], tau: f64) {
+    let s = dotn::<N>(std::array::from_fn(|i| &cs[i][1..]), tail);
+    let mut d = [0.0f64; N];
+    for ((dc, c), sc) in d.iter_mut().zip(cs.iter_mut()).zip(s) {
+        *dc = tau * (c[0] + sc);
+        c[0] -= *dc;
+    }
+    let rows = cs.map(|c| &mut c[1..]);
+    #[cfg(target_arch = "x86_64")]
+    if fma_available() {
+        // SAFETY: the CPU has AVX2 and FMA (checked once, at run time).
+        return unsafe { sub_outer_fma(rows, tail, d) };
+    }
+    sub_outer(rows, tail, d, |a, x, y| a * x + y);
+}
+
+/// cols[c] -= d[c] v for N columns in one pass over the rows.
+#[inline(always)]
+fn sub_outer<const N: usize>(mut cols: [&mut [f64]; N], v: &[f64], d: [f64; N], madd: impl Fn(f64, f64, f64) -> f64) {
+    let w = d.map(|x| -x);
+    let n = v.len();
+    assert!(cols.iter().all(|c| c.len() >= n));
+    for (i, x) in v.iter().enumerate() {
+        for (c, wc) in cols.iter_mut().zip(&w) {
+            // SAFETY: i < n <= every column's length (checked above).
+            let e = unsafe { c.get_unchecked_mut(i) };
+            *e = madd(*wc, *x, *e);
+        }
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn sub_outer_fma<const N: usize>(mut cols: [&mut [f64]; N], v: &[f64], d: [f64; N]) {
+    use std::arch::x86_64::*;
+    let n = v.len();
+    assert!(cols.iter().all(|c| c.len() >= n));
+    let w = d.map(|x| _mm256_set1_pd(-x));
+    let mut i = 0;
+    while i + 4 <= n {
+        // SAFETY: i + 3 < n <= every column's length (checked above).
+        unsafe {
+            let x = _mm256_loadu_pd(v.as_ptr().add(i));
+            for (c, wc) in cols.iter_mut().zip(&w) {
+                let p = c.as_mut_ptr().add(i);
+                _mm256_storeu_pd(p, _mm256_fmadd_pd(*wc, x, _mm256_loadu_pd(p)));
+            }
+        }
+        i += 4;
+    }
+    for (c, dc) in cols.iter_mut().zip(&d) {
+        for r in i..n {
+            c[r] = (-dc).mul_add(v[r], c[r]);
+        }
+    }
 }
 
 /// y += alpha x (fused multiply-adds, 4 wide, where the CPU has them).
@@ -668,7 +742,7 @@ pub(crate) fn dots(q: &[f64], t: usize, v: &[f64], out: &mut [f64]) {
     let col = |j: usize| &q[j * t..(j + 1) * t];
     let mut j = 0;
     while j + 4 <= out.len() {
-        out[j..j + 4].copy_from_slice(&dot4([col(j), col(j + 1), col(j + 2), col(j + 3)], v));
+        out[j..j + 4].copy_from_slice(&dotn([col(j), col(j + 1), col(j + 2), col(j + 3)], v));
         j += 4;
     }
     for (jj, o) in out.iter_mut().enumerate().skip(j) {
@@ -676,30 +750,31 @@ pub(crate) fn dots(q: &[f64], t: usize, v: &[f64], out: &mut [f64]) {
     }
 }
 
-fn dot4(c: [&[f64]; 4], v: &[f64]) -> [f64; 4] {
+/// N dot products with one vector, each by the pairwise scheme of `dot`.
+fn dotn<const N: usize>(c: [&[f64]; N], v: &[f64]) -> [f64; N] {
     let n = v.len();
     if n > 1024 {
         let h = (n / 2) & !7;
-        let a = dot4(c.map(|x| &x[..h]), &v[..h]);
-        let b = dot4(c.map(|x| &x[h..n]), &v[h..n]);
-        return [a[0] + b[0], a[1] + b[1], a[2] + b[2], a[3] + b[3]];
+        let a = dotn(c.map(|x| &x[..h]), &v[..h]);
+        let b = dotn(c.map(|x| &x[h..n]), &v[h..n]);
+        return std::array::from_fn(|i| a[i] + b[i]);
     }
     #[cfg(target_arch = "x86_64")]
     if fma_available() {
         // SAFETY: the CPU has AVX2 and FMA (checked once, at run time).
-        return unsafe { dot4_fma(c, v) };
+        return unsafe { dotn_fma(c, v) };
     }
     c.map(|x| dot_block_portable(x, v))
 }
 
-/// Four dot products with one vector, each in eight partial sums (two 4-wide registers).
+/// N dot products with one vector, each in eight partial sums (two 4-wide registers).
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2,fma")]
-unsafe fn dot4_fma(c: [&[f64]; 4], v: &[f64]) -> [f64; 4] {
+unsafe fn dotn_fma<const N: usize>(c: [&[f64]; N], v: &[f64]) -> [f64; N] {
     use std::arch::x86_64::*;
     let n = v.len();
     assert!(c.iter().all(|x| x.len() >= n));
-    let mut acc = [[_mm256_setzero_pd(); 2]; 4];
+    let mut acc = [[_mm256_setzero_pd(); 2]; N];
     let mut i = 0;
     while i + 8 <= n {
         // SAFETY: i + 7 < n, within v and every column (length checked above).
@@ -713,7 +788,7 @@ unsafe fn dot4_fma(c: [&[f64]; 4], v: &[f64]) -> [f64; 4] {
         }
         i += 8;
     }
-    let mut out = [0.0f64; 4];
+    let mut out = [0.0f64; N];
     for ((o, a), x) in out.iter_mut().zip(&acc).zip(&c) {
         let mut lanes = [0.0f64; 4];
         // SAFETY: four doubles into a four-double array.
@@ -742,7 +817,7 @@ pub(crate) fn sub_combination(v: &mut [f64], q: &[f64], t: usize, c: &[f64]) {
             j += 4;
             continue;
         }
-        combination4(v, cols, w);
+        combination4(v, cols, w, |a, x, y| a * x + y);
         j += 4;
     }
     for jj in j..c.len() {
@@ -751,16 +826,16 @@ pub(crate) fn sub_combination(v: &mut [f64], q: &[f64], t: usize, c: &[f64]) {
 }
 
 #[inline(always)]
-fn combination4(v: &mut [f64], c: [&[f64]; 4], w: [f64; 4]) {
+fn combination4(v: &mut [f64], c: [&[f64]; 4], w: [f64; 4], madd: impl Fn(f64, f64, f64) -> f64) {
     for ((((o, a), b), d), e) in v.iter_mut().zip(c[0]).zip(c[1]).zip(c[2]).zip(c[3]) {
-        *o = w[3].mul_add(*e, w[2].mul_add(*d, w[1].mul_add(*b, w[0].mul_add(*a, *o))));
+        *o = madd(w[3], *e, madd(w[2], *d, madd(w[1], *b, madd(w[0], *a, *o))));
     }
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2,fma")]
 unsafe fn combination4_fma(v: &mut [f64], c: [&[f64]; 4], w: [f64; 4]) {
-    combination4(v, c, w)
+    combination4(v, c, w, f64::mul_add)
 }
 
 /// Dot product: pairwise over halves down to blocks of 1024, each block summed in eight

@@ -517,7 +517,7 @@ fn householder_qr_matches_lapack() {
     use ndarray_linalg::QR;
     let mut rng = Rng(77);
     // (300, 30) and (40, 40) take the LAPACK geqrf/orgqr branch, the rest the written-out one
-    for &(t, m) in &[(7usize, 1usize), (50, 5), (200, 12), (9, 9), (300, 30), (40, 40)] {
+    for &(t, m) in &[(7usize, 1usize), (50, 5), (200, 12), (9, 9), (3000, 7), (300, 30), (40, 40)] {
         let a = Array2::from_shape_fn((t, m).f(), |_| rng.normal());
         let (q, r) = crate::linalg::thin_qr(a.clone()).unwrap();
         let (_, rl) = a.qr().unwrap();
@@ -799,5 +799,32 @@ fn duplicate_names_are_reported_for_few_and_many_equations() {
         let mut d = data(&ys, &xs);
         d.equations[0].regressors = vec!["a".into(), "a".into()];
         assert!(matches!(d.validate(), Err(SurError::ShapeMismatch { detail, .. }) if detail.contains("'a' appears twice")));
+    }
+}
+
+/// The several-column kernels of step 0 (`dots`: q_j'v; `sub_combination`: v - Q c) against
+/// plain loops, for column counts that leave groups of 1-3 and lengths on both sides of the
+/// pairwise split (1024) and of the vector width.
+#[test]
+fn column_group_kernels_match_plain_loops() {
+    let mut rng = Rng(5);
+    for &t in &[1usize, 3, 8, 13, 1023, 1025, 2500] {
+        for k in 0..=9 {
+            let q: Vec<f64> = (0..t * k).map(|_| rng.normal()).collect();
+            let v: Vec<f64> = (0..t).map(|_| rng.normal()).collect();
+            let mut d = vec![0.0; k];
+            crate::linalg::dots(&q, t, &v, &mut d);
+            for j in 0..k {
+                let plain: f64 = (0..t).map(|i| q[j * t + i] * v[i]).sum();
+                assert_relative_eq!(d[j], plain, epsilon = 1e-12 * (t as f64).sqrt(), max_relative = 1e-12);
+            }
+            let c: Vec<f64> = (0..k).map(|_| rng.normal()).collect();
+            let mut w = v.clone();
+            crate::linalg::sub_combination(&mut w, &q, t, &c);
+            for i in 0..t {
+                let plain = v[i] - (0..k).map(|j| c[j] * q[j * t + i]).sum::<f64>();
+                assert_relative_eq!(w[i], plain, epsilon = 1e-13, max_relative = 1e-13);
+            }
+        }
     }
 }
