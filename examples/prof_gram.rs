@@ -57,6 +57,15 @@ fn main() {
     let p = n * (k + 1);
     let w = Array2::from_shape_fn((t, p).f(), |_| rnd());
     let reps: usize = std::env::var("REPS").ok().and_then(|r| r.parse().ok()).unwrap_or(21);
+    if std::env::var("ONLY").as_deref() == Ok("ifgls") {
+        let prepared = Prepared::new(&data).unwrap();
+        let o = blocksur::FitOptions { method: blocksur::Method::IteratedFgls, tol: 0.0, max_iter: 12, ..Default::default() };
+        let e = time(reps, || {
+            prepared.estimate(&o).unwrap();
+        });
+        println!("ifgls (12 steps) {e:.3} ms");
+        return;
+    }
     if std::env::var("ONLY").as_deref() == Ok("step0") {
         let mf = time(reps, || {
             Prepared::new_matrix_free(&data, &|| false).unwrap();

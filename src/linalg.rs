@@ -230,7 +230,7 @@ pub(crate) fn chol_solve_in_place(l: &[f64], n: usize, b: &mut [f64]) {
 /// Up to this order the Cholesky factor, its solves and inverse, and the condition numbers are
 /// computed here rather than by LAPACK: for a handful of rows a LAPACK call costs more in
 /// overhead (and OpenBLAS thread wake-ups) than in arithmetic.
-const SMALL_DENSE: usize = 40;
+const SMALL_DENSE: usize = 64;
 
 /// In-place lower Cholesky factor of a column-major n x n buffer (lower triangle read; upper
 /// zeroed), left-looking by columns. False when a pivot is not positive (not positive definite).

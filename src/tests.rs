@@ -743,7 +743,7 @@ fn iterated_steps_follow_the_dense_textbook_iteration() {
     }
 }
 
-/// The written-out small dense kernels (order <= 40) against LAPACK through ndarray-linalg:
+/// The written-out small dense kernels (order <= 64) against LAPACK through ndarray-linalg:
 /// Cholesky factor, solve, inverse, and the exact 1-norm condition numbers against the
 /// definition ||A||_1 ||A^-1||_1 with LAPACK's inverse.
 #[test]
@@ -751,7 +751,7 @@ fn small_dense_kernels_match_lapack() {
     use crate::linalg::{chol_inverse, chol_lower, chol_solve, spd_condition, to_fortran, triangular_condition};
     use ndarray_linalg::Cholesky;
     let mut rng = Rng(4242);
-    for n in [1usize, 2, 5, 17, 40] {
+    for n in [1usize, 2, 5, 17, 40, 64] {
         let b = Array2::from_shape_fn((n + 3, n), |_| rng.normal());
         let a = b.t().dot(&b) + Array2::<f64>::eye(n) * 0.1;
         let l = chol_lower(to_fortran(&a)).unwrap();
