@@ -565,7 +565,7 @@ fn factor_into(
 /// the first of the unit vectors e_0 .. e_k whose part orthogonal to Q keeps a squared norm of
 /// at least 1/(k + 1) (one must: those parts' squared norms add up to at least 1), projected
 /// twice ("twice is enough") and normalised.
-fn orthogonal_unit(q: &[f64], t: usize, k: usize, out: &mut [f64]) {
+pub(crate) fn orthogonal_unit(q: &[f64], t: usize, k: usize, out: &mut [f64]) {
     let out = &mut out[..t];
     let mut best = (0usize, -1.0f64);
     for c in 0..=k.min(t - 1) {

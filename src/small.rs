@@ -34,8 +34,7 @@ pub(crate) struct Work {
     /// Per equation: R of the unscaled regressors (k_i x k_i, row-major), then its inverse.
     r: Vec<f64>,
     rinv: Vec<f64>,
-    /// Scratch for one equation's scaled R ((k_i + 1)^2) and tau.
-    rs: Vec<f64>,
+    /// Scratch for one equation's Householder scalars tau.
     tau: Vec<f64>,
     /// GLS matrix M and its Cholesky factor (K x K column-major), then L^-1.
     m: Vec<f64>,
@@ -245,8 +244,9 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
     sized(&mut ws.rinv, rlen);
     sized(&mut ws.w, t * p);
 
-    // Step 0: per equation, [X_i | y_i] scaled to unit columns and QR'd in place (as
-    // `prepare::factor_into`, on the same numbers in the same order).
+    // Step 0: per equation, X_i QR'd in place and y_i projected, refined (as
+    // `prepare::factor_into`, on the same numbers in the same order; columns far from unit
+    // scale, which that path scales first, are left to it).
     let mut roff = 0;
     for i in 0..n {
         let (a, ki) = (ws.off[i], ws.off[i + 1] - ws.off[i]);
@@ -259,10 +259,9 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
         ws.qcol[i] = base + ki;
         let buf = &mut ws.w[base * t..(base + mi) * t];
         let mut norms = [0.0f64; MAX_COLUMNS + 1];
-        for j in 0..mi {
+        for j in 0..ki {
             let colbuf = &mut buf[j * t..(j + 1) * t];
-            let src = if j < ki { xs[i].column(j) } else { ys[i].view() };
-            for (d, s) in colbuf.iter_mut().zip(src.iter()) {
+            for (d, s) in colbuf.iter_mut().zip(xs[i].column(j).iter()) {
                 *d = *s;
             }
             let ss = dot(colbuf, colbuf);
@@ -270,32 +269,29 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
                 return None;
             }
             norms[j] = ss.sqrt();
-            let inv = 1.0 / norms[j];
-            for v in colbuf.iter_mut() {
-                *v *= inv;
+            if !(1e-100..=1e100).contains(&norms[j]) {
+                return None;
             }
         }
-        let rs = sized(&mut ws.rs, mi * mi);
-        let tau = sized(&mut ws.tau, mi);
-        householder_qr(buf, t, mi, rs, tau, &|| false).ok()?;
-        // the general path's rank test, with the margin (with shared regressors it scales the
-        // columns by a differently rounded norm)
+        let (qx, qy) = buf.split_at_mut(ki * t);
+        let r = &mut ws.r[roff..roff + ki * ki];
+        let tau = sized(&mut ws.tau, ki);
+        householder_qr(qx, t, ki, r, tau, &|| false).ok()?;
+        // the general path's rank test on the unit-column R, with the margin (with shared
+        // regressors it goes through a different QR)
         let tol = MARGIN * rank_tol(t, ki);
-        if (0..ki).any(|j| rs[j * mi + j].abs() <= tol) {
+        if (0..ki).any(|j| (r[j * ki + j] / norms[j]).abs() <= tol) {
             return None;
         }
-        let yscale = norms[ki];
-        let r = &mut ws.r[roff..roff + ki * ki];
-        for row in 0..ki {
-            for c in 0..ki {
-                r[row * ki + c] = rs[row * mi + c] * norms[c];
-            }
-            ws.z[a + row] = rs[row * mi + ki] * yscale;
-        }
-        // refined residual (as the general path): q_i = e / rho
-        let last = rs[ki * mi + ki];
+        // z = Q'y, then the refined residual (as the general path): q_i = e / rho
         let e = sized(&mut ws.e, t);
-        let (qx, qy) = buf.split_at_mut(ki * t);
+        for (d, v) in e.iter_mut().zip(ys[i].iter()) {
+            *d = *v;
+        }
+        if !e.iter().all(|v| v.is_finite()) {
+            return None;
+        }
+        crate::linalg::dots(qx, t, e, &mut ws.z[a..a + ki]);
         let rho = refine_fit(xs[i].view(), ys[i].view(), qx, t, r, &mut ws.z[a..a + ki], e, &|| false).ok()?;
         ws.rho[i] = rho;
         if rho > 0.0 {
@@ -303,10 +299,8 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
             for (d, v) in qy.iter_mut().zip(e.iter()) {
                 *d = v * inv;
             }
-        } else if last < 0.0 {
-            for v in qy.iter_mut() {
-                *v = -*v;
-            }
+        } else {
+            crate::prepare::orthogonal_unit(qx, t, ki, qy);
         }
         // root mean square of y_i, as `Prepared::y_scales`
         let mx = (a..a + ki).fold(ws.rho[i].abs(), |m, c| m.max(ws.z[c].abs()));
