@@ -352,7 +352,7 @@ impl Prepared {
         // on the contiguous columns of the column-major Gram matrix.
         let p = gram.nrows();
         let gbuf = gram.as_slice_memory_order().filter(|_| gram.t().is_standard_layout());
-        let mut m = Array2::<f64>::zeros((k, k).f());
+        let mut m = crate::linalg::zeros_for_product(k);
         {
             let mbuf = m.as_slice_memory_order_mut().expect("fresh column-major array");
             for j in 0..k {

@@ -11,7 +11,7 @@
 //! into the product. Each entry is summed block by block in a fixed order, whichever thread
 //! adds a block: the result does not depend on the number of threads.
 
-use ndarray::{Array2, ShapeBuilder};
+use ndarray::Array2;
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::Barrier;
 
@@ -114,7 +114,7 @@ pub(crate) fn gram_packed(
     cancel: &(dyn Fn() -> bool + Sync),
 ) -> Result<Array2<f64>> {
     assert_eq!(w.len(), t * p, "gram_packed: W is not T x P");
-    let mut g = Array2::<f64>::zeros((p, p).f());
+    let mut g = crate::linalg::zeros_for_product(p);
     if t == 0 || p == 0 {
         return Ok(g);
     }
@@ -159,11 +159,7 @@ pub(crate) fn gram_packed(
         return Err(SurError::Interrupted);
     }
     // The tiles on the diagonal also wrote some entries above it; mirror the lower triangle.
-    for j in 0..p {
-        for i in (j + 1)..p {
-            g[[j, i]] = g[[i, j]];
-        }
-    }
+    crate::linalg::mirror(&mut g, true);
     Ok(g)
 }
 
@@ -354,6 +350,7 @@ tile_kernel!(
 mod tests {
     use super::*;
     use approx::assert_relative_eq;
+    use ndarray::ShapeBuilder;
 
     fn data(t: usize, p: usize) -> Vec<f64> {
         let mut seed = 7u64;
@@ -387,6 +384,12 @@ mod tests {
                     assert_relative_eq!(one[[i, j]], exact, epsilon = 1e-12 * t as f64, max_relative = 1e-12);
                     assert_eq!(one[[i, j]], one[[j, i]], "symmetric at {i},{j}");
                 }
+            }
+            // the BLAS path (wide products, CPUs without AVX2), with its blocked mirror
+            let wv = ndarray::ArrayView2::from_shape((t, p).f(), &w).unwrap();
+            let blas = crate::linalg::gram_syrk(wv, &|| false).unwrap();
+            for (a, b) in blas.iter().zip(one.iter()) {
+                assert_relative_eq!(*a, *b, epsilon = 1e-12 * t as f64, max_relative = 1e-12);
             }
             for threads in [2, 3] {
                 let many = gram_packed(kernel, &w, t, p, threads, &|| false).unwrap();

@@ -108,6 +108,9 @@ impl Prepared {
         // W is written once, column block by column block, by `factor_all`: no zero-filling
         // pass. It is only assumed initialised after every block has been written.
         let mut w = Array2::<f64>::uninit((t, k + n).f());
+        if let Some(b) = w.as_slice_memory_order_mut() {
+            crate::linalg::advise_huge_pages(b);
+        }
         let factors = {
             let (wq, mut wy) = w.view_mut().split_at(Axis(1), k);
             let mut blocks = Vec::with_capacity(n);
