@@ -63,30 +63,36 @@ impl Kernel {
 
     /// Adds the tile sum over k < kc of a[k width + ii] b[k width + jj] (ii < width, jj <
     /// width / 2) into C at `c` (column-major, leading dimension `ldc`), rows ii < `rows` and
-    /// columns jj < `cols` of the tile only.
+    /// columns jj < `cols` of the tile only; when `e` is not null, by two-sum with the
+    /// rounding error added at `e` (same layout).
     ///
     /// # Safety
     /// The CPU has the kernel's features; `a` and `b` point to kc rows of `width` values (b may
     /// point into the middle of a row: only its first width / 2 values are read); `c` plus the
-    /// tile's rows and columns lies inside C, and no other thread writes there meanwhile.
+    /// tile's rows and columns lies inside C (and inside the error array when `e` is not
+    /// null), and no other thread writes there meanwhile.
     #[allow(clippy::too_many_arguments)]
-    unsafe fn run(self, kc: usize, a: *const f64, b: *const f64, c: *mut f64, ldc: usize, rows: usize, cols: usize) {
+    unsafe fn run(self, kc: usize, a: *const f64, b: *const f64, c: *mut f64, e: *mut f64, ldc: usize, rows: usize, cols: usize) {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: passed on from the caller.
         unsafe {
             match self {
-                Kernel::Avx512 => kernel_16x8(kc, a, b, c, ldc, rows, cols),
-                Kernel::Avx2 => kernel_8x4(kc, a, b, c, ldc, rows, cols),
+                Kernel::Avx512 => kernel_16x8(kc, a, b, c, e, ldc, rows, cols),
+                Kernel::Avx2 => kernel_8x4(kc, a, b, c, e, ldc, rows, cols),
             }
         }
         #[cfg(not(target_arch = "x86_64"))]
-        unreachable!("no kernel off x86_64: {kc} {a:?} {b:?} {c:?} {ldc} {rows} {cols}")
+        unreachable!("no kernel off x86_64: {kc} {a:?} {b:?} {c:?} {e:?} {ldc} {rows} {cols}")
     }
 }
 
 /// The product written by the threads: raw because they write disjoint rows of it.
 struct Out {
     ptr: *mut f64,
+    /// The rounding errors of the additions into `ptr` (same layout), or null: over many row
+    /// blocks the block sums are added with Knuth's two-sum and their errors kept here, so a
+    /// long product (T = 10^7: 39,000 blocks) is as accurate as one block's sum.
+    err: *mut f64,
     p: usize,
 }
 // SAFETY: within a block each row tile is claimed by one thread, blocks are ordered by the
@@ -131,7 +137,10 @@ pub(crate) fn gram_packed(
         unsafe { b.as_mut_ptr().add(off) }
     };
     let panels = Panels { ptr: [aligned(&mut bufs[0]), aligned(&mut bufs[1])] };
-    let out = Out { ptr: g.as_mut_ptr(), p };
+    // compensated additions over many blocks (with few, the plain sum errs by a few units in
+    // the last place of the largest block sum at most)
+    let mut err = if t > 64 * kc_max { crate::linalg::zeros_for_product(p) } else { Array2::zeros((0, 0)) };
+    let out = Out { ptr: g.as_mut_ptr(), err: if err.is_empty() { std::ptr::null_mut() } else { err.as_mut_ptr() }, p };
     let stop = AtomicBool::new(false);
     let barrier = Barrier::new(parts);
     let (packed, done) = (AtomicUsize::new(0), AtomicUsize::new(0));
@@ -158,6 +167,10 @@ pub(crate) fn gram_packed(
     if stop.load(Ordering::Relaxed) {
         return Err(SurError::Interrupted);
     }
+    if !err.is_empty() {
+        g += &err;
+    }
+    drop(err);
     // The tiles on the diagonal also wrote some entries above it; mirror the lower triangle.
     crate::linalg::mirror(&mut g, true);
     Ok(g)
@@ -231,8 +244,10 @@ impl Job<'_> {
                     // rows of pw values; rows i0..i_end and columns j0..j_end (claimed by this
                     // thread for this block) lie inside the P x P product.
                     unsafe {
-                        let c = self.out.ptr.add(i0 + j0 * self.out.p);
-                        self.kernel.run(kc, a, b, c, self.out.p, i_end - i0, j_end - j0);
+                        let at = i0 + j0 * self.out.p;
+                        let c = self.out.ptr.add(at);
+                        let e = if self.out.err.is_null() { self.out.err } else { self.out.err.add(at) };
+                        self.kernel.run(kc, a, b, c, e, self.out.p, i_end - i0, j_end - j0);
                     }
                 }
             }
@@ -279,13 +294,32 @@ fn pack<const WIDTH: usize>(w: &[f64], t: usize, t0: usize, kc: usize, c0: usize
 /// Adds the accumulated tile (column-major, `width` rows) into C: whole columns by vector
 /// loads and stores when the tile is full, element by element otherwise.
 #[inline(always)]
-unsafe fn add_tile(tile: &[f64], width: usize, c: *mut f64, ldc: usize, rows: usize, cols: usize) {
+unsafe fn add_tile(tile: &[f64], width: usize, c: *mut f64, e: *mut f64, ldc: usize, rows: usize, cols: usize) {
     for jj in 0..cols {
         for ii in 0..rows {
-            // SAFETY: (ii, jj) is inside the tile's part of C (the caller's contract).
-            unsafe { *c.add(ii + jj * ldc) += tile[jj * width + ii] };
+            let x = tile[jj * width + ii];
+            // SAFETY: (ii, jj) is inside the tile's part of C and of the error array (the
+            // caller's contract).
+            unsafe {
+                let at = ii + jj * ldc;
+                if e.is_null() {
+                    *c.add(at) += x;
+                } else {
+                    let (s, r) = two_sum(*c.add(at), x);
+                    *c.add(at) = s;
+                    *e.add(at) += r;
+                }
+            }
         }
     }
+}
+
+/// a + b = s + r exactly (Knuth's two-sum, no condition on the magnitudes).
+#[inline(always)]
+fn two_sum(a: f64, b: f64) -> (f64, f64) {
+    let s = a + b;
+    let bb = s - a;
+    (s, (a - (s - bb)) + (b - bb))
 }
 
 /// One tile kernel per instruction set, from one template: `$w` rows (two vectors of `$l`
@@ -293,11 +327,12 @@ unsafe fn add_tile(tile: &[f64], width: usize, c: *mut f64, ldc: usize, rows: us
 /// whole vectors when it is full, element by element (through `add_tile`) at the edges.
 macro_rules! tile_kernel {
     ($(#[$doc:meta])* $name:ident, $feature:literal, $w:literal, $l:literal,
-     $zero:ident, $load:ident, $store:ident, $splat:expr, $fma:ident, $add:ident) => {
+     $zero:ident, $load:ident, $store:ident, $splat:expr, $fma:ident, $add:ident, $sub:ident) => {
         $(#[$doc])*
         #[cfg(target_arch = "x86_64")]
         #[target_feature(enable = $feature)]
-        unsafe fn $name(kc: usize, a: *const f64, b: *const f64, c: *mut f64, ldc: usize, rows: usize, cols: usize) {
+        #[allow(clippy::too_many_arguments)]
+        unsafe fn $name(kc: usize, a: *const f64, b: *const f64, c: *mut f64, e: *mut f64, ldc: usize, rows: usize, cols: usize) {
             use std::arch::x86_64::*;
             // SAFETY (whole body): the caller's contract of `Kernel::run`.
             unsafe {
@@ -316,11 +351,25 @@ macro_rules! tile_kernel {
                         cj[1] = $fma(a1, bj, cj[1]);
                     }
                 }
-                if rows == $w && cols == $w / 2 {
+                if rows == $w && cols == $w / 2 && e.is_null() {
                     for (jj, cj) in acc.iter().enumerate() {
                         let col = c.add(jj * ldc);
                         $store(col, $add($load(col), cj[0]));
                         $store(col.add($l), $add($load(col.add($l)), cj[1]));
+                    }
+                } else if rows == $w && cols == $w / 2 {
+                    // two-sum, the error into e
+                    for (jj, cj) in acc.iter().enumerate() {
+                        for (h, x) in cj.iter().enumerate() {
+                            let col = c.add(jj * ldc + h * $l);
+                            let ecol = e.add(jj * ldc + h * $l);
+                            let old = $load(col);
+                            let s = $add(old, *x);
+                            let bb = $sub(s, old);
+                            let r = $add($sub(old, $sub(s, bb)), $sub(*x, bb));
+                            $store(col, s);
+                            $store(ecol, $add($load(ecol), r));
+                        }
                     }
                 } else {
                     let mut tile = [0.0f64; 128];
@@ -328,7 +377,7 @@ macro_rules! tile_kernel {
                         $store(tile.as_mut_ptr().add(jj * $w), cj[0]);
                         $store(tile.as_mut_ptr().add(jj * $w + $l), cj[1]);
                     }
-                    add_tile(&tile, $w, c, ldc, rows, cols);
+                    add_tile(&tile, $w, c, e, ldc, rows, cols);
                 }
             }
         }
@@ -338,12 +387,12 @@ macro_rules! tile_kernel {
 tile_kernel!(
     /// The AVX-512 tile: 16 x 8 in sixteen 8-wide accumulators.
     kernel_16x8, "avx512f", 16, 8, _mm512_setzero_pd, _mm512_loadu_pd, _mm512_storeu_pd,
-    |p: *const f64| _mm512_set1_pd(*p), _mm512_fmadd_pd, _mm512_add_pd
+    |p: *const f64| _mm512_set1_pd(*p), _mm512_fmadd_pd, _mm512_add_pd, _mm512_sub_pd
 );
 tile_kernel!(
     /// The AVX2 tile: 8 x 4 in eight 4-wide accumulators.
     kernel_8x4, "avx2,fma", 8, 4, _mm256_setzero_pd, _mm256_loadu_pd, _mm256_storeu_pd,
-    |p: *const f64| _mm256_broadcast_sd(&*p), _mm256_fmadd_pd, _mm256_add_pd
+    |p: *const f64| _mm256_broadcast_sd(&*p), _mm256_fmadd_pd, _mm256_add_pd, _mm256_sub_pd
 );
 
 #[cfg(test)]
@@ -370,7 +419,7 @@ mod tests {
         let Some(kernel) = Kernel::best() else {
             return; // the BLAS path serves such CPUs; nothing of this kernel runs there
         };
-        for &(t, p) in &[(1, 1), (3, 2), (255, 7), (257, 13), (600, 50), (1000, 97), (513, 131)] {
+        for &(t, p) in &[(1, 1), (3, 2), (255, 7), (257, 13), (600, 50), (1000, 97), (513, 131), (20000, 37)] {
             let w = data(t, p);
             let one = gram_packed(kernel, &w, t, p, 1, &|| false).unwrap();
             #[cfg(target_arch = "x86_64")]
@@ -394,6 +443,38 @@ mod tests {
             for threads in [2, 3] {
                 let many = gram_packed(kernel, &w, t, p, threads, &|| false).unwrap();
                 assert!(many == one, "t={t} p={p}: {threads} threads differ from one");
+            }
+        }
+    }
+
+    /// Long products (many row blocks) add the block sums by two-sum: against a doubled-
+    /// precision reference (Ogita-Rump-Oishi Dot2, written out here), the error stays at the
+    /// level of one block's rounding, and the result still does not depend on the threads.
+    #[test]
+    fn long_packed_gram_is_compensated() {
+        let Some(kernel) = Kernel::best() else {
+            return;
+        };
+        let (t, p) = (200_000, 5);
+        let mut w = data(t, p);
+        for v in w.iter_mut() {
+            *v = 1.0 + 1e-3 * *v; // all of one sign: the running sums only grow
+        }
+        let g = gram_packed(kernel, &w, t, p, 1, &|| false).unwrap();
+        assert!(gram_packed(kernel, &w, t, p, 2, &|| false).unwrap() == g);
+        for i in 0..p {
+            for j in 0..=i {
+                let (mut s, mut c) = (0.0f64, 0.0f64);
+                for r in 0..t {
+                    let (a, b) = (w[i * t + r], w[j * t + r]);
+                    let h = a * b;
+                    let l = a.mul_add(b, -h);
+                    let (s2, e) = two_sum(s, h);
+                    s = s2;
+                    c += e + l;
+                }
+                let exact = s + c;
+                assert!(((g[[i, j]] - exact) / exact).abs() <= 4.0 * f64::EPSILON, "entry {i},{j}: {} vs {exact}", g[[i, j]]);
             }
         }
     }
