@@ -388,15 +388,19 @@ fn factor_all(
 /// OpenBLAS pool (the one knob users set, `blas_threads` or threadpoolctl), one on the threads
 /// of a batch of many systems (already one per core).
 pub(crate) fn work_threads() -> usize {
-    extern "C" {
-        fn openblas_get_num_threads() -> std::os::raw::c_int;
-    }
     if IN_WORKER.with(|w| w.get()) {
         return 1;
     }
+    cores().min(blas_pool_threads()).min(MAX_THREADS)
+}
+
+/// The thread count of the linked OpenBLAS's pool (at least 1).
+pub(crate) fn blas_pool_threads() -> usize {
+    extern "C" {
+        fn openblas_get_num_threads() -> std::os::raw::c_int;
+    }
     // SAFETY: a plain OpenBLAS query.
-    let blas = unsafe { openblas_get_num_threads() }.max(1) as usize;
-    cores().min(blas).min(MAX_THREADS)
+    unsafe { openblas_get_num_threads() }.max(1) as usize
 }
 
 fn cores() -> usize {
@@ -653,14 +657,8 @@ pub(crate) fn refine_fit(
         return Err(SurError::Interrupted);
     }
     // z += Q'e, e -= Q (Q'e): Q is orthonormal to rounding, so one classical projection serves
-    let mut cbuf = [0.0f64; 64];
-    let mut cvec = vec![];
-    let c: &mut [f64] = if k <= 64 {
-        &mut cbuf[..k]
-    } else {
-        cvec.resize(k, 0.0);
-        &mut cvec
-    };
+    // (Q'e goes where b was: b is not needed after the residual)
+    let c = b;
     crate::linalg::dots(q, t, e, c);
     for (zj, cj) in z.iter_mut().zip(c.iter()) {
         *zj += cj;

@@ -123,8 +123,7 @@ impl Interrupt {
 static BLAS_GATE: std::sync::Mutex<()> = std::sync::Mutex::new(());
 
 fn gated<T>(work: impl FnOnce() -> T) -> T {
-    // SAFETY: a plain OpenBLAS query.
-    if unsafe { openblas_get_num_threads() } > 1 {
+    if crate::prepare::blas_pool_threads() > 1 {
         let _turn = BLAS_GATE.lock().unwrap_or_else(|p| p.into_inner());
         work()
     } else {
@@ -692,7 +691,6 @@ fn fit_many<'py>(
 
 extern "C" {
     fn openblas_set_num_threads(n: std::os::raw::c_int);
-    fn openblas_get_num_threads() -> std::os::raw::c_int;
 }
 
 /// Threads of the OpenBLAS this module links (the system's, not numpy's): sets them when `n`
@@ -707,8 +705,7 @@ fn blas_threads(n: Option<usize>) -> PyResult<usize> {
         // SAFETY: plain OpenBLAS API calls with an in-range value.
         unsafe { openblas_set_num_threads(n as std::os::raw::c_int) };
     }
-    // SAFETY: as above.
-    Ok(unsafe { openblas_get_num_threads() }.max(1) as usize)
+    Ok(crate::prepare::blas_pool_threads())
 }
 
 #[pymodule]
