@@ -16,15 +16,32 @@ pub fn gram(w: ArrayView2<f64>) -> Array2<f64> {
 /// (i, j), i >= j, that `skip` names (they stay zero), returned full and symmetric.
 pub(crate) fn gram_dots(buf: &[f64], t: usize, p: usize, skip: impl Fn(usize, usize) -> bool) -> Array2<f64> {
     let mut g = Array2::<f64>::zeros((p, p).f());
+    let col = |j: usize| &buf[j * t..(j + 1) * t];
     for j in 0..p {
-        let cj = &buf[j * t..(j + 1) * t];
-        for i in j..p {
+        let cj = col(j);
+        let mut i = j;
+        while i < p {
             if skip(i, j) {
+                i += 1;
                 continue;
             }
-            let v = dot(&buf[i * t..(i + 1) * t], cj);
-            g[[i, j]] = v;
-            g[[j, i]] = v;
+            // four columns against column j in one pass over the rows (a group may include
+            // pairs `skip` names: computed, then left at zero)
+            if i + 4 <= p {
+                let v = dotn([col(i), col(i + 1), col(i + 2), col(i + 3)], cj);
+                for (d, vd) in v.iter().enumerate() {
+                    if !skip(i + d, j) {
+                        g[[i + d, j]] = *vd;
+                        g[[j, i + d]] = *vd;
+                    }
+                }
+                i += 4;
+            } else {
+                let v = dot(col(i), cj);
+                g[[i, j]] = v;
+                g[[j, i]] = v;
+                i += 1;
+            }
         }
     }
     g
@@ -1084,11 +1101,9 @@ fn dot2_blocks(
         if colmajor.is_none() {
             match rows {
                 Some(rs) => {
-                    for (i, row) in rs[start * k..end * k].chunks_exact(k).enumerate() {
-                        for (j, v) in row.iter().enumerate() {
-                            cols[j * n + i] = *v;
-                        }
-                    }
+                    assert!(cols.len() >= k * n);
+                    // SAFETY: column j of the block is cols[j * n..(j + 1) * n] (length checked).
+                    unsafe { scatter_rows(&rs[start * k..end * k], k, cols.as_mut_ptr(), n) };
                 }
                 None => {
                     for j in 0..k {
@@ -1120,6 +1135,59 @@ fn dot2_blocks(
         }
         start = end;
     }
+}
+
+/// Writes the rows of the row-major r x k block `rows` into k columns: column j starts at
+/// `dst + j * ld`. Narrow blocks (k <= 8) go row by row with k fixed at compile time (k
+/// output streams, one pass over the input); wider ones column by column.
+///
+/// # Safety
+/// `dst` must be valid for writes at `j * ld + i` for every j < k and i < r = rows.len() / k.
+pub(crate) unsafe fn scatter_rows(rows: &[f64], k: usize, dst: *mut f64, ld: usize) {
+    #[inline(always)]
+    unsafe fn fixed<const K: usize>(rows: &[f64], dst: *mut f64, ld: usize) {
+        for (i, row) in rows.chunks_exact(K).enumerate() {
+            for j in 0..K {
+                // SAFETY: within the caller's promise (i < r, j < k).
+                unsafe { *dst.add(j * ld + i) = row[j] };
+            }
+        }
+    }
+    // SAFETY (every arm): the caller's promise, with K = k.
+    unsafe {
+        match k {
+            0 => {}
+            1 => std::ptr::copy_nonoverlapping(rows.as_ptr(), dst, rows.len()),
+            2 => fixed::<2>(rows, dst, ld),
+            3 => fixed::<3>(rows, dst, ld),
+            4 => fixed::<4>(rows, dst, ld),
+            5 => fixed::<5>(rows, dst, ld),
+            6 => fixed::<6>(rows, dst, ld),
+            7 => fixed::<7>(rows, dst, ld),
+            8 => fixed::<8>(rows, dst, ld),
+            _ => {
+                for j in 0..k {
+                    for (i, row) in rows.chunks_exact(k).enumerate() {
+                        *dst.add(j * ld + i) = row[j];
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// Sum of squared deviations from `mean`, in eight partial sums.
+pub(crate) fn centred_squares(x: &[f64], mean: f64) -> f64 {
+    let mut acc = [0.0f64; 8];
+    let c = x.chunks_exact(8);
+    let rest: f64 = c.remainder().iter().map(|v| (v - mean) * (v - mean)).sum();
+    for ch in c {
+        for l in 0..8 {
+            let d = ch[l] - mean;
+            acc[l] += d * d;
+        }
+    }
+    ((acc[0] + acc[4]) + (acc[1] + acc[5])) + ((acc[2] + acc[6]) + (acc[3] + acc[7])) + rest
 }
 
 /// Sum of a slice in eight partial sums (a single running sum is a chain of dependent

@@ -216,12 +216,10 @@ pub(crate) fn norm(v: ArrayView1<f64>) -> f64 {
     }
 }
 
-fn tss(y: ArrayView1<f64>) -> (f64, f64) {
-    let n = y.len() as f64;
-    let mean = y.sum() / n;
-    let c: f64 = y.iter().map(|v| (v - mean) * (v - mean)).sum();
-    let r: f64 = y.iter().map(|v| v * v).sum();
-    (c, r)
+/// Total sums of squares of y: about its mean and about zero.
+fn tss(y: &[f64]) -> (f64, f64) {
+    let mean = crate::linalg::sum(y) / y.len() as f64;
+    (crate::linalg::centred_squares(y, mean), dot(y, y))
 }
 
 /// Relative tolerance on the diagonal of the column-scaled R below which a column counts as a
@@ -441,10 +439,14 @@ fn factor_into(
     stop: &dyn Fn() -> bool,
 ) -> Result<EquationFactor> {
     let k = eq.n_regressors();
-    if scratch.len() < t {
-        scratch.resize(t, 0.0);
+    // Keep a column-major copy of X_i for the refinement when it is not too large: the
+    // refinement then reads columns instead of transposing the (usually row-major) input again.
+    let keep_copy = t * k <= KEEP_COPY_MAX && !eq.x.t().is_standard_layout();
+    let need = if keep_copy { t * (k + 1) } else { t };
+    if scratch.len() < need {
+        scratch.resize(need, 0.0);
     }
-    let ebuf = &mut scratch[..t]; // y_i, then the refined residual
+    let (ebuf, xcol) = scratch.split_at_mut(t); // ebuf: y_i, then the refined residual
     // W's columns of Q_i: one contiguous T x k column-major block
     let block = wq.as_slice_memory_order_mut().filter(|b| b.len() == t * k).expect("W is column-major");
     {
@@ -456,16 +458,13 @@ fn factor_into(
             }
             let end = (start + REFINE_ROWS).min(t);
             match eq.x.as_slice().filter(|_| eq.x.is_standard_layout()) {
-                // row-major: scatter each row into the k columns (ndarray's strided assign
-                // is several times slower for narrow rows)
+                // row-major: scatter the rows into the k columns
                 Some(xs) => {
-                    let rows = &xs[start * k..end * k];
-                    for j in 0..k {
-                        // column by column: sequential writes, reads within the same lines
-                        for (d, row) in block[j * t + start..j * t + end].iter_mut().zip(rows.chunks_exact(k)) {
-                            d.write(row[j]);
-                        }
-                    }
+                    // SAFETY: column j of the block is block[j * t..(j + 1) * t]; rows
+                    // start..end of it are written (MaybeUninit<f64> has the layout of f64).
+                    unsafe {
+                        crate::linalg::scatter_rows(&xs[start * k..end * k], k, block.as_mut_ptr().add(start) as *mut f64, t)
+                    };
                 }
                 None => {
                     for j in 0..k {
@@ -482,6 +481,13 @@ fn factor_into(
     // SAFETY: the loop above wrote every one of the t * k values (it returns before this line
     // when interrupted), and MaybeUninit<f64> has the layout of f64.
     let scratch: &mut [f64] = unsafe { &mut *(block as *mut [MaybeUninit<f64>] as *mut [f64]) };
+    let xcol = if keep_copy {
+        let c = &mut xcol[..t * k];
+        c.copy_from_slice(scratch);
+        Some(&*c)
+    } else {
+        None
+    };
     // Column norms; a column far from unit scale is scaled (by `scale[j]`) against overflow.
     let mut norms = Vec::with_capacity(k);
     let mut scale = Vec::with_capacity(k);
@@ -511,7 +517,12 @@ fn factor_into(
             scale.push(nj);
         }
     }
-    let (tss_centred, tss_raw) = tss(eq.y);
+    // y copied once (it may be a strided view): for the TSS and z = Q'y
+    match eq.y.as_slice() {
+        Some(y) => ebuf.copy_from_slice(y),
+        None => ebuf.iter_mut().zip(eq.y.iter()).for_each(|(d, v)| *d = *v),
+    }
+    let (tss_centred, tss_raw) = tss(ebuf);
     if !(tss_raw.is_finite() && tss_centred.is_finite()) {
         check_finite(eq, 0)?;
     }
@@ -531,12 +542,15 @@ fn factor_into(
     if stop() {
         return Err(SurError::Interrupted);
     }
-    // z = Q'y (y copied first: it may be a strided view)
-    ebuf.iter_mut().zip(eq.y.iter()).for_each(|(d, v)| *d = *v);
+    // z = Q'y
     let mut z = Array1::<f64>::zeros(k);
     crate::linalg::dots(scratch, t, ebuf, z.as_slice_mut().expect("fresh vector"));
+    let xview = match xcol {
+        Some(c) => ArrayView2::from_shape((t, k).f(), c).expect("t * k values"),
+        None => eq.x,
+    };
     let rho = refine_fit(
-        eq.x,
+        xview,
         eq.y,
         &scratch[..k * t],
         t,
@@ -552,17 +566,16 @@ fn factor_into(
         let sum = crate::linalg::sum(&scratch[j * t..(j + 1) * t]);
         s2 += sum * sum;
     }
-    if rho > 0.0 {
-        let inv = 1.0 / rho;
-        for (d, v) in wy.iter_mut().zip(ebuf.iter()) {
-            d.write(v * inv);
-        }
+    let inv = if rho > 0.0 {
+        1.0 / rho
     } else {
         // an exact fit: any unit vector orthogonal to Q_i serves
         orthogonal_unit(&scratch[..k * t], t, k, ebuf);
-        for (d, v) in wy.iter_mut().zip(ebuf.iter()) {
-            d.write(*v);
-        }
+        1.0
+    };
+    let wy = wy.as_slice_memory_order_mut().filter(|c| c.len() == t).expect("W is column-major");
+    for (d, v) in wy.iter_mut().zip(ebuf.iter()) {
+        d.write(v * inv);
     }
     let spans_constant = (t as f64 - s2).abs() <= 1e-9 * t as f64;
     Ok(EquationFactor { r, z, rho, spans_constant, tss_centred, tss_raw, cond })
@@ -668,6 +681,9 @@ pub(crate) fn refine_fit(
     Ok(if ss.is_finite() && ss > 1e-290 { ss.sqrt() } else { scaled_norm(e) })
 }
 
+/// Largest T K_i (values) of the column-major copy of X_i kept for the refinement (32 MB).
+const KEEP_COPY_MAX: usize = 1 << 22;
+
 /// Rows of one block of the copy and of the refinement's residual pass (between Ctrl-C checks).
 const REFINE_ROWS: usize = 1 << 18;
 
@@ -716,7 +732,10 @@ fn shared_regressors(data: &SystemData, t: usize) -> Result<(Vec<EquationFactor>
     let mut rho = Vec::with_capacity(n);
     for (i, eq) in data.equations.iter().enumerate() {
         let rh = norm(e.column(i));
-        let (tss_centred, tss_raw) = tss(eq.y);
+        let (tss_centred, tss_raw) = match eq.y.as_slice() {
+            Some(y) => tss(y),
+            None => tss(&eq.y.to_vec()),
+        };
         factors.push(EquationFactor {
             r: r.clone(),
             z: zmat.column(i).to_owned(),

@@ -828,3 +828,66 @@ fn column_group_kernels_match_plain_loops() {
         }
     }
 }
+
+#[test]
+fn scatter_and_centred_squares_match_plain_loops() {
+    let mut rng = Rng(11);
+    for k in 0..=11usize {
+        for &r in &[0usize, 1, 5, 37] {
+            let rows: Vec<f64> = (0..r * k).map(|_| rng.normal()).collect();
+            let ld = r + 3;
+            let mut dst = vec![f64::NAN; ld * k.max(1)];
+            // SAFETY: column j is dst[j * ld..j * ld + r], within the buffer.
+            unsafe { crate::linalg::scatter_rows(&rows, k, dst.as_mut_ptr(), ld) };
+            for j in 0..k {
+                for i in 0..r {
+                    assert_eq!(dst[j * ld + i].to_bits(), rows[i * k + j].to_bits());
+                }
+                for i in r..ld.min(dst.len() - j * ld) {
+                    assert!(dst[j * ld + i].is_nan(), "wrote outside column {j}");
+                }
+            }
+        }
+    }
+    for &t in &[1usize, 7, 8, 9, 1000] {
+        let y: Vec<f64> = (0..t).map(|_| 1e3 + rng.normal()).collect();
+        let mean = y.iter().sum::<f64>() / t as f64;
+        let plain: f64 = y.iter().map(|v| (v - mean) * (v - mean)).sum();
+        assert_relative_eq!(crate::linalg::centred_squares(&y, mean), plain, max_relative = 1e-12);
+    }
+}
+
+#[test]
+fn input_memory_layout_does_not_change_a_bit() {
+    // Row-major input is transposed (and a copy kept for the refinement), column-major input
+    // is read in place, a strided view goes element by element: the same numbers in the same
+    // order, so the fits must agree to the last bit. K_i = 3 and 10 cover the fixed-width and
+    // the general transposition.
+    let (ys, xs) = system(&[3, 10, 4], 300, 17);
+    let fit = |xs: &[Array2<f64>], strided: bool| {
+        let big: Vec<Array2<f64>> = xs.iter().map(|x| {
+            let mut b = Array2::<f64>::zeros((x.nrows(), 2 * x.ncols()));
+            b.slice_mut(s![.., ..;2]).assign(x);
+            b
+        }).collect();
+        let views: Vec<_> = if strided {
+            big.iter().map(|b| b.slice(s![.., ..;2])).collect()
+        } else {
+            xs.iter().map(|x| x.view()).collect()
+        };
+        let d = SystemData::new(
+            ys.iter().zip(&views).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.clone())).collect(),
+        );
+        let p = Prepared::new(&d).unwrap();
+        let e = p.estimate(&opts(Method::Fgls, Divisor::Ml)).unwrap();
+        (e.coef.to_vec(), e.omega.iter().copied().collect::<Vec<f64>>())
+    };
+    let rows = fit(&xs, false);
+    let cols: Vec<Array2<f64>> = xs.iter().map(crate::linalg::to_fortran).collect();
+    assert!(cols[0].t().is_standard_layout());
+    for other in [fit(&cols, false), fit(&xs, true)] {
+        for (a, b) in rows.0.iter().zip(&other.0).chain(rows.1.iter().zip(&other.1)) {
+            assert_eq!(a.to_bits(), b.to_bits());
+        }
+    }
+}
