@@ -13,7 +13,6 @@
 
 use ndarray::Array2;
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
-use std::sync::Barrier;
 
 use crate::error::{Result, SurError};
 
@@ -142,7 +141,7 @@ pub(crate) fn gram_packed(
     let mut err = if t > 64 * kc_max { crate::linalg::zeros_for_product(p) } else { Array2::zeros((0, 0)) };
     let out = Out { ptr: g.as_mut_ptr(), err: if err.is_empty() { std::ptr::null_mut() } else { err.as_mut_ptr() }, p };
     let stop = AtomicBool::new(false);
-    let barrier = Barrier::new(parts);
+    let barrier = SpinBarrier::new(parts);
     let (packed, done) = (AtomicUsize::new(0), AtomicUsize::new(0));
     // Column blocks in turn; within one, the row panels from the bottom (the longest) up.
     let mut units = Vec::new();
@@ -190,7 +189,7 @@ struct Job<'a> {
     panels: &'a Panels,
     out: &'a Out,
     stop: &'a AtomicBool,
-    barrier: &'a Barrier,
+    barrier: &'a SpinBarrier,
 }
 
 impl Job<'_> {
@@ -207,6 +206,8 @@ impl Job<'_> {
     fn lower_rows(&self, is_caller: bool, cancel: &dyn Fn() -> bool) {
         let (t, p, pw) = (self.t, self.p, self.kernel.width());
         let half = pw / 2;
+        // a panic in this thread releases the others from the barrier (they stop)
+        let _guard = ReleaseOnPanic(self.barrier, self.stop);
         let mut t0 = 0;
         let mut block = 0;
         while t0 < t {
@@ -253,6 +254,61 @@ impl Job<'_> {
             }
             t0 += kc;
             block += 1;
+        }
+    }
+}
+
+/// A barrier for the few threads of one product: they wait by spinning, then by yielding.
+/// The work between two waits is about 0.1-0.2 ms per thread, so a wait is short, and a
+/// sleeping wait (std's Barrier) costs a wake-up each time, tens of microseconds on a virtual
+/// machine, once per block of rows: several milliseconds per product, and most of the run-
+/// to-run spread of the data pass (case (c): 12-22 ms with std's Barrier).
+struct SpinBarrier {
+    n: usize,
+    arrived: AtomicUsize,
+    generation: AtomicUsize,
+    broken: AtomicBool,
+}
+
+impl SpinBarrier {
+    fn new(n: usize) -> Self {
+        SpinBarrier { n, arrived: AtomicUsize::new(0), generation: AtomicUsize::new(0), broken: AtomicBool::new(false) }
+    }
+
+    fn wait(&self) {
+        let generation = self.generation.load(Ordering::Acquire);
+        if self.arrived.fetch_add(1, Ordering::AcqRel) + 1 == self.n {
+            // the last to arrive: reset the count before releasing the others (a released
+            // thread's next arrival then counts towards the next generation)
+            self.arrived.store(0, Ordering::Relaxed);
+            self.generation.fetch_add(1, Ordering::Release);
+            return;
+        }
+        let mut spins = 0u32;
+        while self.generation.load(Ordering::Acquire) == generation && !self.broken.load(Ordering::Acquire) {
+            if spins < SPIN_LIMIT {
+                std::hint::spin_loop();
+                spins += 1;
+            } else {
+                // another tenant may hold the core the others need
+                std::thread::yield_now();
+            }
+        }
+    }
+}
+
+/// Spins before a barrier wait yields the core (about 0.1-0.3 ms).
+const SPIN_LIMIT: u32 = 1 << 14;
+
+/// Breaks the barrier and asks the others to stop when its thread unwinds from a panic (they
+/// would otherwise wait for it for ever; the panic then reaches the caller through the scope).
+struct ReleaseOnPanic<'a>(&'a SpinBarrier, &'a AtomicBool);
+
+impl Drop for ReleaseOnPanic<'_> {
+    fn drop(&mut self) {
+        if std::thread::panicking() {
+            self.1.store(true, Ordering::Relaxed);
+            self.0.broken.store(true, Ordering::Release);
         }
     }
 }
@@ -487,5 +543,39 @@ mod tests {
         let (t, p) = (2000, 40);
         let w = data(t, p);
         assert!(matches!(gram_packed(kernel, &w, t, p, 2, &|| true), Err(SurError::Interrupted)));
+    }
+
+    #[test]
+    fn barrier_orders_phases_and_a_panicking_thread_releases_it() {
+        // phases: no thread starts phase r + 1 before all have finished phase r
+        let b = SpinBarrier::new(3);
+        let done = AtomicUsize::new(0);
+        std::thread::scope(|sc| {
+            for _ in 0..3 {
+                sc.spawn(|| {
+                    for r in 0..200 {
+                        done.fetch_add(1, Ordering::SeqCst);
+                        b.wait();
+                        assert!(done.load(Ordering::SeqCst) >= 3 * (r + 1));
+                        b.wait();
+                    }
+                });
+            }
+        });
+        assert_eq!(done.load(Ordering::SeqCst), 600);
+        // a thread that panics before its wait must not leave the others waiting for ever
+        let b = SpinBarrier::new(2);
+        let stop = AtomicBool::new(false);
+        let out = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+            std::thread::scope(|sc| {
+                sc.spawn(|| {
+                    let _guard = ReleaseOnPanic(&b, &stop);
+                    panic!("a worker fails (expected in this test)");
+                });
+                b.wait();
+            })
+        }));
+        assert!(out.is_err());
+        assert!(stop.load(Ordering::Relaxed));
     }
 }
