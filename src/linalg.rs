@@ -316,14 +316,26 @@ const SMALL_DENSE: usize = 64;
 /// In-place lower Cholesky factor of a column-major n x n buffer (lower triangle read; upper
 /// zeroed), left-looking by columns. False when a pivot is not positive (not positive definite).
 pub(crate) fn small_chol(a: &mut [f64], n: usize) -> bool {
+    if !chol_columns(a, n, 0, n) {
+        return false;
+    }
     for j in 0..n {
-        // column j below the diagonal minus L[j.., ..j] L[j, ..j]'
-        for l in 0..j {
+        a[j * n..j * n + j].fill(0.0);
+    }
+    true
+}
+
+/// Columns j0..j1 of the lower Cholesky factor of the n x n column-major `a`, in place, given
+/// that the contributions of the columns before j0 have already been subtracted: each column
+/// (rows j..n) minus its products with the columns j0..j before it, then scaled by its pivot.
+/// False when a pivot is not positive.
+fn chol_columns(a: &mut [f64], n: usize, j0: usize, j1: usize) -> bool {
+    for j in j0..j1 {
+        for l in j0..j {
             let ljl = a[l * n + j];
             if ljl != 0.0 {
-                for i in j..n {
-                    a[j * n + i] -= a[l * n + i] * ljl;
-                }
+                let (left, right) = a.split_at_mut(j * n);
+                axpy(&mut right[j..n], &left[l * n + j..l * n + n], -ljl);
             }
         }
         let d = a[j * n + j];
@@ -333,12 +345,72 @@ pub(crate) fn small_chol(a: &mut [f64], n: usize) -> bool {
         let dj = d.sqrt();
         a[j * n + j] = dj;
         let inv = 1.0 / dj;
-        for i in (j + 1)..n {
-            a[j * n + i] *= inv;
+        for v in &mut a[j * n + j + 1..(j + 1) * n] {
+            *v *= inv;
         }
-        for i in 0..j {
-            a[j * n + i] = 0.0;
+    }
+    true
+}
+
+/// Largest order factored by `blocked_chol` rather than LAPACK potrf. OpenBLAS's potrf wakes
+/// its thread pool for every order above 64, and below about 600 that costs more than the
+/// second thread saves (K = 300: 0.31 ms here against 0.39-0.83 ms for potrf on two threads,
+/// K = 400: 0.66 against 0.72; at 512 potrf is ahead, `examples/prof_chol`).
+const BLOCKED_CHOL_MAX: usize = 448;
+
+/// Columns per block of `blocked_chol`.
+const CHOL_NB: usize = 24;
+
+/// Lower Cholesky factor in place of the n x n column-major `a` (lower triangle read; the
+/// strictly upper part is left undefined), on the calling thread: right-looking in blocks of
+/// CHOL_NB columns, each diagonal block by columns, the panel below it by a triangular solve,
+/// and the trailing lower triangle updated by matrixmultiply's single-threaded dgemm, block
+/// column by block column. False when a pivot is not positive (not positive definite).
+pub(crate) fn blocked_chol(a: &mut [f64], n: usize) -> bool {
+    assert!(a.len() >= n * n);
+    let mut j0 = 0;
+    while j0 < n {
+        let j1 = (j0 + CHOL_NB).min(n);
+        // the block's columns, rows j0..n: the diagonal block and the panel below it
+        if !chol_columns(a, n, j0, j1) {
+            return false;
         }
+        if j1 < n {
+            // trailing lower triangle: A22 -= L21 L21', one block column of A22 at a time
+            // (its rows from the block's first down), so nothing above the diagonal blocks
+            // is computed
+            let kb = j1 - j0;
+            let mut c0 = j1;
+            while c0 < n {
+                let c1 = (c0 + CHOL_NB).min(n);
+                let (m, w) = (n - c0, c1 - c0);
+                let base = a.as_mut_ptr();
+                // SAFETY: A = rows c0..n of columns j0..j1 (m x kb, strides 1 and n); B =
+                // (rows c0..c1 of columns j0..j1)' (kb x w, strides n and 1); C = rows c0..n
+                // of columns c0..c1 (m x w, strides 1 and n). All inside the n x n buffer;
+                // C does not overlap A or B (its columns are c0 >= j1).
+                unsafe {
+                    matrixmultiply::dgemm(
+                        m,
+                        kb,
+                        w,
+                        -1.0,
+                        base.add(j0 * n + c0),
+                        1,
+                        n as isize,
+                        base.add(j0 * n + c0),
+                        n as isize,
+                        1,
+                        1.0,
+                        base.add(c0 * n + c0),
+                        1,
+                        n as isize,
+                    );
+                }
+                c0 = c1;
+            }
+        }
+        j0 = j1;
     }
     true
 }
@@ -378,11 +450,18 @@ pub fn chol_lower(mut a: Array2<f64>) -> Option<Array2<f64>> {
         }
         return Some(a);
     }
-    let mut info = 0;
-    // SAFETY: `a` is an n x n column-major buffer.
-    unsafe { lapack_sys::dpotrf_(&(b'L' as std::ffi::c_char), &n, a.as_mut_ptr(), &n, &mut info) };
-    if info != 0 {
-        return None;
+    if (n as usize) <= BLOCKED_CHOL_MAX {
+        let buf = a.as_slice_memory_order_mut().expect("column-major");
+        if !blocked_chol(buf, n as usize) {
+            return None;
+        }
+    } else {
+        let mut info = 0;
+        // SAFETY: `a` is an n x n column-major buffer.
+        unsafe { lapack_sys::dpotrf_(&(b'L' as std::ffi::c_char), &n, a.as_mut_ptr(), &n, &mut info) };
+        if info != 0 {
+            return None;
+        }
     }
     for j in 0..a.ncols() {
         for i in 0..j {

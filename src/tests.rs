@@ -891,3 +891,39 @@ fn input_memory_layout_does_not_change_a_bit() {
         }
     }
 }
+
+/// The blocked Cholesky of mid-size GLS matrices against LAPACK potrf (through ndarray-linalg),
+/// at orders around its block size and at its upper limit, and its refusal of a matrix that is
+/// not positive definite (a negative pivot in a later block).
+#[test]
+fn blocked_cholesky_matches_lapack() {
+    use crate::linalg::{chol_lower, to_fortran};
+    use ndarray_linalg::Cholesky;
+    let mut rng = Rng(977);
+    for n in [65usize, 71, 96, 97, 200, 448] {
+        let b = Array2::from_shape_fn((n + 5, n), |_| rng.normal());
+        let a = b.t().dot(&b) + Array2::<f64>::eye(n) * 0.1;
+        let l = chol_lower(to_fortran(&a)).unwrap();
+        let want = a.cholesky(ndarray_linalg::UPLO::Lower).unwrap();
+        let scale = want.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+        for (x, y) in l.iter().zip(want.iter()) {
+            assert_relative_eq!(*x, *y, max_relative = 1e-10, epsilon = 1e-12 * scale);
+        }
+        // strictly upper part is zero
+        for j in 0..n {
+            for i in 0..j {
+                assert_eq!(l[[i, j]], 0.0);
+            }
+        }
+        // the factor reproduces A
+        let back = l.dot(&l.t());
+        let anorm = a.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+        for (x, y) in back.iter().zip(a.iter()) {
+            assert!((x - y).abs() <= 1e-13 * anorm * n as f64, "{x} vs {y}");
+        }
+        let mut bad = a.clone();
+        let k = n - 3;
+        bad[[k, k]] = -1.0;
+        assert!(chol_lower(to_fortran(&bad)).is_none(), "order {n}: indefinite accepted");
+    }
+}
