@@ -380,8 +380,6 @@ fn factor_all(
     Ok(factors)
 }
 
-/// The cores this process may use, asked once: the standard library reads the cgroup files
-/// on every call, which costs more than a small system's whole data pass.
 /// Threads for this module's own parallel work: the cores, capped by the thread count of the
 /// OpenBLAS pool (the one knob users set, `blas_threads` or threadpoolctl), one on the threads
 /// of a batch of many systems (already one per core).
@@ -401,6 +399,8 @@ pub(crate) fn blas_pool_threads() -> usize {
     unsafe { openblas_get_num_threads() }.max(1) as usize
 }
 
+/// The cores this process may use, asked once: the standard library reads the cgroup files
+/// on every call, which costs more than a small system's whole data pass.
 fn cores() -> usize {
     static CORES: std::sync::OnceLock<usize> = std::sync::OnceLock::new();
     *CORES.get_or_init(|| std::thread::available_parallelism().map(|c| c.get()).unwrap_or(1))
@@ -423,7 +423,9 @@ const MAX_THREADS: usize = 8;
 
 /// Step 0 for one equation: copy X_i into its columns of W (checking it is finite), QR in
 /// place there (leaving Q_i), Q_i'y_i, one step of refinement in doubled precision, and the
-/// residual direction q_i into its column of W. `scratch` (per thread) holds the residual.
+/// residual direction q_i into its column of W. `scratch` (per thread) holds the residual
+/// and, for T K_i up to KEEP_COPY_MAX values of input that is not column-major, a
+/// column-major copy of X_i taken before the QR, from which the refinement reads.
 ///
 /// y_i is not part of the QR: the refinement computes the residual from the data anyway,
 /// and leaving it out saves a fifth to a third of the QR's passes over the rows. Columns are
