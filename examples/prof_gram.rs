@@ -66,6 +66,22 @@ fn main() {
         println!("ifgls (12 steps) {e:.3} ms");
         return;
     }
+    if std::env::var("ONLY").as_deref() == Ok("fgls") {
+        // the two halves of a two-step FGLS fit: the data pass, then the GLS step on it
+        let g = time(reps, || {
+            blocksur::linalg::gram(w.view());
+        });
+        let prep = time(reps, || {
+            Prepared::new(&data).unwrap();
+        });
+        let prepared = Prepared::new(&data).unwrap();
+        let o = blocksur::FitOptions { method: blocksur::Method::Fgls, ..Default::default() };
+        let e = time(reps, || {
+            prepared.estimate(&o).unwrap();
+        });
+        println!("N={n} T={t} K_i={k}: gram {g:.1} ms, prepare {prep:.1} ms, fgls estimate {e:.1} ms");
+        return;
+    }
     if std::env::var("ONLY").as_deref() == Ok("step0") {
         let mf = time(reps, || {
             Prepared::new_matrix_free(&data, &|| false).unwrap();

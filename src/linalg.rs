@@ -76,7 +76,8 @@ pub fn gram_blocked(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> R
     // uses both cores where this OpenBLAS's syrk does not (P = 350: 9 ms against 11-16 ms).
     if let Some(kernel) = crate::gram::Kernel::best().filter(|_| p < PACKED_GRAM_MAX_P) {
         if let Some(buf) = w.as_slice_memory_order().filter(|b| b.len() == t * p) {
-            let threads = if (t as f64) * (p as f64) * (p as f64) < PARALLEL_GRAM { 1 } else { crate::prepare::work_threads() };
+            let flops = (t as f64) * (p as f64) * (p as f64);
+            let threads = if flops < PARALLEL_GRAM { 1 } else { crate::prepare::work_threads(flops) };
             return crate::gram::gram_packed(kernel, buf, t, p, threads, cancel);
         }
     }

@@ -319,7 +319,7 @@ fn factor_all(
 ) -> Result<Vec<EquationFactor>> {
     let n = blocks.len();
     let work: f64 = data.equations.iter().map(|e| t as f64 * ((e.n_regressors() + 1) as f64).powi(2)).sum();
-    let threads = if work < PARALLEL_WORK { 1 } else { work_threads().min(n) };
+    let threads = if work < PARALLEL_WORK { 1 } else { work_threads(work).min(n) };
     let jobs: Vec<Mutex<Option<WBlock<'_>>>> = blocks.into_iter().map(|b| Mutex::new(Some(b))).collect();
     let results: Vec<Mutex<Option<Result<EquationFactor>>>> = (0..n).map(|_| Mutex::new(None)).collect();
     let next = AtomicUsize::new(0);
@@ -380,14 +380,60 @@ fn factor_all(
     Ok(factors)
 }
 
-/// Threads for this module's own parallel work: the cores, capped by the thread count of the
-/// OpenBLAS pool (the one knob users set, `blas_threads` or threadpoolctl), one on the threads
-/// of a batch of many systems (already one per core).
-pub(crate) fn work_threads() -> usize {
+/// Threads for this module's own parallel work of about `flops` operations: the cores, capped
+/// by the thread count of the OpenBLAS pool (the one knob users set, `blas_threads` or
+/// threadpoolctl), one on the threads of a batch of many systems (already one per core), and
+/// fewer by the other threads of this process that are running at the time (work of at least
+/// CONTENTION_CHECK_WORK only).
+///
+/// The last is for another library's idle BLAS workers: numpy's OpenBLAS spins its workers for
+/// about 0.1 s after each threaded call. Threads that meet at barriers lose most of their speed
+/// when they share the cores with such a spinner (case (c) right after a numpy `W.T @ W`: 31-42
+/// ms against 15-20 ms with two threads, 21-24 ms on one thread), so the work then runs on the
+/// cores that are free.
+pub(crate) fn work_threads(flops: f64) -> usize {
     if IN_WORKER.with(|w| w.get()) {
         return 1;
     }
-    cores().min(blas_pool_threads()).min(MAX_THREADS)
+    let most = cores().min(blas_pool_threads()).min(MAX_THREADS);
+    if most <= 1 || flops < CONTENTION_CHECK_WORK {
+        return most;
+    }
+    match other_running_threads() {
+        Some(busy) => most.min(cores().saturating_sub(busy)).max(1),
+        None => most,
+    }
+}
+
+/// Parallel work below this many operations (about a millisecond on one core) does not look
+/// for running threads: the look costs some 40 us (a process of four threads).
+const CONTENTION_CHECK_WORK: f64 = 1.0e8;
+
+/// Threads of this process, other than the calling one, that are running or ready to run
+/// (state R in /proc/self/task/*/stat); None where /proc cannot be read.
+pub(crate) fn other_running_threads() -> Option<usize> {
+    let mut running = 0usize;
+    let mut buf = Vec::with_capacity(512);
+    for entry in std::fs::read_dir("/proc/self/task").ok()? {
+        let Ok(entry) = entry else { continue };
+        let mut path = entry.path();
+        path.push("stat");
+        buf.clear();
+        use std::io::Read;
+        // a thread may end between the listing and the read: skip it
+        let Ok(mut f) = std::fs::File::open(&path) else { continue };
+        if f.read_to_end(&mut buf).is_err() {
+            continue;
+        }
+        // "tid (name) S ...": the name may hold spaces and parentheses; the state follows the last ')'
+        if let Some(close) = buf.iter().rposition(|&b| b == b')') {
+            if buf.get(close + 2) == Some(&b'R') {
+                running += 1;
+            }
+        }
+    }
+    // the calling thread is running while it reads
+    Some(running.saturating_sub(1))
 }
 
 /// The thread count of the linked OpenBLAS's pool (at least 1).
@@ -761,4 +807,38 @@ fn shared_regressors(data: &SystemData, t: usize) -> Result<(Vec<EquationFactor>
         }
     }
     Ok((factors, qq))
+}
+
+#[cfg(test)]
+mod thread_tests {
+    use super::{cores, other_running_threads, work_threads};
+    use std::sync::atomic::{AtomicBool, Ordering};
+
+    /// A busy thread of this process is seen as running (state R of /proc/<pid>/task/<tid>/stat,
+    /// proc(5)), and large work then leaves its core to it. Linux only: elsewhere there is no
+    /// /proc and the look reports nothing.
+    #[test]
+    fn a_spinning_thread_is_seen_and_keeps_its_core() {
+        if !cfg!(target_os = "linux") {
+            assert!(other_running_threads().is_none());
+            return;
+        }
+        let stop = AtomicBool::new(false);
+        std::thread::scope(|s| {
+            s.spawn(|| {
+                while !stop.load(Ordering::Relaxed) {
+                    std::hint::spin_loop();
+                }
+            });
+            std::thread::sleep(std::time::Duration::from_millis(20));
+            let seen = (0..50).filter(|_| other_running_threads().expect("Linux has /proc") >= 1).count();
+            let threads = work_threads(1e10);
+            stop.store(true, Ordering::Relaxed);
+            // a spinning thread never sleeps: it is running or ready to run at every look
+            assert_eq!(seen, 50);
+            assert!(threads >= 1 && threads <= cores().saturating_sub(1).max(1), "{threads} threads");
+        });
+        // small work never looks
+        assert_eq!(work_threads(1.0), cores().min(super::blas_pool_threads()).min(super::MAX_THREADS));
+    }
 }

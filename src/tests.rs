@@ -876,7 +876,7 @@ fn input_memory_layout_does_not_change_a_bit() {
             xs.iter().map(|x| x.view()).collect()
         };
         let d = SystemData::new(
-            ys.iter().zip(&views).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.clone())).collect(),
+            ys.iter().zip(&views).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), *x)).collect(),
         );
         let p = Prepared::new(&d).unwrap();
         let e = p.estimate(&opts(Method::Fgls, Divisor::Ml)).unwrap();
