@@ -259,9 +259,21 @@ impl Prepared {
                             ga
                         }
                     };
-                    for i in j..n {
-                        let (c, d) = (self.offsets[i], self.offsets[i + 1]);
-                        out[[i, j]] = -delta.slice(s![c..d]).dot(&ga.slice(s![c..d])) + rho[i] * ga[k + i];
+                    match (delta.as_slice(), ga.as_slice()) {
+                        (Some(dl), Some(gl)) => {
+                            // plain slices: an ndarray view per (i, j) pair cost more than its few products
+                            for i in j..n {
+                                let (c, d) = (self.offsets[i], self.offsets[i + 1]);
+                                let q: f64 = dl[c..d].iter().zip(&gl[c..d]).map(|(x, y)| x * y).sum();
+                                out[[i, j]] = -q + rho[i] * gl[k + i];
+                            }
+                        }
+                        _ => {
+                            for i in j..n {
+                                let (c, d) = (self.offsets[i], self.offsets[i + 1]);
+                                out[[i, j]] = -delta.slice(s![c..d]).dot(&ga.slice(s![c..d])) + rho[i] * ga[k + i];
+                            }
+                        }
                     }
                 }
             }
@@ -377,13 +389,20 @@ impl Prepared {
         {
             let mbuf = m.as_slice_memory_order_mut().expect("fresh column-major array");
             for j in 0..k {
-                let sig = sigma_inv.column(eq_of[j]);
+                let ej = eq_of[j];
+                let sig = sigma_inv.column(ej);
                 let mcol = &mut mbuf[j * k..(j + 1) * k];
                 match gbuf {
                     Some(g) => {
+                        // by equation blocks: one weight per run of rows, no per-entry lookup
                         let gcol = &g[j * p..j * p + k];
-                        for i in j..k {
-                            mcol[i] = gcol[i] * sig[eq_of[i]];
+                        let mut i = j;
+                        for e in ej..n {
+                            let (end, w) = (self.offsets[e + 1], sig[e]);
+                            for (m, g) in mcol[i..end].iter_mut().zip(&gcol[i..end]) {
+                                *m = g * w;
+                            }
+                            i = end;
                         }
                     }
                     None => {
