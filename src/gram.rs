@@ -10,6 +10,11 @@
 //! NC columns) and add `width` x `width`/2 tiles, kept in registers over the block's rows,
 //! into the product. Each entry is summed block by block in a fixed order, whichever thread
 //! adds a block: the result does not depend on the number of threads.
+//!
+//! The threads never wait for one another as such, only for work another thread has claimed
+//! and not finished (counters of finished panels and units, no barrier): a helper that starts
+//! late, or loses its core to another process's thread, leaves its share to the threads that
+//! are running instead of holding them at every block.
 
 use ndarray::Array2;
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
@@ -94,17 +99,18 @@ struct Out {
     err: *mut f64,
     p: usize,
 }
-// SAFETY: within a block each row tile is claimed by one thread, blocks are ordered by the
-// barriers, and the array outlives the scoped threads.
+// SAFETY: within a block each row tile is claimed by one thread, no unit of a block starts
+// before every unit of the one before has finished (`Job::lower_rows`), and the array outlives
+// the scoped threads.
 unsafe impl Sync for Out {}
 
 /// The two packed copies of row blocks (double-buffered: while one block is multiplied, the
-/// next may be packed), written by all threads between barriers.
+/// next may be packed), each panel written by the thread that claimed it.
 struct Panels {
     ptr: [*mut f64; 2],
 }
-// SAFETY: between two barriers each thread writes only its own panels of the buffer being
-// packed, and the buffer being read is not written (see `lower_rows`).
+// SAFETY: each thread writes only the panels it claimed of the buffer being packed, and a
+// buffer is not packed again before every unit that reads it has finished (see `lower_rows`).
 unsafe impl Sync for Panels {}
 
 /// W'W for the column-major T x P matrix in `w` (leading dimension T), full and symmetric,
@@ -141,8 +147,7 @@ pub(crate) fn gram_packed(
     let mut err = if t > 64 * kc_max { crate::linalg::zeros_for_product(p) } else { Array2::zeros((0, 0)) };
     let out = Out { ptr: g.as_mut_ptr(), err: if err.is_empty() { std::ptr::null_mut() } else { err.as_mut_ptr() }, p };
     let stop = AtomicBool::new(false);
-    let barrier = SpinBarrier::new(parts);
-    let (packed, done) = (AtomicUsize::new(0), AtomicUsize::new(0));
+    let progress = Progress::default();
     // Column blocks in turn; within one, the row panels from the bottom (the longest) up.
     let mut units = Vec::new();
     for jc in (0..p).step_by(NC) {
@@ -150,7 +155,7 @@ pub(crate) fn gram_packed(
             units.push((gi, jc));
         }
     }
-    let job = Job { kernel, w, t, p, kc_max, groups, units, packed: &packed, done: &done, panels: &panels, out: &out, stop: &stop, barrier: &barrier };
+    let job = Job { kernel, w, t, p, kc_max, groups, units, progress: &progress, panels: &panels, out: &out, stop: &stop };
     if parts > 1 {
         std::thread::scope(|sc| {
             for _ in 1..parts {
@@ -184,66 +189,93 @@ struct Job<'a> {
     groups: usize,
     /// (row panel, first column) of each unit of product work, in claiming order.
     units: Vec<(usize, usize)>,
-    packed: &'a AtomicUsize,
-    done: &'a AtomicUsize,
+    progress: &'a Progress,
     panels: &'a Panels,
     out: &'a Out,
     stop: &'a AtomicBool,
-    barrier: &'a SpinBarrier,
 }
 
+/// Work claimed and finished, counted over all blocks: block b's panels are numbers
+/// b * groups .. (b + 1) * groups of the packing counters, its units b * units .. (b + 1) *
+/// units of the product counters. Blocks are packed, and multiplied, in order (see
+/// `Job::lower_rows`), so "block b is packed" is `packed >= (b + 1) * groups`.
+#[derive(Default)]
+struct Progress {
+    pack_claimed: Line,
+    packed: Line,
+    unit_claimed: Line,
+    multiplied: Line,
+}
+
+/// A counter on a cache line (pair) of its own: the claim counters take every thread's
+/// compare-and-swaps while the waits read the finished counters.
+#[derive(Default)]
+#[repr(align(128))]
+struct Line(AtomicUsize);
+
 impl Job<'_> {
-    /// One thread's part: for each block of KC rows of W, pack panels, wait for the others,
-    /// then add row tiles into the product. Panels and row tiles are claimed one at a time
-    /// (largest rows first), so a thread delayed by other load does less of the work. Each
-    /// entry of the product is still summed block by block in a fixed order, whichever thread
-    /// adds a block's tile: the result does not depend on the threads.
+    /// One thread's part: for each block of KC rows of W, pack panels, then add row tiles
+    /// into the product. Panels and row tiles are claimed one at a time (largest rows first),
+    /// so a thread delayed by other load does less of the work. Each entry of the product is
+    /// still summed block by block in a fixed order, whichever thread adds a block's tile: the
+    /// result does not depend on the threads.
     ///
-    /// One barrier per block: the buffers alternate, and a thread packs block b + 1 only after
-    /// every thread has passed block b's barrier, hence finished multiplying block b - 1, which
-    /// used the same buffer. Row tiles of a block are written by one thread each, and blocks
-    /// are ordered by the barriers.
+    /// Order, for block b (buffer b % 2): packing starts once every unit of block b - 2 (the
+    /// last reader of that buffer) has finished; multiplying starts once all of block b is
+    /// packed and every unit of block b - 1 has finished, so the tiles of one entry are added
+    /// block after block and never by two threads at once. A thread waits only for work that
+    /// another has claimed (which that thread finishes without waiting), so nothing waits for
+    /// a thread that has not started: one that starts late finds the blocks before it done
+    /// and joins at the current one.
     fn lower_rows(&self, is_caller: bool, cancel: &dyn Fn() -> bool) {
         let (t, p, pw) = (self.t, self.p, self.kernel.width());
         let half = pw / 2;
-        // a panic in this thread releases the others from the barrier (they stop)
-        let _guard = ReleaseOnPanic(self.barrier, self.stop);
+        let (groups, n_units) = (self.groups, self.units.len());
+        let pr = self.progress;
+        // a panic in this thread stops the others (they would wait for its claimed work)
+        let _guard = StopOnPanic(self.stop);
         let mut t0 = 0;
         let mut block = 0;
         while t0 < t {
             let kc = self.kc_max.min(t - t0);
             let buf = self.panels.ptr[block % 2];
-            while let Some(g) = claim(self.packed, block, self.groups) {
-                // SAFETY: panel g of this buffer is this thread's to write (claimed once) until
-                // the barrier; no thread reads this buffer until then.
+            if block >= 2 && !wait_for(&pr.multiplied.0, (block - 1) * n_units, self.stop) {
+                return;
+            }
+            while let Some(g) = claim(&pr.pack_claimed.0, block, groups) {
+                // SAFETY: panel g of this buffer is this thread's to write (claimed once); no
+                // unit reads the buffer until the whole block is packed, and the units of block
+                // b - 2 that read it before have finished (waited for above).
                 let dst = unsafe { std::slice::from_raw_parts_mut(buf.add(g * pw * kc), pw * kc) };
                 match pw {
                     16 => pack::<16>(self.w, t, t0, kc, g * 16, p, dst),
                     _ => pack::<8>(self.w, t, t0, kc, g * 8, p, dst),
                 }
+                pr.packed.0.fetch_add(1, Ordering::AcqRel);
             }
             if is_caller && cancel() {
-                self.stop.store(true, Ordering::Relaxed);
+                self.stop.store(true, Ordering::Release);
             }
-            self.barrier.wait();
-            if self.stop.load(Ordering::Relaxed) {
+            if !wait_for(&pr.packed.0, (block + 1) * groups, self.stop)
+                || !wait_for(&pr.multiplied.0, block * n_units, self.stop)
+            {
                 return;
             }
             // Units: the row tiles of one panel (pw rows) against one block of NC columns,
             // column blocks in turn (their panels stay in L2 while the row panels stream).
-            while let Some(u) = claim(self.done, block, self.units.len()) {
+            while let Some(u) = claim(&pr.unit_claimed.0, block, n_units) {
                 let (gi, jc) = self.units[u];
                 let i0 = gi * pw;
                 let i_end = (i0 + pw).min(p);
-                // SAFETY: the buffer was fully packed before the barrier and is not written
-                // until every thread passes the next one.
+                // SAFETY: the buffer was fully packed (waited for above) and is not written
+                // until every unit of this block has finished.
                 let a = unsafe { buf.add(gi * pw * kc) as *const f64 };
                 for j0 in (jc..i_end.min(jc + NC)).step_by(half) {
                     let b = unsafe { buf.add((j0 / pw) * pw * kc + j0 % pw) as *const f64 };
                     let j_end = (j0 + half).min(p);
                     // SAFETY: the CPU has the kernel's features (Kernel::best); a and b hold kc
                     // rows of pw values; rows i0..i_end and columns j0..j_end (claimed by this
-                    // thread for this block) lie inside the P x P product.
+                    // thread for this block, the previous block's finished) lie inside the P x P product.
                     unsafe {
                         let at = i0 + j0 * self.out.p;
                         let c = self.out.ptr.add(at);
@@ -251,6 +283,7 @@ impl Job<'_> {
                         self.kernel.run(kc, a, b, c, e, self.out.p, i_end - i0, j_end - j0);
                     }
                 }
+                pr.multiplied.0.fetch_add(1, Ordering::AcqRel);
             }
             t0 += kc;
             block += 1;
@@ -258,65 +291,47 @@ impl Job<'_> {
     }
 }
 
-/// A barrier for the few threads of one product: they wait by spinning, then by yielding.
-/// The work between two waits is about 0.1-0.2 ms per thread, so a wait is short, and a
-/// sleeping wait (std's Barrier) costs a wake-up each time, tens of microseconds on a virtual
-/// machine, once per block of rows: several milliseconds per product, and most of the run-
-/// to-run spread of the data pass (case (c): 12-22 ms with std's Barrier).
-struct SpinBarrier {
-    n: usize,
-    arrived: AtomicUsize,
-    generation: AtomicUsize,
-    broken: AtomicBool,
-}
-
-impl SpinBarrier {
-    fn new(n: usize) -> Self {
-        SpinBarrier { n, arrived: AtomicUsize::new(0), generation: AtomicUsize::new(0), broken: AtomicBool::new(false) }
-    }
-
-    fn wait(&self) {
-        let generation = self.generation.load(Ordering::Acquire);
-        if self.arrived.fetch_add(1, Ordering::AcqRel) + 1 == self.n {
-            // the last to arrive: reset the count before releasing the others (a released
-            // thread's next arrival then counts towards the next generation)
-            self.arrived.store(0, Ordering::Relaxed);
-            self.generation.fetch_add(1, Ordering::Release);
-            return;
+/// Waits until `counter` reaches `target`: by spinning, then by yielding the core (the work
+/// waited for is one panel or one unit, well under a millisecond, unless its thread lost its
+/// core). False when the product was stopped (cancelled, or a thread panicked).
+fn wait_for(counter: &AtomicUsize, target: usize, stop: &AtomicBool) -> bool {
+    let mut spins = 0u32;
+    loop {
+        if counter.load(Ordering::Acquire) >= target {
+            return true;
         }
-        let mut spins = 0u32;
-        while self.generation.load(Ordering::Acquire) == generation && !self.broken.load(Ordering::Acquire) {
-            if spins < SPIN_LIMIT {
-                std::hint::spin_loop();
-                spins += 1;
-            } else {
-                // another tenant may hold the core the others need
-                std::thread::yield_now();
-            }
+        if stop.load(Ordering::Acquire) {
+            return false;
+        }
+        if spins < SPIN_LIMIT {
+            std::hint::spin_loop();
+            spins += 1;
+        } else {
+            // another thread may hold the core the work waited for needs
+            std::thread::yield_now();
         }
     }
 }
 
-/// Spins before a barrier wait yields the core (about 0.1-0.3 ms).
+/// Spins before a wait yields the core (about 0.1-0.3 ms).
 const SPIN_LIMIT: u32 = 1 << 14;
 
-/// Breaks the barrier and asks the others to stop when its thread unwinds from a panic (they
-/// would otherwise wait for it for ever; the panic then reaches the caller through the scope).
-struct ReleaseOnPanic<'a>(&'a SpinBarrier, &'a AtomicBool);
+/// Stops the product when its thread unwinds from a panic: the others would otherwise wait
+/// for ever for the work it had claimed (the panic then reaches the caller through the scope).
+struct StopOnPanic<'a>(&'a AtomicBool);
 
-impl Drop for ReleaseOnPanic<'_> {
+impl Drop for StopOnPanic<'_> {
     fn drop(&mut self) {
         if std::thread::panicking() {
-            self.1.store(true, Ordering::Relaxed);
-            self.0.broken.store(true, Ordering::Release);
+            self.0.store(true, Ordering::Release);
         }
     }
 }
 
 /// Claims the next of `units` units of work of block `block` from `counter`, which counts
 /// the units claimed over all blocks (block b's are b * units .. (b + 1) * units): None when
-/// the block has none left. A counter ahead of the block (other threads already in the next
-/// one cannot be: they wait at its barrier) is impossible, and one behind it is brought up.
+/// the block has none left (also when the counter is past the block: a thread that started
+/// late passes over the blocks the others have done). A counter behind the block is brought up.
 fn claim(counter: &AtomicUsize, block: usize, units: usize) -> Option<usize> {
     let (start, end) = (block * units, (block + 1) * units);
     let mut v = counter.load(Ordering::Relaxed);
@@ -496,7 +511,9 @@ mod tests {
             for (a, b) in blas.iter().zip(one.iter()) {
                 assert_relative_eq!(*a, *b, epsilon = 1e-12 * t as f64, max_relative = 1e-12);
             }
-            for threads in [2, 3] {
+            // more threads than this machine's cores too: some then start late or lose their
+            // core mid-product, and the others take their share
+            for threads in [2, 3, 8] {
                 let many = gram_packed(kernel, &w, t, p, threads, &|| false).unwrap();
                 assert!(many == one, "t={t} p={p}: {threads} threads differ from one");
             }
@@ -545,37 +562,26 @@ mod tests {
         assert!(matches!(gram_packed(kernel, &w, t, p, 2, &|| true), Err(SurError::Interrupted)));
     }
 
+    /// A thread that panics with work claimed must not leave the others waiting for it for
+    /// ever: its guard stops the product and the waits return.
     #[test]
-    fn barrier_orders_phases_and_a_panicking_thread_releases_it() {
-        // phases: no thread starts phase r + 1 before all have finished phase r
-        let b = SpinBarrier::new(3);
-        let done = AtomicUsize::new(0);
-        std::thread::scope(|sc| {
-            for _ in 0..3 {
-                sc.spawn(|| {
-                    for r in 0..200 {
-                        done.fetch_add(1, Ordering::SeqCst);
-                        b.wait();
-                        assert!(done.load(Ordering::SeqCst) >= 3 * (r + 1));
-                        b.wait();
-                    }
-                });
-            }
-        });
-        assert_eq!(done.load(Ordering::SeqCst), 600);
-        // a thread that panics before its wait must not leave the others waiting for ever
-        let b = SpinBarrier::new(2);
+    fn a_panicking_thread_stops_the_waits() {
         let stop = AtomicBool::new(false);
+        let finished = AtomicUsize::new(0);
         let out = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
             std::thread::scope(|sc| {
                 sc.spawn(|| {
-                    let _guard = ReleaseOnPanic(&b, &stop);
-                    panic!("a worker fails (expected in this test)");
+                    let _guard = StopOnPanic(&stop);
+                    panic!("a worker fails with a unit claimed (expected in this test)");
                 });
-                b.wait();
+                // the unit the worker claimed never finishes
+                assert!(!wait_for(&finished, 1, &stop));
             })
         }));
         assert!(out.is_err());
         assert!(stop.load(Ordering::Relaxed));
+        // and a wait for finished work returns at once
+        finished.store(3, Ordering::Release);
+        assert!(wait_for(&finished, 3, &AtomicBool::new(false)));
     }
 }

@@ -88,7 +88,7 @@ def test_concurrent_fits_are_bit_identical_to_sequential(blas, size):
 def test_the_core_releases_the_gil():
     """While one thread runs a long fit, the main thread keeps running Python code. With the GIL
     held by the fit, the main thread would stall for the whole fit."""
-    big = make_system(99, n_eq=10, n_obs=150_000, unequal=True)
+    big = make_system(99, n_eq=10, n_obs=300_000, unequal=True)
     system = blocksur.EquationSystem(big)
     t0 = time.perf_counter()
     system.fit("ols")  # the data pass happens once here
