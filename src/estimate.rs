@@ -243,9 +243,28 @@ impl Prepared {
                 // per equation woke OpenBLAS's pool N times per IFGLS step)
                 let p = gram.nrows();
                 let gbuf = gram.as_slice_memory_order().filter(|_| gram.t().is_standard_layout());
+                let mut scratch = vec![0.0; p];
                 for j in 0..n {
                     let (a, b) = (self.offsets[j], self.offsets[j + 1]);
                     let dj = delta.slice(s![a..b]);
+                    if let (Some(g), Some(d), Some(dl)) = (gbuf, dj.as_slice(), delta.as_slice()) {
+                        // Rows a.. of column j of G A only (the pairs i >= j read no others):
+                        // half the reads of G, and none of Q_j's columns where delta_j = 0 (OLS).
+                        let ga = &mut scratch[a..];
+                        for (o, v) in ga.iter_mut().zip(&g[(k + j) * p + a..(k + j + 1) * p]) {
+                            *o = rho[j] * v;
+                        }
+                        if d.iter().any(|v| *v != 0.0) {
+                            let cols: Vec<&[f64]> = (a..b).map(|c| &g[c * p + a..(c + 1) * p]).collect();
+                            crate::linalg::sub_combination_cols(ga, &cols, d);
+                        }
+                        for i in j..n {
+                            let (c, e) = (self.offsets[i], self.offsets[i + 1]);
+                            let q: f64 = dl[c..e].iter().zip(&ga[c - a..e - a]).map(|(x, y)| x * y).sum();
+                            out[[i, j]] = -q + rho[i] * ga[k + i - a];
+                        }
+                        continue;
+                    }
                     let ga = match (gbuf, dj.as_slice()) {
                         (Some(g), Some(d)) => {
                             let mut ga: Array1<f64> = g[(k + j) * p..(k + j + 1) * p].iter().map(|v| rho[j] * v).collect();

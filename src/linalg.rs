@@ -525,11 +525,9 @@ pub fn chol_inverse(l: &Array2<f64>) -> Result<Array2<f64>> {
     if info != 0 {
         return Err(SurError::numerical("inverse from the Cholesky factor", format!("LAPACK info {info}")));
     }
-    for j in 0..a.ncols() {
-        for i in 0..j {
-            a[[i, j]] = a[[j, i]];
-        }
-    }
+    // upper from lower, in cache-sized blocks (row-wise writes into a column-major 1000 x 1000
+    // matrix touched a new page at every entry)
+    mirror(&mut a, true);
     Ok(a)
 }
 
@@ -623,8 +621,9 @@ pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize, scales:
     };
     let cond = spd_condition(&corr, &l);
     let inv = chol_inverse(&l)?;
-    let mut out = Array2::from_shape_fn((n, n), |(i, j)| inv[[i, j]] * d[i] * d[j]);
-    symmetrize(&mut out);
+    // inv is exactly symmetric and d_i d_j = d_j d_i, so the result is too; column-major like
+    // inv (read in memory order), and its columns, which the GLS step reads, are contiguous
+    let out = Array2::from_shape_fn((n, n).f(), |(i, j)| inv[[i, j]] * (d[i] * d[j]));
     Ok((out, cond))
 }
 
@@ -966,8 +965,15 @@ unsafe fn dotn_fma<const N: usize>(c: [&[f64]; N], v: &[f64]) -> [f64; N] {
 /// v -= sum_j c_j q_j for the columns q_j of the column-major T x c.len() block `q`, four
 /// columns per pass over the rows.
 pub(crate) fn sub_combination(v: &mut [f64], q: &[f64], t: usize, c: &[f64]) {
-    let v = &mut v[..t];
-    let col = |j: usize| &q[j * t..(j + 1) * t];
+    let cols: Vec<&[f64]> = (0..c.len()).map(|j| &q[j * t..(j + 1) * t]).collect();
+    sub_combination_cols(&mut v[..t], &cols, c);
+}
+
+/// v -= sum_j c_j cols[j] over the length of v (each column at least that long), four
+/// columns per pass.
+pub(crate) fn sub_combination_cols(v: &mut [f64], cols: &[&[f64]], c: &[f64]) {
+    let t = v.len();
+    let col = |j: usize| &cols[j][..t];
     let mut j = 0;
     while j + 4 <= c.len() {
         let (cols, w) = ([col(j), col(j + 1), col(j + 2), col(j + 3)], [-c[j], -c[j + 1], -c[j + 2], -c[j + 3]]);
