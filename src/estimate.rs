@@ -243,6 +243,20 @@ impl Prepared {
                 // per equation woke OpenBLAS's pool N times per IFGLS step)
                 let p = gram.nrows();
                 let gbuf = gram.as_slice_memory_order().filter(|_| gram.t().is_standard_layout());
+                if delta.iter().all(|v| *v == 0.0) {
+                    // OLS residuals: S_ij = rho_i rho_j q_i'q_j, the y block of G alone
+                    for j in 0..n {
+                        for i in j..n {
+                            out[[i, j]] = rho[i] * (rho[j] * gram[[k + i, k + j]]);
+                        }
+                    }
+                    for i in 0..n {
+                        for j in (i + 1)..n {
+                            out[[i, j]] = out[[j, i]];
+                        }
+                    }
+                    return out;
+                }
                 let mut scratch = vec![0.0; p];
                 for j in 0..n {
                     let (a, b) = (self.offsets[j], self.offsets[j + 1]);
