@@ -387,10 +387,9 @@ fn factor_all(
 /// CONTENTION_CHECK_WORK only).
 ///
 /// The last is for another library's idle BLAS workers: numpy's OpenBLAS spins its workers for
-/// about 0.1 s after each threaded call. Threads that meet at barriers lose most of their speed
-/// when they share the cores with such a spinner (case (c) right after a numpy `W.T @ W`: 31-42
-/// ms against 15-20 ms with two threads, 21-24 ms on one thread), so the work then runs on the
-/// cores that are free.
+/// about 0.1 s after each threaded call, and threads that share the cores with such a spinner
+/// lose more than they gain (case (c) right after a numpy `W.T @ W`: 26-29 ms on two threads,
+/// 23-25 ms on the free core; 37-43 ms with the Gram kernel's former per-block barrier).
 pub(crate) fn work_threads(flops: f64) -> usize {
     if IN_WORKER.with(|w| w.get()) {
         return 1;
@@ -399,8 +398,8 @@ pub(crate) fn work_threads(flops: f64) -> usize {
     if most <= 1 || flops < CONTENTION_CHECK_WORK {
         return most;
     }
-    match other_running_threads() {
-        Some(busy) => most.min(cores().saturating_sub(busy)).max(1),
+    match other_running_threads(cores() - 1) {
+        Some(busy) => most.min(cores() - busy).max(1),
         None => most,
     }
 }
@@ -410,8 +409,9 @@ pub(crate) fn work_threads(flops: f64) -> usize {
 const CONTENTION_CHECK_WORK: f64 = 1.0e8;
 
 /// Threads of this process, other than the calling one, that are running or ready to run
-/// (state R in /proc/self/task/*/stat); None where /proc cannot be read.
-pub(crate) fn other_running_threads() -> Option<usize> {
+/// (state R in /proc/self/task/*/stat), counted up to `enough` (the look stops there: a process
+/// of a hundred threads costs no more than it must); None where /proc cannot be read.
+pub(crate) fn other_running_threads(enough: usize) -> Option<usize> {
     let mut running = 0usize;
     let mut buf = Vec::with_capacity(512);
     for entry in std::fs::read_dir("/proc/self/task").ok()? {
@@ -429,6 +429,10 @@ pub(crate) fn other_running_threads() -> Option<usize> {
         if let Some(close) = buf.iter().rposition(|&b| b == b')') {
             if buf.get(close + 2) == Some(&b'R') {
                 running += 1;
+                // the calling thread is one of them
+                if running > enough {
+                    break;
+                }
             }
         }
     }
@@ -820,7 +824,7 @@ mod thread_tests {
     #[test]
     fn a_spinning_thread_is_seen_and_keeps_its_core() {
         if !cfg!(target_os = "linux") {
-            assert!(other_running_threads().is_none());
+            assert!(other_running_threads(8).is_none());
             return;
         }
         let stop = AtomicBool::new(false);
@@ -831,7 +835,7 @@ mod thread_tests {
                 }
             });
             std::thread::sleep(std::time::Duration::from_millis(20));
-            let seen = (0..50).filter(|_| other_running_threads().expect("Linux has /proc") >= 1).count();
+            let seen = (0..50).filter(|_| other_running_threads(8).expect("Linux has /proc") >= 1).count();
             let threads = work_threads(1e10);
             stop.store(true, Ordering::Relaxed);
             // a spinning thread never sleeps: it is running or ready to run at every look
