@@ -238,75 +238,46 @@ impl Prepared {
                 }
             }
             CrossProducts::General { gram } => {
-                // Column j of G A, where A (P x N) holds -delta_j in the rows of Q_j and rho_j in row K + j.
-                // (from the contiguous columns of the column-major G where it is: a BLAS dgemv
-                // per equation woke OpenBLAS's pool N times per IFGLS step)
+                // Column j of G A, where A (P x N) holds -delta_j in the rows of Q_j and rho_j
+                // in row K + j, from the contiguous columns of the column-major G (a BLAS dgemv
+                // per equation woke OpenBLAS's pool N times per IFGLS step). Every path builds
+                // G column-major; a copy serves otherwise.
                 let p = gram.nrows();
-                let gbuf = gram.as_slice_memory_order().filter(|_| gram.t().is_standard_layout());
-                if delta.iter().all(|v| *v == 0.0) {
-                    // OLS residuals: S_ij = rho_i rho_j q_i'q_j, the y block of G alone
-                    for j in 0..n {
-                        for i in j..n {
-                            out[[i, j]] = rho[i] * (rho[j] * gram[[k + i, k + j]]);
-                        }
+                let copy;
+                let g = match gram.as_slice_memory_order().filter(|_| gram.t().is_standard_layout()) {
+                    Some(g) => g,
+                    None => {
+                        copy = crate::linalg::to_fortran(gram);
+                        copy.as_slice_memory_order().expect("column-major copy")
                     }
-                    for i in 0..n {
-                        for j in (i + 1)..n {
-                            out[[i, j]] = out[[j, i]];
-                        }
-                    }
-                    return out;
-                }
+                };
+                let dl: std::borrow::Cow<[f64]> = delta.as_slice().map_or_else(|| delta.to_vec().into(), Into::into);
+                let ols = dl.iter().all(|v| *v == 0.0);
                 let mut scratch = vec![0.0; p];
                 for j in 0..n {
                     let (a, b) = (self.offsets[j], self.offsets[j + 1]);
-                    let dj = delta.slice(s![a..b]);
-                    if let (Some(g), Some(d), Some(dl)) = (gbuf, dj.as_slice(), delta.as_slice()) {
-                        // Rows a.. of column j of G A only (the pairs i >= j read no others):
-                        // half the reads of G, and none of Q_j's columns where delta_j = 0 (OLS).
-                        let ga = &mut scratch[a..];
-                        for (o, v) in ga.iter_mut().zip(&g[(k + j) * p + a..(k + j + 1) * p]) {
-                            *o = rho[j] * v;
-                        }
-                        if d.iter().any(|v| *v != 0.0) {
-                            let cols: Vec<&[f64]> = (a..b).map(|c| &g[c * p + a..(c + 1) * p]).collect();
-                            crate::linalg::sub_combination_cols(ga, &cols, d);
-                        }
+                    if ols {
+                        // OLS residuals: S_ij = rho_i rho_j q_i'q_j, the y block of G alone
                         for i in j..n {
-                            let (c, e) = (self.offsets[i], self.offsets[i + 1]);
-                            let q: f64 = dl[c..e].iter().zip(&ga[c - a..e - a]).map(|(x, y)| x * y).sum();
-                            out[[i, j]] = -q + rho[i] * ga[k + i - a];
+                            out[[i, j]] = rho[i] * (rho[j] * g[(k + j) * p + k + i]);
                         }
                         continue;
                     }
-                    let ga = match (gbuf, dj.as_slice()) {
-                        (Some(g), Some(d)) => {
-                            let mut ga: Array1<f64> = g[(k + j) * p..(k + j + 1) * p].iter().map(|v| rho[j] * v).collect();
-                            crate::linalg::sub_combination(ga.as_slice_mut().expect("fresh"), &g[a * p..b * p], p, d);
-                            ga
-                        }
-                        _ => {
-                            let mut ga = gram.slice(s![.., a..b]).dot(&dj);
-                            ga.mapv_inplace(|v| -v);
-                            ga.scaled_add(rho[j], &gram.column(k + j));
-                            ga
-                        }
-                    };
-                    match (delta.as_slice(), ga.as_slice()) {
-                        (Some(dl), Some(gl)) => {
-                            // plain slices: an ndarray view per (i, j) pair cost more than its few products
-                            for i in j..n {
-                                let (c, d) = (self.offsets[i], self.offsets[i + 1]);
-                                let q: f64 = dl[c..d].iter().zip(&gl[c..d]).map(|(x, y)| x * y).sum();
-                                out[[i, j]] = -q + rho[i] * gl[k + i];
-                            }
-                        }
-                        _ => {
-                            for i in j..n {
-                                let (c, d) = (self.offsets[i], self.offsets[i + 1]);
-                                out[[i, j]] = -delta.slice(s![c..d]).dot(&ga.slice(s![c..d])) + rho[i] * ga[k + i];
-                            }
-                        }
+                    // Rows a.. of the column only (the pairs i >= j read no others): half the
+                    // reads of G, and none of Q_j's columns where delta_j = 0.
+                    let ga = &mut scratch[a..];
+                    for (o, v) in ga.iter_mut().zip(&g[(k + j) * p + a..(k + j + 1) * p]) {
+                        *o = rho[j] * v;
+                    }
+                    let d = &dl[a..b];
+                    if d.iter().any(|v| *v != 0.0) {
+                        crate::linalg::sub_combination_with(ga, d, |c| &g[(a + c) * p + a..(a + c + 1) * p]);
+                    }
+                    // plain slices: an ndarray view per (i, j) pair cost more than its few products
+                    for i in j..n {
+                        let (c, e) = (self.offsets[i], self.offsets[i + 1]);
+                        let q: f64 = dl[c..e].iter().zip(&ga[c - a..e - a]).map(|(x, y)| x * y).sum();
+                        out[[i, j]] = -q + rho[i] * ga[k + i - a];
                     }
                 }
             }

@@ -965,15 +965,14 @@ unsafe fn dotn_fma<const N: usize>(c: [&[f64]; N], v: &[f64]) -> [f64; N] {
 /// v -= sum_j c_j q_j for the columns q_j of the column-major T x c.len() block `q`, four
 /// columns per pass over the rows.
 pub(crate) fn sub_combination(v: &mut [f64], q: &[f64], t: usize, c: &[f64]) {
-    let cols: Vec<&[f64]> = (0..c.len()).map(|j| &q[j * t..(j + 1) * t]).collect();
-    sub_combination_cols(&mut v[..t], &cols, c);
+    sub_combination_with(&mut v[..t], c, |j| &q[j * t..(j + 1) * t]);
 }
 
-/// v -= sum_j c_j cols[j] over the length of v (each column at least that long), four
+/// v -= sum_j c_j col(j) over the length of v (each column at least that long), four
 /// columns per pass.
-pub(crate) fn sub_combination_cols(v: &mut [f64], cols: &[&[f64]], c: &[f64]) {
+pub(crate) fn sub_combination_with<'a>(v: &mut [f64], c: &[f64], cols: impl Fn(usize) -> &'a [f64]) {
     let t = v.len();
-    let col = |j: usize| &cols[j][..t];
+    let col = |j: usize| &cols(j)[..t];
     let mut j = 0;
     while j + 4 <= c.len() {
         let (cols, w) = ([col(j), col(j + 1), col(j + 2), col(j + 3)], [-c[j], -c[j + 1], -c[j + 2], -c[j + 3]]);

@@ -743,19 +743,27 @@ fn iterated_steps_follow_the_dense_textbook_iteration() {
     }
 }
 
+/// A random symmetric positive definite n x n matrix A = B'B + 0.1 I (B: `rows` x n normal
+/// draws), with our lower Cholesky factor (`linalg::chol_lower`) and LAPACK's (potrf, through
+/// ndarray-linalg).
+fn spd_with_factors(rng: &mut Rng, rows: usize, n: usize) -> (Array2<f64>, Array2<f64>, Array2<f64>) {
+    use ndarray_linalg::Cholesky;
+    let b = Array2::from_shape_fn((rows, n), |_| rng.normal());
+    let a = b.t().dot(&b) + Array2::<f64>::eye(n) * 0.1;
+    let l = crate::linalg::chol_lower(crate::linalg::to_fortran(&a)).unwrap();
+    let want = a.cholesky(ndarray_linalg::UPLO::Lower).unwrap();
+    (a, l, want)
+}
+
 /// The written-out small dense kernels (order <= 64) against LAPACK through ndarray-linalg:
 /// Cholesky factor, solve, inverse, and the exact 1-norm condition numbers against the
 /// definition ||A||_1 ||A^-1||_1 with LAPACK's inverse.
 #[test]
 fn small_dense_kernels_match_lapack() {
     use crate::linalg::{chol_inverse, chol_lower, chol_solve, spd_condition, to_fortran, triangular_condition};
-    use ndarray_linalg::Cholesky;
     let mut rng = Rng(4242);
     for n in [1usize, 2, 5, 17, 40, 64] {
-        let b = Array2::from_shape_fn((n + 3, n), |_| rng.normal());
-        let a = b.t().dot(&b) + Array2::<f64>::eye(n) * 0.1;
-        let l = chol_lower(to_fortran(&a)).unwrap();
-        let want = a.cholesky(ndarray_linalg::UPLO::Lower).unwrap();
+        let (a, l, want) = spd_with_factors(&mut rng, n + 3, n);
         for (x, y) in l.iter().zip(want.iter()) {
             assert_relative_eq!(*x, *y, max_relative = 1e-11, epsilon = 1e-13);
         }
@@ -898,13 +906,9 @@ fn input_memory_layout_does_not_change_a_bit() {
 #[test]
 fn blocked_cholesky_matches_lapack() {
     use crate::linalg::{chol_lower, to_fortran};
-    use ndarray_linalg::Cholesky;
     let mut rng = Rng(977);
     for n in [65usize, 71, 96, 97, 200, 448] {
-        let b = Array2::from_shape_fn((n + 5, n), |_| rng.normal());
-        let a = b.t().dot(&b) + Array2::<f64>::eye(n) * 0.1;
-        let l = chol_lower(to_fortran(&a)).unwrap();
-        let want = a.cholesky(ndarray_linalg::UPLO::Lower).unwrap();
+        let (a, l, want) = spd_with_factors(&mut rng, n + 5, n);
         let scale = want.iter().fold(0.0f64, |m, v| m.max(v.abs()));
         for (x, y) in l.iter().zip(want.iter()) {
             assert_relative_eq!(*x, *y, max_relative = 1e-10, epsilon = 1e-12 * scale);
