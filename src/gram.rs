@@ -157,12 +157,12 @@ pub(crate) fn gram_packed(
     }
     let job = Job { kernel, w, t, p, kc_max, groups, units, progress: &progress, panels: &panels, out: &out, stop: &stop };
     if parts > 1 {
-        std::thread::scope(|sc| {
-            for _ in 1..parts {
-                let job = &job;
-                sc.spawn(move || job.lower_rows(false, &|| false));
+        crate::pool::run(parts, &|i| {
+            if i == 0 {
+                job.lower_rows(true, cancel)
+            } else {
+                job.lower_rows(false, &|| false)
             }
-            job.lower_rows(true, cancel);
         });
     } else {
         job.lower_rows(true, cancel);

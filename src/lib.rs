@@ -26,6 +26,7 @@ pub mod error;
 pub mod estimate;
 mod gram;
 pub mod linalg;
+mod pool;
 pub mod prepare;
 mod small;
 pub mod stream;

@@ -357,12 +357,7 @@ fn factor_all(
         }
     };
     if threads > 1 {
-        std::thread::scope(|sc| {
-            for _ in 1..threads {
-                sc.spawn(|| run(false));
-            }
-            run(true);
-        });
+        crate::pool::run(threads, &|i| run(i == 0));
     } else {
         run(true);
     }
@@ -427,7 +422,11 @@ pub(crate) fn other_running_threads(enough: usize) -> Option<usize> {
         }
         // "tid (name) S ...": the name may hold spaces and parentheses; the state follows the last ')'
         if let Some(close) = buf.iter().rposition(|&b| b == b')') {
-            if buf.get(close + 2) == Some(&b'R') {
+            // the pool's own idle workers spin for a moment after each job, and give way at once
+            let idle_worker = || {
+                entry.file_name().to_str().and_then(|n| n.parse().ok()).is_some_and(crate::pool::is_idle_worker)
+            };
+            if buf.get(close + 2) == Some(&b'R') && !idle_worker() {
                 running += 1;
                 // the calling thread is one of them
                 if running > enough {

@@ -9,6 +9,7 @@ Outside reference: the sequential fits in the same process (determinism), wall-c
 from __future__ import annotations
 
 import json
+import os
 import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -209,3 +210,40 @@ def test_concurrent_fits_are_not_much_slower_with_default_blas(kind):
         f"8 concurrent fits took {par / seq:.2f}x the sequential time with the default BLAS thread pools "
         f"(sequential {seq * 1e3:.0f} ms, parallel {par * 1e3:.0f} ms)"
     )
+
+
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="needs os.fork")
+def test_a_forked_child_fits_after_the_parent_used_its_worker_threads():
+    """The core keeps worker threads between fits. A child made by fork() has none of them
+    (only the forking thread survives a fork), so a child that fits after its parent did must
+    not hand work to them and wait for ever. Reference: the parent's own fit of the same data
+    (bit-identical: results do not depend on the thread count)."""
+    eqs = make_system(7, n_eq=8, n_obs=20_000, unequal=False, k_equal=5)
+    parent = blocksur.EquationSystem(eqs).fit(method="fgls").coef.to_numpy()
+    blocksur.EquationSystem(eqs).fit(method="fgls")  # the workers exist and have run
+    r, w = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # the child: fit, write the coefficients, leave without cleanup
+        try:
+            os.close(r)
+            coef = blocksur.EquationSystem(eqs).fit(method="fgls").coef.to_numpy()
+            os.write(w, coef.tobytes())
+        finally:
+            os._exit(0)
+    os.close(w)
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        done, _ = os.waitpid(pid, os.WNOHANG)
+        if done:
+            break
+        time.sleep(0.05)
+    else:
+        os.kill(pid, 9)
+        os.waitpid(pid, 0)
+        pytest.fail("the forked child's fit did not finish within 60 s")
+    data = b""
+    while chunk := os.read(r, 1 << 16):
+        data += chunk
+    os.close(r)
+    child = np.frombuffer(data, dtype=np.float64)
+    np.testing.assert_array_equal(child, parent)
