@@ -212,8 +212,8 @@ pub(crate) fn run(threads: usize, f: &(dyn Fn(usize) + Sync)) {
         }
     }));
     // a worker that lost its core may take a while: spin briefly, then sleep until the last
-    // one unparks this thread (yielding instead handed the core to any other runnable thread
-    // for a whole time slice per wait: 5-25x slower under a CPU hog)
+    // one unparks this thread (a wait that yields would hand the core to any other runnable
+    // thread for a time slice, and keep the caller runnable while it has nothing to do)
     let mut spins = 0u32;
     while region.remaining.load(Ordering::Acquire) != 0 {
         if spins < 1 << 12 {
