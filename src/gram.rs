@@ -156,17 +156,8 @@ pub(crate) fn gram_packed(
         }
     }
     let job = Job { kernel, w, t, p, kc_max, groups, units, progress: &progress, panels: &panels, out: &out, stop: &stop };
-    if parts > 1 {
-        crate::pool::run(parts, &|i| {
-            if i == 0 {
-                job.lower_rows(true, cancel)
-            } else {
-                job.lower_rows(false, &|| false)
-            }
-        });
-    } else {
-        job.lower_rows(true, cancel);
-    }
+    // the caller (share 0) is the one that asks `cancel`
+    crate::pool::run(parts, &|i| if i == 0 { job.lower_rows(true, cancel) } else { job.lower_rows(false, &|| false) });
     drop(bufs);
     if stop.load(Ordering::Relaxed) {
         return Err(SurError::Interrupted);

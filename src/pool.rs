@@ -35,7 +35,6 @@ struct Region {
 }
 
 /// A job handed to a worker: its region (on the caller's stack) and its index.
-#[derive(Clone, Copy)]
 struct Job {
     region: *const Region,
     index: usize,
@@ -98,11 +97,13 @@ fn worker_loop(w: Arc<Worker>, slot: usize) {
         let mut spins = 0u32;
         while w.state.load(Ordering::Acquire) != HAS_JOB {
             spins = spins.wrapping_add(1);
-            if spins.is_multiple_of(512) {
-                // an idle worker leaves its core to any other thread that wants it
-                std::thread::yield_now();
+            if !spins.is_multiple_of(512) {
+                std::hint::spin_loop();
+                continue;
             }
-            if spins.is_multiple_of(512) && Instant::now() >= deadline {
+            // an idle worker leaves its core to any other thread that wants it
+            std::thread::yield_now();
+            if Instant::now() >= deadline {
                 if w.state.compare_exchange(IDLE, SLEEPING, Ordering::AcqRel, Ordering::Acquire).is_ok() {
                     // only a caller moves SLEEPING on (to HAS_JOB, then unparks)
                     while w.state.load(Ordering::Acquire) == SLEEPING {
@@ -111,7 +112,6 @@ fn worker_loop(w: Arc<Worker>, slot: usize) {
                 }
                 break;
             }
-            std::hint::spin_loop();
         }
         let job = w.job.lock().unwrap_or_else(|p| p.into_inner()).take();
         let Some(job) = job else {
@@ -194,7 +194,6 @@ pub(crate) fn run(threads: usize, f: &(dyn Fn(usize) + Sync)) {
     let fp: *const (dyn Fn(usize) + Sync + 'static) = unsafe { std::mem::transmute(fp) };
     let region =
         Region { f: fp, remaining: AtomicUsize::new(workers.len()), panic: Mutex::new(None), caller: std::thread::current() };
-    let mut extra = Vec::new();
     for (i, w) in workers.iter().enumerate() {
         *w.job.lock().unwrap_or_else(|e| e.into_inner()) = Some(Job { region: &region, index: i + 1 });
         if w.state.swap(HAS_JOB, Ordering::AcqRel) == SLEEPING {
@@ -202,14 +201,9 @@ pub(crate) fn run(threads: usize, f: &(dyn Fn(usize) + Sync)) {
         }
     }
     // shares for which no worker could be started run on the caller after its own
-    for i in workers.len() + 1..threads {
-        extra.push(i);
-    }
     let mine = catch_unwind(AssertUnwindSafe(|| {
         f(0);
-        for &i in &extra {
-            f(i);
-        }
+        (workers.len() + 1..threads).for_each(f);
     }));
     // a worker that lost its core may take a while: spin briefly, then sleep until the last
     // one unparks this thread (a wait that yields would hand the core to any other runnable

@@ -356,11 +356,7 @@ fn factor_all(
             *results[i].lock().unwrap_or_else(|p| p.into_inner()) = Some(out);
         }
     };
-    if threads > 1 {
-        crate::pool::run(threads, &|i| run(i == 0));
-    } else {
-        run(true);
-    }
+    crate::pool::run(threads, &|i| run(i == 0));
     if stop.load(Ordering::Relaxed) {
         return Err(SurError::Interrupted);
     }
@@ -693,20 +689,17 @@ pub(crate) fn plain_residual(q: &[f64], t: usize, r: &[f64], z: &[f64], norms: &
     if !(cond.is_finite() && y_norm.is_finite()) {
         return None;
     }
-    // sum_j |X_j| |b_j| by back substitution (R row-major, data units)
-    let mut b = [0.0f64; 64];
-    if k > b.len() {
-        return None;
-    }
-    let mut levels = 0.0;
-    for i in (0..k).rev() {
-        let mut v = z[i];
-        for c in (i + 1)..k {
-            v -= r[i * k + c] * b[c];
-        }
-        b[i] = v / r[i * k + i];
-        levels += norms[i] * b[i].abs();
-    }
+    // sum_j |X_j| |b_j|, b = R^-1 z (R row-major, data units)
+    let mut small = [0.0f64; 64];
+    let mut wide = Vec::new();
+    let b: &mut [f64] = if k <= small.len() {
+        &mut small[..k]
+    } else {
+        wide.resize(k, 0.0);
+        &mut wide
+    };
+    back_substitute(r, z, b);
+    let levels: f64 = norms.iter().zip(b.iter()).map(|(n, bj)| n * bj.abs()).sum();
     let e = &mut e[..t];
     crate::linalg::sub_combination(e, q, t, z);
     let ss = dot(e, e);
@@ -716,6 +709,18 @@ pub(crate) fn plain_residual(q: &[f64], t: usize, r: &[f64], z: &[f64], norms: &
     let rho = ss.sqrt();
     let estimate = cond + (levels + y_norm) / rho;
     (estimate.is_finite() && estimate <= PLAIN_RESIDUAL_ULPS).then_some(rho)
+}
+
+/// b = R^-1 z for the k x k upper-triangular R stored row-major (k = z.len() = b.len()).
+fn back_substitute(r: &[f64], z: &[f64], b: &mut [f64]) {
+    let k = z.len();
+    for i in (0..k).rev() {
+        let mut v = z[i];
+        for c in (i + 1)..k {
+            v -= r[i * k + c] * b[c];
+        }
+        b[i] = v / r[i * k + i];
+    }
 }
 
 /// Largest error estimate (in units of eps, relative to rho) of a residual left unrefined.
@@ -752,13 +757,7 @@ pub(crate) fn refine_fit(
         bv.resize(k, 0.0);
         &mut bv
     };
-    for i in (0..k).rev() {
-        let mut v = z[i];
-        for c in (i + 1)..k {
-            v -= r[i * k + c] * b[c];
-        }
-        b[i] = v / r[i * k + i];
-    }
+    back_substitute(r, z, b);
     let e = &mut e[..t];
     // in row blocks, asking `stop` between them (a long column takes a while)
     let mut start = 0;
