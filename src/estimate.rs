@@ -225,7 +225,7 @@ impl Prepared {
         let n = self.n_eq();
         let k = self.n_coef();
         let rho: Vec<f64> = self.factors.iter().map(|f| f.rho).collect();
-        let mut out = Array2::<f64>::zeros((n, n));
+        let mut out = crate::linalg::zeros_advised((n, n));
         match &self.cross {
             CrossProducts::MatrixFree { .. } => return self.crossprod_w(delta),
             CrossProducts::SharedRegressors { qq } => {
@@ -313,13 +313,15 @@ impl Prepared {
     /// the residual rows as well: see `omega_at`).
     pub fn omega_from(&self, s: &Array2<f64>, divisor: Divisor) -> Array2<f64> {
         let t = self.n_obs as f64;
+        let mut out = crate::linalg::zeros_advised(s.dim());
         match divisor {
-            Divisor::Ml | Divisor::LedoitWolfDiagonal | Divisor::LedoitWolfIdentity => s / t,
+            Divisor::Ml | Divisor::LedoitWolfDiagonal | Divisor::LedoitWolfIdentity => out.zip_mut_with(s, |o, &v| *o = v / t),
             Divisor::Dof => {
                 let df: Vec<f64> = (0..self.n_eq()).map(|i| t - self.k(i) as f64).collect();
-                Array2::from_shape_fn(s.dim(), |(i, j)| s[[i, j]] / (df[i] * df[j]).sqrt())
+                ndarray::Zip::indexed(&mut out).and(s).for_each(|(i, j), o, &v| *o = v / (df[i] * df[j]).sqrt());
             }
         }
+        out
     }
 
     /// Omega at delta (with S = its residual cross-products) for the chosen estimator.
@@ -434,7 +436,8 @@ impl Prepared {
     /// The Cholesky factor of the GLS matrix M (lower triangle given), or the singular-Omega
     /// error that says why it has none.
     fn factor_gls(&self, m: Array2<f64>) -> Result<Array2<f64>> {
-        chol_lower(m).ok_or_else(|| SurError::SingularOmega {
+        // M is built in a zeroed buffer with its lower triangle alone written (see `gls_step`)
+        crate::linalg::chol_lower_of(m, true).ok_or_else(|| SurError::SingularOmega {
             equations: self.names.clone(),
             detail: format!(
                 "the GLS normal matrix is not numerically positive definite: the estimated \

@@ -192,7 +192,15 @@ pub(crate) fn advise_huge_pages<T>(buf: &mut [T]) {
 /// A P x P column-major array of zeros for a product about to be written, on huge pages
 /// where it is large (see `advise_huge_pages`).
 pub(crate) fn zeros_for_product(p: usize) -> Array2<f64> {
-    let mut g = Array2::<f64>::zeros((p, p).f());
+    zeros_advised((p, p).f())
+}
+
+/// An array of zeros of the given shape (and memory order), on huge pages where it is large.
+/// For the N x N temporaries of the Omega step as well as the big products: on a
+/// 1,000-equation system each is 8 MB, two thousand small page faults when fresh (numpy
+/// advises its own allocations of 4 MB and more the same way).
+pub(crate) fn zeros_advised<Sh: ShapeBuilder<Dim = ndarray::Ix2>>(shape: Sh) -> Array2<f64> {
+    let mut g = Array2::<f64>::zeros(shape);
     if let Some(b) = g.as_slice_memory_order_mut() {
         advise_huge_pages(b);
     }
@@ -436,7 +444,15 @@ pub(crate) fn small_lower_inverse(l: &[f64], n: usize, u: &mut [f64]) {
 
 /// Lower Cholesky factor of a symmetric positive definite matrix (only its lower triangle is
 /// read), in place by LAPACK potrf. Returns None when the matrix is not positive definite.
-pub fn chol_lower(mut a: Array2<f64>) -> Option<Array2<f64>> {
+pub fn chol_lower(a: Array2<f64>) -> Option<Array2<f64>> {
+    chol_lower_of(a, false)
+}
+
+/// `chol_lower`, told whether the strict upper triangle of `a` already holds zeros (the GLS
+/// matrix, whose lower triangle alone is written into a zeroed buffer): then that half is
+/// neither written nor, where the buffer is fresh, faulted in (64 MB of a 4000-coefficient
+/// system).
+pub fn chol_lower_of(mut a: Array2<f64>, upper_is_zero: bool) -> Option<Array2<f64>> {
     let n = a.nrows() as i32;
     if n == 0 {
         return Some(a);
@@ -462,6 +478,11 @@ pub fn chol_lower(mut a: Array2<f64>) -> Option<Array2<f64>> {
         unsafe { lapack_sys::dpotrf_(&(b'L' as std::ffi::c_char), &n, a.as_mut_ptr(), &n, &mut info) };
         if info != 0 {
             return None;
+        }
+        if upper_is_zero {
+            // potrf with 'L' references no entry above the diagonal
+            debug_assert!((1..a.ncols()).all(|j| (0..j).step_by(97).all(|i| a[[i, j]] == 0.0)));
+            return Some(a);
         }
     }
     for j in 0..a.ncols() {
@@ -497,16 +518,22 @@ pub fn chol_solve(l: &Array2<f64>, b: &Array1<f64>) -> Result<Array1<f64>> {
 
 /// (L L')^-1 from the lower factor from `chol_lower` (LAPACK potri), full and symmetric.
 pub fn chol_inverse(l: &Array2<f64>) -> Result<Array2<f64>> {
+    chol_inverse_owned(l.to_owned())
+}
+
+/// `chol_inverse` in the factor's own buffer.
+pub fn chol_inverse_owned(l: Array2<f64>) -> Result<Array2<f64>> {
     debug_assert!(l.t().is_standard_layout());
-    let mut a = l.to_owned();
+    let mut a = l;
     let n = a.nrows() as i32;
     if n == 0 {
         return Ok(a);
     }
     if (n as usize) <= SMALL_DENSE {
-        if let Some(lb) = l.as_slice_memory_order() {
-            let n = n as usize;
-            let mut u = vec![0.0f64; n * n];
+        let n = n as usize;
+        let mut u = vec![0.0f64; n * n];
+        // U is formed from L before `a` (L's own buffer) is overwritten
+        if let Some(lb) = a.as_slice_memory_order() {
             small_lower_inverse(lb, n, &mut u);
             // (L L')^-1 = U'U, U = L^-1 lower: entry (i, j) sums over rows r >= max(i, j)
             for j in 0..n {
@@ -606,9 +633,21 @@ pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize, scales:
     }
     // Work on the correlation matrix so the test below does not depend on the units.
     let d: Vec<f64> = diag.iter().map(|v| 1.0 / v.sqrt()).collect();
-    let corr = Array2::from_shape_fn((n, n).f(), |(i, j)| omega[[i, j]] * d[i] * d[j]);
+    // N x N temporaries on huge pages and two rather than four of them (8 MB each at N = 1000)
+    let mut corr = zeros_advised((n, n).f());
+    corr.zip_mut_with(omega, |c, &o| *c = o);
+    for (j, mut col) in corr.columns_mut().into_iter().enumerate() {
+        for (i, c) in col.iter_mut().enumerate() {
+            *c *= d[i] * d[j];
+        }
+    }
+    let copy = |a: &Array2<f64>| {
+        let mut c = zeros_advised((n, n).f());
+        c.assign(a);
+        c
+    };
     let floor = singular_floor(n);
-    let factor = chol_lower(corr.clone()).filter(|l| {
+    let factor = chol_lower(copy(&corr)).filter(|l| {
         let lmin = (0..n).map(|i| l[[i, i]]).fold(f64::INFINITY, f64::min);
         lmin * lmin > floor
     });
@@ -616,14 +655,19 @@ pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize, scales:
         Some(l) => l,
         None => {
             diagnose_singular(&corr, names, n_obs, floor)?;
-            chol_lower(corr.clone()).ok_or_else(|| SurError::numerical("Cholesky of Omega", "not positive definite"))?
+            chol_lower(copy(&corr)).ok_or_else(|| SurError::numerical("Cholesky of Omega", "not positive definite"))?
         }
     };
     let cond = spd_condition(&corr, &l);
-    let inv = chol_inverse(&l)?;
+    drop(corr);
+    let mut out = chol_inverse_owned(l)?;
     // inv is exactly symmetric and d_i d_j = d_j d_i, so the result is too; column-major like
-    // inv (read in memory order), and its columns, which the GLS step reads, are contiguous
-    let out = Array2::from_shape_fn((n, n).f(), |(i, j)| inv[[i, j]] * (d[i] * d[j]));
+    // inv, and its columns, which the GLS step reads, are contiguous
+    for (j, mut col) in out.columns_mut().into_iter().enumerate() {
+        for (i, c) in col.iter_mut().enumerate() {
+            *c *= d[i] * d[j];
+        }
+    }
     Ok((out, cond))
 }
 
