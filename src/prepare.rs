@@ -52,6 +52,12 @@ pub enum CrossProducts {
     /// All equations share one regressor matrix: Q_i'Q_j = I and Q_i'q_j = 0, so only the N x N
     /// matrix q_i'q_j is needed.
     SharedRegressors { qq: Array2<f64> },
+    /// Only q_i'q_j (N x N), the cross-products of the normalised OLS residuals: what a
+    /// two-step FGLS fit computed from the data in one pass leaves behind (it formed and
+    /// dropped the K x K products; see `Prepared::fgls_from_data`). Enough for OLS, the OLS
+    /// residual cross-products and every covariance of that fit; any other estimation needs
+    /// a full preparation.
+    ResidualsOnly { qq: Array2<f64> },
 }
 
 /// Everything estimation needs: independent of T from here on.
@@ -105,26 +111,7 @@ impl Prepared {
             return Ok(done(factors, CrossProducts::SharedRegressors { qq }));
         }
 
-        // W is written once, column block by column block, by `factor_all`: no zero-filling
-        // pass. It is only assumed initialised after every block has been written.
-        let mut w = Array2::<f64>::uninit((t, k + n).f());
-        if let Some(b) = w.as_slice_memory_order_mut() {
-            crate::linalg::advise_huge_pages(b);
-        }
-        let factors = {
-            let (wq, mut wy) = w.view_mut().split_at(Axis(1), k);
-            let mut blocks = Vec::with_capacity(n);
-            let mut rest = wq;
-            for (i, col) in wy.axis_iter_mut(Axis(1)).enumerate() {
-                let (head, tail) = rest.split_at(Axis(1), offsets[i + 1] - offsets[i]);
-                blocks.push((head, col));
-                rest = tail;
-            }
-            factor_all(data, t, blocks, cancel)?
-        };
-        // SAFETY: factor_all returned Ok, so every equation wrote all of its Q_i columns and its
-        // q_i column, and together those are all k + n columns of W.
-        let w = unsafe { w.assume_init() };
+        let (factors, w) = step_zero(data, t, &offsets, cancel)?;
         if matrix_free {
             return Ok(done(factors, CrossProducts::MatrixFree { w }));
         }
@@ -143,6 +130,29 @@ impl Prepared {
             g[[k + i, k + i]] = 1.0;
         }
         Ok(done(factors, CrossProducts::General { gram: g }))
+    }
+
+    /// Step 0 alone, with the basis it wrote: the factors and W = [Q_1 .. Q_N, q_1 .. q_N]
+    /// (T x P, column-major). For estimators that read the basis once and need no Gram matrix
+    /// kept (see `Prepared::fgls_from_data`). Systems whose equations share one regressor
+    /// matrix are the caller's to route elsewhere: W is formed for them as for any other.
+    pub(crate) fn basis(data: &SystemData, cancel: &(dyn Fn() -> bool + Sync)) -> Result<(Prepared, Array2<f64>)> {
+        let t = data.validate_shapes(true)?;
+        let n = data.n_eq();
+        let mut offsets = vec![0usize];
+        for eq in &data.equations {
+            offsets.push(offsets.last().unwrap() + eq.n_regressors());
+        }
+        let (factors, w) = step_zero(data, t, &offsets, cancel)?;
+        let prep = Prepared {
+            n_obs: t,
+            names: data.equations.iter().map(|e| e.name.clone()).collect(),
+            regressors: data.equations.iter().map(|e| e.regressors.clone()).collect(),
+            offsets,
+            factors,
+            cross: CrossProducts::ResidualsOnly { qq: Array2::zeros((n, n)) },
+        };
+        Ok((prep, w))
     }
 
     pub fn n_eq(&self) -> usize {
@@ -193,6 +203,32 @@ impl Prepared {
         }
         Ok(b)
     }
+}
+
+/// Step 0 for every equation into a fresh W = [Q_1 .. Q_N, q_1 .. q_N] (T x P, column-major).
+fn step_zero(data: &SystemData, t: usize, offsets: &[usize], cancel: &(dyn Fn() -> bool + Sync)) -> Result<(Vec<EquationFactor>, Array2<f64>)> {
+    let n = data.n_eq();
+    let k = offsets[n];
+    // W is written once, column block by column block, by `factor_all`: no zero-filling
+    // pass. It is only assumed initialised after every block has been written.
+    let mut w = Array2::<f64>::uninit((t, k + n).f());
+    if let Some(b) = w.as_slice_memory_order_mut() {
+        crate::linalg::advise_huge_pages(b);
+    }
+    let factors = {
+        let (wq, mut wy) = w.view_mut().split_at(Axis(1), k);
+        let mut blocks = Vec::with_capacity(n);
+        let mut rest = wq;
+        for (i, col) in wy.axis_iter_mut(Axis(1)).enumerate() {
+            let (head, tail) = rest.split_at(Axis(1), offsets[i + 1] - offsets[i]);
+            blocks.push((head, col));
+            rest = tail;
+        }
+        factor_all(data, t, blocks, cancel)?
+    };
+    // SAFETY: factor_all returned Ok, so every equation wrote all of its Q_i columns and its
+    // q_i column, and together those are all k + n columns of W.
+    Ok((factors, unsafe { w.assume_init() }))
 }
 
 /// W'W for a small W (column-major, all columns written), by dot products between the columns

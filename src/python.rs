@@ -194,6 +194,27 @@ fn prepare(
     out.map(|inner| PyPrepared { inner }).map_err(|e| stop.raise(py, e))
 }
 
+/// Two-step FGLS straight from the data (no P x P Gram matrix kept), with the interpreter
+/// lock released: the estimate and a preparation that serves that fit's covariances, OLS and
+/// the OLS residual cross-products only (`Prepared::fgls_from_data`).
+#[pyfunction]
+#[pyo3(signature = (ys, xs, names, regressors, divisor, progress=None))]
+fn fgls_from_data(
+    py: Python<'_>,
+    ys: Vec<PyReadonlyArray1<'_, f64>>,
+    xs: Vec<PyReadonlyArray2<'_, f64>>,
+    names: Vec<String>,
+    regressors: Vec<Vec<String>>,
+    divisor: &str,
+    progress: Option<Py<PyAny>>,
+) -> PyResult<(PyPrepared, PyEstimate)> {
+    let divisor = Divisor::parse(divisor).map_err(|e| raise(py, e))?;
+    let data = equations(&ys, &xs, &names, &regressors)?;
+    let stop = Interrupt::with_callback(progress);
+    let out = detach_gated(py, || Prepared::fgls_from_data(&data, divisor, &|| stop.requested()));
+    out.map(|(p, e)| (PyPrepared { inner: p }, PyEstimate { inner: e })).map_err(|e| stop.raise(py, e))
+}
+
 /// Residuals y_i - X_i b_i (T x N) from the data.
 #[pyfunction]
 fn residuals<'py>(
@@ -355,6 +376,13 @@ impl PyPrepared {
     fn offsets(&self) -> Vec<usize> {
         self.inner.offsets.clone()
     }
+    /// Only the OLS residual cross-products are kept (a preparation that came with a two-step
+    /// FGLS fit computed from the data): GLS fits need a full preparation.
+    #[getter]
+    fn residuals_only(&self) -> bool {
+        matches!(self.inner.cross, crate::prepare::CrossProducts::ResidualsOnly { .. })
+    }
+
     #[getter]
     fn shared_regressors(&self) -> bool {
         matches!(self.inner.cross, crate::prepare::CrossProducts::SharedRegressors { .. })
@@ -711,6 +739,7 @@ fn blas_threads(n: Option<usize>) -> PyResult<usize> {
 #[pymodule]
 fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(prepare, m)?)?;
+    m.add_function(wrap_pyfunction!(fgls_from_data, m)?)?;
     m.add_function(wrap_pyfunction!(residuals, m)?)?;
     m.add_function(wrap_pyfunction!(pass1_chunk, m)?)?;
     m.add_function(wrap_pyfunction!(pass1_merge, m)?)?;
