@@ -45,19 +45,20 @@ SYSTEMS = {"2 firms": TWO_FIRMS, "5 firms": FIVE_FIRMS}
 
 @pytest.mark.parametrize("divisor", ["ml", "dof"])
 @pytest.mark.parametrize("label", list(SYSTEMS))
-def test_grunfeld_fgls(label, divisor):
+def test_grunfeld_fgls(label, divisor, route):
     eqs, names = _system(SYSTEMS[label])
     fit = blocksur.EquationSystem(eqs, regressor_names=names).fit("fgls", omega=divisor)
+    assert fit._prepared.residuals_only == (route == "one-pass")
     assert list(fit.coef.index) == [(f, r) for f in SYSTEMS[label] for r in REGRESSORS]
     # End to end: statsmodels OLS residuals -> Omega -> statsmodels GLS on the
     # dense textbook system.
     b_ref, V_ref, omega_ref = dense_fgls(eqs, divisor)
-    d = record(f"Grunfeld {label}: fgls omega [{divisor}] (rel, CS-scaled)", max_rel_cov(fit.omega.to_numpy(), omega_ref))
+    d = record(f"Grunfeld {label}: fgls omega [{divisor}{'' if route == 'gram' else ', one-pass'}] (rel, CS-scaled)", max_rel_cov(fit.omega.to_numpy(), omega_ref))
     assert d <= 1e-10
-    d = record(f"Grunfeld {label}: fgls coef [{divisor}] (rel)",
+    d = record(f"Grunfeld {label}: fgls coef [{divisor}{'' if route == 'gram' else ', one-pass'}] (rel)",
                max_rel_coef(fit.coef.to_numpy(), b_ref, np.sqrt(np.diag(V_ref))))
     assert d <= RTOL
-    d = record(f"Grunfeld {label}: fgls vcov [{divisor}] (rel, CS-scaled)", max_rel_cov(fit.vcov.to_numpy(), V_ref))
+    d = record(f"Grunfeld {label}: fgls vcov [{divisor}{'' if route == 'gram' else ', one-pass'}] (rel, CS-scaled)", max_rel_cov(fit.vcov.to_numpy(), V_ref))
     assert d <= RTOL
     np.testing.assert_allclose(fit.se.to_numpy(), np.sqrt(np.diag(V_ref)), rtol=RTOL, atol=0)
 

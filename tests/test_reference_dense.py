@@ -78,9 +78,10 @@ def test_reference_covariance_attribute():
 
 @pytest.mark.parametrize("divisor", ["ml", "dof"])
 @pytest.mark.parametrize("case", CASES, ids=CASE_IDS)
-def test_fgls_vs_dense_gls(case, divisor):
+def test_fgls_vs_dense_gls(case, divisor, route):
     eqs = _data(case)
     fit = blocksur.EquationSystem(eqs).fit("fgls", omega=divisor)
+    assert fit._prepared.residuals_only == (route == "one-pass")
     names = list(eqs)
     idx = expected_index(eqs)
 
@@ -97,7 +98,7 @@ def test_fgls_vs_dense_gls(case, divisor):
     # Omega of the GLS step = the divisor formula on statsmodels OLS residuals.
     E_ols = np.column_stack([r.resid for r in ols_by_equation(eqs).values()])
     omega_ref = omega_from_resid(E_ols, _ks(eqs), divisor)
-    d = record(f"dense: fgls omega vs statsmodels-OLS resid formula [{divisor}] (rel, CS-scaled)",
+    d = record(f"dense: fgls omega vs statsmodels-OLS resid formula [{divisor}{'' if route == 'gram' else ', one-pass'}] (rel, CS-scaled)",
                max_rel_cov(fit.omega.to_numpy(), omega_ref))
     assert d <= 1e-10
 
@@ -105,11 +106,11 @@ def test_fgls_vs_dense_gls(case, divisor):
     # system with the Omega blocksur reports.
     b_ref, V_ref = dense_gls(eqs, fit.omega.to_numpy())
     se_ref = np.sqrt(np.diag(V_ref))
-    d = record(f"dense: fgls coef [{divisor}] (rel)", max_rel_coef(fit.coef.to_numpy(), b_ref, se_ref))
+    d = record(f"dense: fgls coef [{divisor}{'' if route == 'gram' else ', one-pass'}] (rel)", max_rel_coef(fit.coef.to_numpy(), b_ref, se_ref))
     assert d <= RTOL
-    d = record(f"dense: fgls vcov [{divisor}] (rel, CS-scaled)", max_rel_cov(fit.vcov.to_numpy(), V_ref))
+    d = record(f"dense: fgls vcov [{divisor}{'' if route == 'gram' else ', one-pass'}] (rel, CS-scaled)", max_rel_cov(fit.vcov.to_numpy(), V_ref))
     assert d <= RTOL
-    d = record(f"dense: fgls se [{divisor}] (rel)", max_rel(fit.se.to_numpy(), se_ref))
+    d = record(f"dense: fgls se [{divisor}{'' if route == 'gram' else ', one-pass'}] (rel)", max_rel(fit.se.to_numpy(), se_ref))
     assert d <= RTOL
 
     # Residuals / fitted values from the reference coefficients.
@@ -130,17 +131,18 @@ def test_fgls_vs_dense_gls(case, divisor):
 
 @pytest.mark.parametrize("divisor", ["ml", "dof"])
 @pytest.mark.parametrize("case", CASES[:2], ids=CASE_IDS[:2])
-def test_fgls_full_pipeline_vs_dense(case, divisor):
+def test_fgls_full_pipeline_vs_dense(case, divisor, route):
     # Independent end to end: statsmodels OLS -> Omega formula -> statsmodels
     # GLS on the dense system, without using anything blocksur reports.
     eqs = _data(case)
     fit = blocksur.EquationSystem(eqs).fit("fgls", omega=divisor)
+    assert fit._prepared.residuals_only == (route == "one-pass")
     E_ols = np.column_stack([r.resid for r in ols_by_equation(eqs).values()])
     b_ref, V_ref = dense_gls(eqs, omega_from_resid(E_ols, _ks(eqs), divisor))
-    d = record(f"dense: fgls end-to-end coef [{divisor}] (rel)",
+    d = record(f"dense: fgls end-to-end coef [{divisor}{'' if route == 'gram' else ', one-pass'}] (rel)",
                max_rel_coef(fit.coef.to_numpy(), b_ref, np.sqrt(np.diag(V_ref))))
     assert d <= RTOL
-    d = record(f"dense: fgls end-to-end vcov [{divisor}] (rel, CS-scaled)", max_rel_cov(fit.vcov.to_numpy(), V_ref))
+    d = record(f"dense: fgls end-to-end vcov [{divisor}{'' if route == 'gram' else ', one-pass'}] (rel, CS-scaled)", max_rel_cov(fit.vcov.to_numpy(), V_ref))
     assert d <= RTOL
 
 

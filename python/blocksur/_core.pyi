@@ -33,6 +33,19 @@ def prepare(
     classes (ShapeMismatchError, NonFiniteError, TooFewObservationsError, CollinearityError,
     ...)."""
 
+def fgls_from_data(
+    ys: Sequence[_F64_1D],
+    xs: Sequence[_F64_2D],
+    names: Sequence[str],
+    regressors: Sequence[Sequence[str]],
+    divisor: str,
+    progress: object | None = None,
+) -> tuple[Prepared, Estimate]:
+    """Two-step FGLS (divisor "ml" or "dof") in one pass over the data, without the
+    (K + N)^2 cross-products, with the interpreter lock released. The Prepared returned keeps
+    only the OLS residual cross-products (``residuals_only``): it serves this fit's
+    covariances, OLS and ``ols_crossprod``; GLS fits need ``prepare``."""
+
 def residuals(ys: Sequence[_F64_1D], xs: Sequence[_F64_2D], coef: _F64_1D) -> _F64_2D:
     """Residuals y_i - X_i b_i as a T x N array, for stacked coefficients ``coef``."""
 
@@ -165,6 +178,10 @@ class Prepared:
     @property
     def offsets(self) -> list[int]:
         """Start of each equation's coefficients in the stacked vector, plus the total K."""
+    @property
+    def residuals_only(self) -> bool:
+        """Only the OLS residual cross-products are kept (the Prepared of a two-step fit from
+        ``fgls_from_data``): GLS fits need a full preparation."""
     @property
     def shared_regressors(self) -> bool:
         """Whether every equation has the same regressors (the fast path: GLS = OLS)."""

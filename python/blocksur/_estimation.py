@@ -11,7 +11,7 @@ from ._progress import progress_hook
 from ._restrictions import parse_restrictions
 from .errors import IllConditionedWarning, NotConvergedWarning, RestrictionError
 
-__all__ = ["run_estimation", "COND_WARN"]
+__all__ = ["run_estimation", "warn_about", "COND_WARN"]
 
 # Condition number above which a warning is issued: about half of the 16 digits may be lost.
 COND_WARN = 1e8
@@ -63,6 +63,13 @@ def run_estimation(
         raise
     finally:
         close_hook(hook)
+    warn_about(est, max_iter, tol, stacklevel + 1)
+    return est, rset
+
+
+def warn_about(est: Any, max_iter: int, tol: float, stacklevel: int) -> None:
+    """The warnings an estimate calls for: a nearly singular Omega, an iterated fit that did
+    not converge."""
     if est.omega_cond > COND_WARN:
         warnings.warn(
             f"the estimated cross-equation covariance is nearly singular (condition number "
@@ -81,4 +88,3 @@ def run_estimation(
             NotConvergedWarning,
             stacklevel=stacklevel,
         )
-    return est, rset

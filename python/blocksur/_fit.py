@@ -508,7 +508,9 @@ class SystemFit:
         if self.method == "ifgls" and self.omega_divisor == "ml" and self.n_restrictions == 0 and self.converged:
             s_ml = np.asarray(self._est.resid_crossprod)
         else:
-            est = self._prepared.estimate("ifgls", "ml", 1e-12, 10_000)
+            # a preparation that came with a two-step fit from the data has no Gram matrix
+            prep = self._system._prepare() if self._prepared.residuals_only else self._prepared
+            est = prep.estimate("ifgls", "ml", 1e-12, 10_000)
             s_ml = np.asarray(est.resid_crossprod)
         s0 = np.asarray(self._prepared.ols_crossprod())
         sign, logdet = np.linalg.slogdet(s_ml / t)

@@ -18,11 +18,18 @@ from ._fit import SystemFit
 from ._progress import close as close_hook
 from ._progress import progress_hook
 from ._estimation import COND_WARN as _COND_WARN
-from ._estimation import run_estimation
+from ._estimation import run_estimation, warn_about
 
 __all__ = ["EquationSystem"]
 
 _METHODS = ("ols", "fgls", "ifgls")
+
+# Two-step FGLS on systems with at least this many coefficients runs in one pass over the data
+# without the (K + N)^2 cross-products (`_core.fgls_from_data`): it skips their K x N block,
+# T K N multiply-adds that only iterated fits use (a third of the data pass at K = 4000,
+# N = 1000), and needs W + K^2 memory instead of (K + N)^2 + K^2. Below it the full
+# preparation costs little more and is kept for later fits of the same system.
+_DIRECT_FGLS_MIN_K = 1000
 _DIVISORS = ("ml", "dof", "ledoit-wolf")
 
 
@@ -261,18 +268,25 @@ class EquationSystem(SystemLabels):
                 )
             finally:
                 close_hook(hook)
-            for name, cond in zip(self._names, prepared.conditions):
-                if cond > _COND_WARN:
-                    warnings.warn(
-                        f"equation '{name}': the regressors are ill-conditioned (condition number "
-                        f"estimate {cond:.1e} after scaling each column to unit length), so about "
-                        f"{int(np.log10(cond))} of 16 significant digits of its coefficients may be "
-                        "lost; drop or combine nearly collinear regressors",
-                        IllConditionedWarning,
-                        stacklevel=3,
-                    )
+            self._warn_conditions(prepared, stacklevel=4)
             self._prepared[matrix_free] = prepared
         return self._prepared[matrix_free]
+
+    def _full_prepared(self) -> Any:
+        """The cached full (direct) preparation, or None."""
+        return self._prepared.get(False) if isinstance(self._prepared, dict) else None
+
+    def _warn_conditions(self, prepared: Any, stacklevel: int) -> None:
+        for name, cond in zip(self._names, prepared.conditions):
+            if cond > _COND_WARN:
+                warnings.warn(
+                    f"equation '{name}': the regressors are ill-conditioned (condition number "
+                    f"estimate {cond:.1e} after scaling each column to unit length), so about "
+                    f"{int(np.log10(cond))} of 16 significant digits of its coefficients may be "
+                    "lost; drop or combine nearly collinear regressors",
+                    IllConditionedWarning,
+                    stacklevel=stacklevel,
+                )
 
     def direct_memory(self) -> int:
         """Bytes the direct solver needs beyond the data: the (K+N)^2 cross-products plus
@@ -394,6 +408,25 @@ class EquationSystem(SystemLabels):
             )
         if inference not in ("z", "t"):
             raise InvalidOptionError(f"unknown inference {inference!r}: use 'z' (normal) or 't'")
+        k = sum(len(r) for r in self._regressors)
+        if (
+            method == "fgls" and restrictions is None and omega in ("ml", "dof") and not matrix_free
+            and self.n_eq > 1 and k >= _DIRECT_FGLS_MIN_K and self._full_prepared() is None
+        ):
+            # one pass, nothing cached: a later GLS fit of this system prepares it in full
+            hook = progress_hook(progress, "data pass", None, "block")
+            try:
+                prepared, est = _core.fgls_from_data(
+                    self._ys, self._xs, self._names, self._regressors, omega, progress=hook
+                )
+            finally:
+                close_hook(hook)
+            self._warn_conditions(prepared, stacklevel=3)
+            warn_about(est, int(max_iter), tol, stacklevel=3)
+            return SystemFit(
+                self, prepared, est, None, tol=tol, max_iter=int(max_iter), restrictions=None,
+                covariance=covariance, inference=inference,
+            )
         prepared = self._prepare(matrix_free, progress)
         lw_data = omega == "ledoit-wolf" and not matrix_free
         est, rset = run_estimation(

@@ -1,0 +1,158 @@
+"""Two-step FGLS in one pass over the data (no P x P Gram matrix), the route large systems
+take: it must be the same estimator as the full preparation, serve everything a fit offers,
+and leave the system able to run any other fit.
+
+References: the dense statsmodels checks of test_reference_dense.py and test_grunfeld.py run
+through both routes (the `route` fixture of conftest.py); here the two routes are compared
+with each other (the same estimator, so they agree to rounding: common practice, a few
+hundred eps on conditioned data) and the routing rules are pinned."""
+
+import warnings
+
+import numpy as np
+import pytest
+
+import blocksur
+import blocksur._system as system_mod
+from blocksur.errors import InvalidOptionError, SingularOmegaError
+from reference import make_sur_data, max_rel, max_rel_cov
+
+KS = (3, 5, 2, 4, 1, 3)
+
+
+def normwise(a, b):
+    """max |a - b| / max |b| (residuals pass near zero: no entrywise ratio)."""
+    a, b = np.asarray(a, dtype=float), np.asarray(b, dtype=float)
+    return float(np.max(np.abs(a - b)) / np.max(np.abs(b)))
+
+
+def _eqs(seed=21, T=80):
+    return make_sur_data(seed, T=T, ks=KS, const=(True, True, False, True, True, True))
+
+
+def _fit_both(monkeypatch, eqs, **kw):
+    monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", 10**12)
+    gram = blocksur.EquationSystem(eqs).fit("fgls", **kw)
+    monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", 0)
+    one = blocksur.EquationSystem(eqs).fit("fgls", **kw)
+    assert one._prepared.residuals_only and not gram._prepared.residuals_only
+    return gram, one
+
+
+@pytest.mark.parametrize("omega", ["ml", "dof"])
+def test_one_pass_fit_offers_what_a_full_fit_offers(monkeypatch, omega):
+    eqs = _eqs()
+    gram, one = _fit_both(monkeypatch, eqs, omega=omega)
+    assert (one.method, one.n_iter, one.converged, one.omega_divisor) == ("fgls", 1, True, omega)
+    assert list(one.coef.index) == list(gram.coef.index)
+    for name in ("coef", "se", "resid", "fitted", "ssr", "r2", "r2_adj", "resid_se"):
+        a, b = getattr(one, name).to_numpy(), getattr(gram, name).to_numpy()
+        assert normwise(a, b) <= 1e-12, name
+    assert max_rel_cov(one.vcov.to_numpy(), gram.vcov.to_numpy()) <= 1e-12
+    assert max_rel_cov(one.omega.to_numpy(), gram.omega.to_numpy()) <= 1e-13
+    assert abs(one.loglik - gram.loglik) <= 1e-10 * abs(gram.loglik)
+    assert abs(one.aic - gram.aic) <= 1e-10 * abs(gram.aic)
+    # robust covariance (a pass over the data with the fit's Omega)
+    h1 = blocksur.EquationSystem(eqs).fit("fgls", omega=omega, covariance="hc0")
+    monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", 10**12)
+    h0 = blocksur.EquationSystem(eqs).fit("fgls", omega=omega, covariance="hc0")
+    assert h1._prepared.residuals_only and not h0._prepared.residuals_only
+    assert max_rel(h1.se.to_numpy(), h0.se.to_numpy()) <= 1e-12
+    # tests: Wald, the Breusch-Pagan LM (OLS residual cross-products, kept) and the LR test
+    # of a diagonal Omega (an iterated fit, which prepares the system in full)
+    names = list(eqs)
+    hyp = f"{names[0]}.x1 = 0"
+    assert abs(one.wald(hyp).statistic - gram.wald(hyp).statistic) <= 1e-9 * abs(gram.wald(hyp).statistic)
+    for test in ("omega_diagonal_lm", "omega_diagonal_lr"):
+        a, b = getattr(one, test)().statistic, getattr(gram, test)().statistic
+        assert abs(a - b) <= 1e-9 * b, test
+    # prediction and the report
+    new = {n: X[:5] for n, (_, X) in eqs.items()}
+    assert max_rel(one.predict(new).to_numpy(), gram.predict(new).to_numpy()) <= 1e-12
+    assert max_rel(one.prediction_se(new).to_numpy(), gram.prediction_se(new).to_numpy()) <= 1e-12
+    assert one.report() == gram.report()  # every printed digit agrees
+    # a restored copy answers the same
+    back = blocksur.SystemFit.from_dict(one.to_dict())
+    assert max_rel(back.se.to_numpy(), one.se.to_numpy()) == 0
+
+
+def test_the_system_runs_other_fits_after_a_one_pass_fit(monkeypatch):
+    eqs = _eqs(seed=22)
+    monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", 0)
+    s = blocksur.EquationSystem(eqs)
+    one = s.fit("fgls")
+    assert one._prepared.residuals_only
+    assert s._full_prepared() is None  # nothing cached by the one-pass route
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        it = s.fit("ifgls", max_iter=3, tol=0)
+    assert not it._prepared.residuals_only
+    # with the full preparation cached, a later two-step fit uses it (only the GLS step left)
+    again = s.fit("fgls")
+    assert not again._prepared.residuals_only
+    assert max_rel(again.coef.to_numpy(), one.coef.to_numpy()) <= 1e-12
+    # the light preparation refuses GLS work with a typed error, not a wrong number
+    with pytest.raises(InvalidOptionError, match="prepare the system again"):
+        one._prepared.estimate("fgls", "ml", 1e-10, 10)
+
+
+@pytest.mark.filterwarnings("ignore::blocksur.errors.NotConvergedWarning")
+def test_routing_rules(monkeypatch):
+    eqs = _eqs(seed=23)
+    monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", 0)
+    route = lambda **kw: blocksur.EquationSystem(eqs).fit(**kw)._prepared.residuals_only  # noqa: E731
+    assert route(method="fgls")
+    assert route(method="fgls", omega="dof")
+    assert not route(method="ols")
+    assert not route(method="ifgls", max_iter=2, tol=0)
+    assert not route(method="fgls", omega="ledoit-wolf")
+    names = list(eqs)
+    assert not route(method="fgls", restrictions=f"{names[0]}.x1 = {names[1]}.x1")
+    # the size threshold: K = 18 here
+    monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", sum(KS) + 1)
+    assert not route(method="fgls")
+    monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", sum(KS))
+    assert route(method="fgls")
+
+
+@pytest.mark.filterwarnings("ignore::blocksur.errors.NotConvergedWarning")
+def test_the_default_threshold_routes_a_thousand_coefficients():
+    # 250 equations x 4 regressors = 1000 coefficients: the one-pass route by default; the
+    # same estimator as the full preparation (compared at rounding level)
+    rng = np.random.default_rng(5)
+    assert system_mod._DIRECT_FGLS_MIN_K == 1000
+    T, N = 400, 250
+    eqs = {}
+    for i in range(N):
+        X = np.column_stack([np.ones(T), rng.standard_normal((T, 3))])
+        e = rng.standard_normal(T) * (1 + i % 3)
+        eqs[f"r{i}"] = (X @ rng.standard_normal(4) + e, X)
+    s = blocksur.EquationSystem(eqs)
+    one = s.fit("fgls")
+    assert one._prepared.residuals_only
+    full = s.fit("ifgls", max_iter=1, tol=0)  # forces the full preparation; one GLS step
+    assert max_rel(one.coef.to_numpy(), full.coef.to_numpy()) <= 1e-11
+    assert max_rel(one.se.to_numpy(), full.se.to_numpy()) <= 1e-11
+
+
+def test_one_pass_names_a_singular_omega(monkeypatch):
+    # budget shares: three equations whose dependent variables add up to one with the same
+    # regressors, so the OLS residuals add up to zero and Omega is singular
+    rng = np.random.default_rng(8)
+    T = 50
+    X = np.column_stack([np.ones(T), rng.standard_normal((T, 2))])
+    a = 0.3 + 0.05 * rng.standard_normal(T)
+    b = 0.5 + 0.05 * rng.standard_normal(T)
+    Z = np.column_stack([np.ones(T), rng.standard_normal(T)])
+    eqs = {"food": (a, X), "rent": (b, X), "other": (1 - a - b, X), "extra": (rng.standard_normal(T), Z)}
+    monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", 0)
+    with pytest.raises(SingularOmegaError) as one:
+        blocksur.EquationSystem(eqs).fit("fgls")
+    monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", 10**12)
+    with pytest.raises(SingularOmegaError) as gram:
+        blocksur.EquationSystem(eqs).fit("fgls")
+    # the same diagnosis (the message quotes a rounding-level eigenvalue: compare the rest)
+    assert one.value.equations == gram.value.equations
+    assert str(one.value).split("(")[0] == str(gram.value).split("(")[0]
+    assert "Drop one of these equations" in str(one.value)
+    assert set(one.value.equations) == {"food", "rent", "other"}
