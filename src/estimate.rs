@@ -843,7 +843,8 @@ impl Prepared {
             coef,
             gamma,
             omega,
-            resid_crossprod: s_final.as_standard_layout().to_owned(),
+            // symmetric (mirrored) and column-major: its transpose is itself, in row-major order
+            resid_crossprod: s_final.reversed_axes(),
             n_iter: 1,
             converged: true,
             criterion_path: Vec::new(),
