@@ -20,6 +20,7 @@
 //! assert!(fit.converged);
 //! ```
 
+pub mod alloc;
 pub mod batch;
 pub mod cg;
 pub mod error;
@@ -40,6 +41,12 @@ pub use estimate::{CovKind, Divisor, Estimate, FitOptions, Method, Restrictions}
 pub use prepare::{CrossProducts, EquationFactor, Prepared};
 pub use stream::{CrossStats, Pass2Basis, RowFactors, RowSummary};
 pub use system::{Equation, SystemData};
+
+// Large buffers on whole huge pages (see `alloc`): for the extension module and the crate's
+// own tests; a Rust program linking the core keeps its own allocator.
+#[cfg(any(feature = "python", test))]
+#[global_allocator]
+static GLOBAL: alloc::BigPageAlloc = alloc::BigPageAlloc;
 
 // Link the BLAS/LAPACK implementation (system OpenBLAS).
 extern crate blas_src;
