@@ -10,6 +10,7 @@ use ndarray::{s, Array1, Array2, ShapeBuilder};
 
 use crate::error::{Result, SurError};
 use crate::linalg::{chol_inverse, chol_lower, chol_solve, gram, invert_omega, ln_det_spd, symmetrize, upper_inverse};
+use crate::packed::{PackedLower, Segment};
 use crate::prepare::{CrossProducts, Prepared};
 use crate::cg::{ledoit_wolf, OmegaOp};
 use crate::system::SystemData;
@@ -125,6 +126,8 @@ pub(crate) enum Weight {
     Identity,
     /// Lower Cholesky factor of M.
     Chol(Array2<f64>),
+    /// The same in packed storage (half the memory): the one-pass FGLS route's.
+    Packed(PackedLower),
     /// Shared regressors: M = Omega^-1 (x) I, so M^-1 = Omega (x) I (this Omega).
     Shared(Array2<f64>),
     /// Matrix-free: M is never formed.
@@ -448,19 +451,7 @@ impl Prepared {
     /// `upper_is_zero`: M was built in a zeroed buffer with its lower triangle alone written
     /// (see `gls_step`).
     fn factor_gls(&self, m: Array2<f64>, upper_is_zero: bool) -> Result<Array2<f64>> {
-        crate::linalg::chol_lower_of(m, upper_is_zero).ok_or_else(|| SurError::SingularOmega {
-            equations: self.names.clone(),
-            detail: format!(
-                "the GLS normal matrix is not numerically positive definite: the estimated \
-                 cross-equation covariance is (nearly) singular for these regressors. With {} \
-                 equations and {} observations this happens when the residuals leave too few \
-                 degrees of freedom (the Gaussian ML estimator does not exist when N plus the \
-                 rank of all regressors together exceeds T); use method='fgls', fewer equations, \
-                 or omega='ledoit-wolf'",
-                self.n_eq(),
-                self.n_obs
-            ),
-        })
+        crate::linalg::chol_lower_of(m, upper_is_zero).ok_or_else(|| singular_gls(&self.names, self.n_eq(), self.n_obs))
     }
 
     /// W^-1 V for a K x m matrix V.
@@ -469,6 +460,7 @@ impl Prepared {
             Weight::Identity => Ok(v.clone()),
             Weight::MatrixFree => Err(matrix_free_unsupported("this covariance or restriction")),
             Weight::Chol(l) => chol_solve_mat(l, v),
+            Weight::Packed(p) => p.solve_mat(v),
             Weight::Shared(omega) => {
                 let mut out = Array2::<f64>::zeros(v.dim());
                 for i in 0..self.n_eq() {
@@ -487,6 +479,7 @@ impl Prepared {
     fn weight_inverse(&self, w: &Weight) -> Result<Array2<f64>> {
         match w {
             Weight::Chol(l) => chol_inverse(l),
+            Weight::Packed(p) => p.inverse(),
             _ => self.weight_solve(w, &Array2::eye(self.n_coef())),
         }
     }
@@ -496,6 +489,10 @@ impl Prepared {
         match w {
             Weight::Identity => Ok(x.clone()),
             Weight::Chol(l) => Ok(l.dot(&l.t().dot(x))),
+            Weight::Packed(p) => {
+                let l = p.to_full()?;
+                Ok(l.dot(&l.t().dot(x)))
+            }
             Weight::Shared(omega) => {
                 let (sigma, _) = invert_omega(omega, &self.names, self.n_obs, &self.y_scales())?;
                 self.weight_solve(&Weight::Shared(sigma), x)
@@ -554,6 +551,10 @@ impl Prepared {
         let l = match w {
             Weight::Identity => None,
             Weight::Chol(l) => Some(l),
+            Weight::Packed(p) => {
+                shared_factor = p.to_full()?;
+                Some(&shared_factor)
+            }
             Weight::Shared(_) => {
                 let m = self.weight_apply(w, &Array2::eye(self.n_coef()))?;
                 shared_factor = chol_lower(crate::linalg::to_fortran(&m))
@@ -792,31 +793,42 @@ impl Prepared {
                 h[a] = crate::linalg::dot(&wbuf[a * t..(a + 1) * t], target);
             }
         }
-        // M = C o sigma^{eq(a) eq(b)} in the buffer of C = Q'Q (lower triangle; the upper one
-        // keeps C's entries and is cleared by the factorisation)
+        // M = C o sigma^{eq(a) eq(b)} in the buffer of C = Q'Q, both in packed storage (the
+        // lower triangle alone, half the memory of the square array)
         interrupted()?;
-        let mut m = crate::linalg::gram_lower(w.slice(s![.., ..k]), cancel)?;
+        let mut m = PackedLower::gram(w.slice(s![.., ..k]), cancel)?;
         {
-            let mbuf = m.as_slice_memory_order_mut().expect("column-major product");
-            for j in 0..n {
-                for c in offsets[j]..offsets[j + 1] {
-                    let col = &mut mbuf[c * k..(c + 1) * k];
-                    // Q_j'Q_j = I exactly by construction (as in the full preparation)
-                    for (r, v) in col[c..offsets[j + 1]].iter_mut().enumerate() {
-                        *v = if r == 0 { sigma_inv[[j, j]] } else { 0.0 };
-                    }
-                    for e in (j + 1)..n {
-                        let wgt = sigma_inv[[e, j]];
-                        for v in &mut col[offsets[e]..offsets[e + 1]] {
-                            *v *= wgt;
-                        }
+            let mut eq_of = vec![0usize; k];
+            for i in 0..n {
+                eq_of[offsets[i]..offsets[i + 1]].fill(i);
+            }
+            // Q_j'Q_j = I exactly by construction (as in the full preparation)
+            let weight = |r: usize, c: usize, v: f64| {
+                let (er, ec) = (eq_of[r], eq_of[c]);
+                if er != ec {
+                    v * sigma_inv[[er, ec]]
+                } else if r == c {
+                    sigma_inv[[er, er]]
+                } else {
+                    0.0
+                }
+            };
+            m.segments_mut(|seg| match seg {
+                Segment::Row { i, j0, vals } => {
+                    for (t, v) in vals.iter_mut().enumerate() {
+                        *v = weight(i, j0 + t, *v);
                     }
                 }
-            }
+                Segment::Column { j, i0, vals } => {
+                    for (t, v) in vals.iter_mut().enumerate() {
+                        *v = weight(i0 + t, j, *v);
+                    }
+                }
+            });
         }
         interrupted()?;
-        let chol = prep.factor_gls(m, false)?;
-        let delta = chol_solve(&chol, &h)?;
+        let chol = m.factor().ok_or_else(|| singular_gls(&prep.names, n, t))?;
+        let delta = chol.solve(&h)?;
         // residuals e_i = rho_i q_i - Q_i delta_i and their cross-products
         interrupted()?;
         // (in the buffer of E Omega^-1, which h has been read from)
@@ -854,7 +866,7 @@ impl Prepared {
             cg_iterations: Vec::new(),
             cg_residual: f64::NAN,
             warm_iterations: Vec::new(),
-            weight: Weight::Chol(chol),
+            weight: Weight::Packed(chol),
             restricted: None,
         };
         Ok((prep, est))
@@ -1070,7 +1082,12 @@ impl Prepared {
             if matches!(self.cross, CrossProducts::MatrixFree { .. }) {
                 return Err(matrix_free_unsupported("the covariance matrix"));
             }
-            if let Weight::Chol(l) = &est.weight {
+            let panel: Option<PanelOfInverse<'_>> = match &est.weight {
+                Weight::Chol(l) => Some(Box::new(move |c, d| inverse_columns(l, c, d))),
+                Weight::Packed(p) => Some(Box::new(move |c, d| p.inverse_columns(c, d))),
+                _ => None,
+            };
+            if let Some(inverse_columns) = panel {
                 // U = L^-1 a panel of whole equations at a time (columns c..d of U are zero
                 // above row c and solve L[c.., c..] X = I[c.., c..d]): K^3/3 flops in all, as
                 // one trtri, but only a K x PANEL block in memory.
@@ -1082,7 +1099,7 @@ impl Prepared {
                     while last < n && self.offsets[last + 1] - c <= PANEL {
                         last += 1;
                     }
-                    let x = inverse_columns(l, c, self.offsets[last])?;
+                    let x = inverse_columns(c, self.offsets[last])?;
                     for (i, ri) in rinv.iter().enumerate().take(last).skip(first) {
                         let (a, b) = (self.offsets[i] - c, self.offsets[i + 1] - c);
                         let v = x.slice(s![a.., a..b]).dot(&ri.t());
@@ -1380,6 +1397,21 @@ fn chol_solve_mat(l: &Array2<f64>, b: &Array2<f64>) -> Result<Array2<f64>> {
     Ok(out)
 }
 
+/// The error of a GLS matrix that is not numerically positive definite.
+fn singular_gls(names: &[String], n: usize, t: usize) -> SurError {
+    SurError::SingularOmega {
+        equations: names.to_vec(),
+        detail: format!(
+            "the GLS normal matrix is not numerically positive definite: the estimated \
+             cross-equation covariance is (nearly) singular for these regressors. With {n} \
+             equations and {t} observations this happens when the residuals leave too few \
+             degrees of freedom (the Gaussian ML estimator does not exist when N plus the \
+             rank of all regressors together exceeds T); use method='fgls', fewer equations, \
+             or omega='ledoit-wolf'"
+        ),
+    }
+}
+
 /// diag(A B A') into `out`, for a square block B.
 fn block_variances(a: &Array2<f64>, b: &Array2<f64>, mut out: ndarray::ArrayViewMut1<f64>) {
     let ab = a.dot(b);
@@ -1387,6 +1419,9 @@ fn block_variances(a: &Array2<f64>, b: &Array2<f64>, mut out: ndarray::ArrayView
         *o = ab.row(j).dot(&a.row(j));
     }
 }
+
+/// Rows and columns c.. x c..d of L^-1, for a factor in either storage.
+type PanelOfInverse<'a> = Box<dyn Fn(usize, usize) -> Result<Array2<f64>> + 'a>;
 
 /// Columns of whole equations per panel of L^-1 in `coef_variances` (a K x PANEL block).
 const PANEL: usize = 256;
@@ -1400,10 +1435,7 @@ fn inverse_columns(l: &Array2<f64>, c: usize, d: usize) -> Result<Array2<f64>> {
         return Err(SurError::numerical("inverse of the Cholesky factor", "unexpected factor layout"));
     }
     let (m, w) = (k - c, d - c);
-    let mut x = Array2::<f64>::zeros((m, w).f());
-    for j in 0..w {
-        x[[j, j]] = 1.0;
-    }
+    let mut x = crate::packed::identity_panel(m, w);
     if m == 0 || w == 0 {
         return Ok(x);
     }

@@ -27,6 +27,7 @@ pub mod error;
 pub mod estimate;
 mod gram;
 pub mod linalg;
+pub mod packed;
 mod pool;
 pub mod prepare;
 mod small;

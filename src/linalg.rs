@@ -53,17 +53,10 @@ pub(crate) const SMALL_GRAM: f64 = 1.0e6;
 /// W'W accumulated over row blocks sized so that each block takes a fraction of a second; between
 /// blocks `cancel` is asked whether to stop (it returns Err(Interrupted) when it says yes).
 pub fn gram_blocked(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
-    gram_of(w, cancel, false)
+    gram_of(w, cancel)
 }
 
-/// `gram_blocked` for a caller that reads the lower triangle (and the diagonal) only: the
-/// strict upper triangle may hold anything. Spares the BLAS path its mirror pass over the
-/// whole matrix (P = 4000: 16 M strided copies).
-pub(crate) fn gram_lower(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
-    gram_of(w, cancel, true)
-}
-
-fn gram_of(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync), lower_only: bool) -> Result<Array2<f64>> {
+fn gram_of(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
     let (t, p) = w.dim();
     if t == 0 || p == 0 {
         return Ok(Array2::<f64>::zeros((p, p).f()));
@@ -92,7 +85,7 @@ fn gram_of(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync), lower_only: b
             return crate::gram::gram_packed(kernel, buf, t, p, threads, cancel);
         }
     }
-    syrk_blocks(w, cancel, lower_only)
+    syrk_blocks(w, cancel)
 }
 
 /// Gram matrices of at least this many columns go to BLAS syrk.
@@ -104,11 +97,11 @@ const PARALLEL_GRAM: f64 = 4.0e6;
 /// W'W by BLAS syrk over row blocks (column-major `w`), asking `cancel` between blocks: the
 /// path for CPUs without AVX2/FMA, and the comparison the benchmarks make.
 pub fn gram_syrk(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
-    syrk_blocks(w, cancel, false)
+    syrk_blocks(w, cancel)
 }
 
-/// `gram_syrk`; with `lower_only` the lower triangle alone is formed (no mirror).
-fn syrk_blocks(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync), lower_only: bool) -> Result<Array2<f64>> {
+/// `gram_syrk`: the upper triangle by syrk, mirrored.
+fn syrk_blocks(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
     let (t, p) = w.dim();
     let mut g = zeros_for_product(p);
     if t == 0 || p == 0 {
@@ -135,7 +128,7 @@ fn syrk_blocks(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync), lower_onl
         unsafe {
             cblas_sys::cblas_dsyrk(
                 cblas_sys::CBLAS_LAYOUT::CblasColMajor,
-                if lower_only { cblas_sys::CBLAS_UPLO::CblasLower } else { cblas_sys::CBLAS_UPLO::CblasUpper },
+                cblas_sys::CBLAS_UPLO::CblasUpper,
                 cblas_sys::CBLAS_TRANSPOSE::CblasTrans,
                 p as i32,
                 (end - start) as i32,
@@ -149,9 +142,7 @@ fn syrk_blocks(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync), lower_onl
         }
         start = end;
     }
-    if !lower_only {
-        mirror(&mut g, false);
-    }
+    mirror(&mut g, false);
     Ok(g)
 }
 
