@@ -224,3 +224,29 @@ def test_one_pass_memory_is_the_basis_plus_half_a_k_by_k_matrix():
     # little of the C allocator's) stay resident
     record("RSS kept after the one-pass results are deleted (MB)", res["kept_kb"] / mb)
     assert res["kept_kb"] <= 40 * mb
+
+
+def test_the_auto_solver_counts_what_the_one_pass_route_needs(monkeypatch):
+    # Routing rule (ours): a two-step fit on the one-pass route needs W, the packed GLS
+    # matrix and a K x K covariance, far less than the (K + N)^2 cross-products plus three
+    # K x K matrices of the full preparation; a memory limit between the two keeps such a fit
+    # direct (and exact) where an iterated fit goes matrix-free.
+    monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", 0)
+    eqs = make_sur_data(31, T=100, ks=(12,) * 6)
+    system = blocksur.EquationSystem(eqs)
+    K, T, N = 72, 100, 6
+    one, full = system._one_pass_memory(), system.direct_memory()
+    assert one == 8 * (T * (K + N) + K * (K + 1) // 2 + K * K)
+    assert full == 8 * ((K + N) ** 2 + 3 * K * K)
+    limit = (one + full) / 2
+    fit = system.fit("fgls", memory_limit=limit)
+    assert fit.solver == "direct" and fit._prepared.residuals_only
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert system.fit("ifgls", memory_limit=limit).solver == "cg"
+    assert system.fit("fgls", memory_limit=one - 1).solver == "cg"
+    # restrictions take the full preparation, so its need counts: over the limit, the fit is
+    # matrix-free, which refuses restrictions and says to raise the limit
+    with pytest.raises(InvalidOptionError, match="memory limit"):
+        system.fit("fgls", memory_limit=limit, restrictions="a.x1 = b.x1")
+    assert system.fit("fgls", memory_limit=full + 1, restrictions="a.x1 = b.x1").solver == "direct"

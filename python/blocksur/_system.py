@@ -298,6 +298,13 @@ class EquationSystem(SystemLabels):
             cached = self.__dict__["_direct_memory"] = 8 * (p * p + 3 * k * k)
         return cached
 
+    def _one_pass_memory(self) -> int:
+        """Bytes a two-step fit on the one-pass route needs beyond the data: the basis W
+        (T x (K+N)), the GLS matrix and its factor in packed storage (K(K+1)/2 values, formed
+        in place) and the K x K covariance should it be asked for."""
+        k = sum(len(r) for r in self._regressors)
+        return 8 * (self.n_obs * (k + self.n_eq) + k * (k + 1) // 2 + k * k)
+
     def fit(
         self,
         method: str = "fgls",
@@ -356,7 +363,10 @@ class EquationSystem(SystemLabels):
             ``"direct"`` (Cholesky of the K x K GLS matrix), ``"cg"`` (matrix-free conjugate
             gradients: memory O(T (K + N)), no K x K matrix; standard errors per equation on
             request, see :meth:`SystemFit.se_of`) or ``"auto"``: direct unless
-            :meth:`direct_memory` exceeds ``memory_limit``.
+            the memory the direct route needs exceeds ``memory_limit``: :meth:`direct_memory`,
+            or for a two-step fit on the one-pass route (K >= 1000, omega "ml" or "dof", no
+            restrictions: one pass over the data without the (K + N)^2 cross-products) the basis
+            W (8 T (K + N) bytes), the GLS matrix in packed storage and the K x K covariance.
         memory_limit
             Bytes the direct solver may use (default: half of the machine's memory).
         cg_tol, cg_max_iter
@@ -387,7 +397,13 @@ class EquationSystem(SystemLabels):
             raise InvalidOptionError(f"unknown solver {solver!r}: use 'auto', 'direct' or 'cg'")
         if memory_limit is None:
             memory_limit = _default_memory_limit()
-        matrix_free = solver == "cg" or (solver == "auto" and self.direct_memory() > memory_limit)
+        k = sum(len(r) for r in self._regressors)
+        one_pass = (
+            method == "fgls" and restrictions is None and omega in ("ml", "dof")
+            and self.n_eq > 1 and k >= _DIRECT_FGLS_MIN_K and self._full_prepared() is None
+        )
+        need = self._one_pass_memory() if one_pass else self.direct_memory()
+        matrix_free = solver == "cg" or (solver == "auto" and need > memory_limit)
         if matrix_free and covariance != "classical":
             raise InvalidOptionError(
                 "robust covariances need the direct solver (they form K x K matrices); "
@@ -408,11 +424,7 @@ class EquationSystem(SystemLabels):
             )
         if inference not in ("z", "t"):
             raise InvalidOptionError(f"unknown inference {inference!r}: use 'z' (normal) or 't'")
-        k = sum(len(r) for r in self._regressors)
-        if (
-            method == "fgls" and restrictions is None and omega in ("ml", "dof") and not matrix_free
-            and self.n_eq > 1 and k >= _DIRECT_FGLS_MIN_K and self._full_prepared() is None
-        ):
+        if one_pass and not matrix_free:
             # one pass, nothing cached: a later GLS fit of this system prepares it in full
             hook = progress_hook(progress, "data pass", None, "block")
             try:
