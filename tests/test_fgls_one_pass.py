@@ -227,16 +227,18 @@ def test_one_pass_memory_is_the_basis_plus_half_a_k_by_k_matrix():
 
 
 def test_the_auto_solver_counts_what_the_one_pass_route_needs(monkeypatch):
-    # Routing rule (ours): a two-step fit on the one-pass route needs W, the packed GLS
-    # matrix and a K x K covariance, far less than the (K + N)^2 cross-products plus three
-    # K x K matrices of the full preparation; a memory limit between the two keeps such a fit
-    # direct (and exact) where an iterated fit goes matrix-free.
+    # Routing rule (ours): a two-step fit on the one-pass route needs W and the packed GLS
+    # matrix, then the factor and a K x K covariance: less than the (K + N)^2 cross-products
+    # plus three K x K matrices of the full preparation; a memory limit between the two keeps
+    # such a fit direct (and exact) where an iterated fit goes matrix-free.
     monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", 0)
     eqs = make_sur_data(31, T=100, ks=(12,) * 6)
     system = blocksur.EquationSystem(eqs)
     K, T, N = 72, 100, 6
     one, full = system._one_pass_memory(), system.direct_memory()
-    assert one == 8 * (T * (K + N) + K * (K + 1) // 2 + K * K)
+    packed = K * (K + 1) // 2
+    assert one == 8 * max(T * (K + N) + packed, 2 * packed + K * K)
+    assert system._one_pass_memory("hc0") == 8 * max(T * (K + N) + packed, packed + 3 * K * K)
     assert full == 8 * ((K + N) ** 2 + 3 * K * K)
     limit = (one + full) / 2
     fit = system.fit("fgls", memory_limit=limit)

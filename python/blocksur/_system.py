@@ -298,12 +298,16 @@ class EquationSystem(SystemLabels):
             cached = self.__dict__["_direct_memory"] = 8 * (p * p + 3 * k * k)
         return cached
 
-    def _one_pass_memory(self) -> int:
-        """Bytes a two-step fit on the one-pass route needs beyond the data: the basis W
-        (T x (K+N)), the GLS matrix and its factor in packed storage (K(K+1)/2 values, formed
-        in place) and the K x K covariance should it be asked for."""
+    def _one_pass_memory(self, covariance: str = "classical") -> int:
+        """Bytes a two-step fit on the one-pass route needs beyond the data, at its peak: during
+        the fit the basis W (T x (K+N)) and the GLS matrix in packed storage (K(K+1)/2 values,
+        factored in place); afterwards, with W gone, the packed factor and what a covariance
+        takes: a copy of the factor and the K x K matrix (classical) or three K x K matrices
+        (the robust kinds: the meat and two solves)."""
         k = sum(len(r) for r in self._regressors)
-        return 8 * (self.n_obs * (k + self.n_eq) + k * (k + 1) // 2 + k * k)
+        packed = k * (k + 1) // 2
+        after = 2 * packed + k * k if covariance == "classical" else packed + 3 * k * k
+        return 8 * max(self.n_obs * (k + self.n_eq) + packed, after)
 
     def fit(
         self,
@@ -365,8 +369,9 @@ class EquationSystem(SystemLabels):
             request, see :meth:`SystemFit.se_of`) or ``"auto"``: direct unless
             the memory the direct route needs exceeds ``memory_limit``: :meth:`direct_memory`,
             or for a two-step fit on the one-pass route (K >= 1000, omega "ml" or "dof", no
-            restrictions: one pass over the data without the (K + N)^2 cross-products) the basis
-            W (8 T (K + N) bytes), the GLS matrix in packed storage and the K x K covariance.
+            restrictions: one pass over the data without the (K + N)^2 cross-products) the larger
+            of the basis W (8 T (K + N) bytes) with the GLS matrix in packed storage, and what
+            the covariance takes afterwards (one K x K matrix, three for the robust kinds).
         memory_limit
             Bytes the direct solver may use (default: half of the machine's memory).
         cg_tol, cg_max_iter
@@ -402,7 +407,7 @@ class EquationSystem(SystemLabels):
             method == "fgls" and restrictions is None and omega in ("ml", "dof")
             and self.n_eq > 1 and k >= _DIRECT_FGLS_MIN_K and self._full_prepared() is None
         )
-        need = self._one_pass_memory() if one_pass else self.direct_memory()
+        need = self._one_pass_memory(covariance) if one_pass else self.direct_memory()
         matrix_free = solver == "cg" or (solver == "auto" and need > memory_limit)
         if matrix_free and covariance != "classical":
             raise InvalidOptionError(
