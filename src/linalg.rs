@@ -100,6 +100,13 @@ pub fn gram_syrk(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Resu
     syrk_blocks(w, cancel)
 }
 
+/// Rows per block of a T x p rank-k update split so that `cancel` is asked between blocks:
+/// about 2e9 flops per block (a fraction of a second), blocks of equal size.
+pub(crate) fn syrk_block_rows(t: usize, p: usize) -> usize {
+    let rows = ((2e9 / (p as f64 * p as f64).max(1.0)) as usize).clamp(256, t.max(256));
+    t.div_ceil(t.div_ceil(rows).max(1)).max(1)
+}
+
 /// `gram_syrk`: the upper triangle by syrk, mirrored.
 fn syrk_blocks(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
     let (t, p) = w.dim();
@@ -114,9 +121,7 @@ fn syrk_blocks(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result
         owned = to_fortran(&w.to_owned());
         owned.view()
     };
-    // About 2e9 flops per block (a fraction of a second), blocks of equal size.
-    let rows = ((2e9 / (p as f64 * p as f64)) as usize).clamp(256, t.max(256));
-    let rows = t.div_ceil(t.div_ceil(rows));
+    let rows = syrk_block_rows(t, p);
     let mut start = 0;
     while start < t {
         let end = (start + rows).min(t);
