@@ -813,7 +813,9 @@ impl Prepared {
                     0.0
                 }
             };
-            m.segments_mut(|seg| match seg {
+            // a pass over K^2 / 2 values (15 ms at K = 4000 on one thread): both cores
+            let threads = crate::prepare::work_threads((k * k) as f64);
+            m.segments_par_mut(threads, &|seg| match seg {
                 Segment::Row { i, j0, vals } => {
                     for (t, v) in vals.iter_mut().enumerate() {
                         *v = weight(i, j0 + t, *v);

@@ -121,16 +121,47 @@ impl PackedLower {
     pub fn segments_mut(&mut self, mut f: impl FnMut(Segment<'_>)) {
         let n = self.n;
         let (ld, h) = Self::dims(n);
-        let even = n.is_multiple_of(2);
         for (c, col) in self.buf.chunks_mut(ld).enumerate().take(h) {
-            // the trailing triangle's row (stored first in this column), then column c
-            let split = if even { c + 1 } else { c };
-            let (top, rest) = col.split_at_mut(split);
-            if !top.is_empty() {
-                f(Segment::Row { i: if even { h + c } else { h + c - 1 }, j0: h, vals: top });
-            }
-            f(Segment::Column { j: c, i0: c, vals: rest });
+            Self::column_segments(n, c, col, &mut f);
         }
+    }
+
+    /// The runs of stored column c (`col`, ld values): the trailing triangle's row (stored
+    /// first in this column), then column c of the leading part.
+    fn column_segments(n: usize, c: usize, col: &mut [f64], f: &mut impl FnMut(Segment<'_>)) {
+        let h = Self::dims(n).1;
+        let even = n.is_multiple_of(2);
+        let split = if even { c + 1 } else { c };
+        let (top, rest) = col.split_at_mut(split);
+        if !top.is_empty() {
+            f(Segment::Row { i: if even { h + c } else { h + c - 1 }, j0: h, vals: top });
+        }
+        f(Segment::Column { j: c, i0: c, vals: rest });
+    }
+
+    /// `segments_mut` with the stored columns shared out over `threads` threads (the same runs,
+    /// each visited once, in no particular order across threads).
+    pub fn segments_par_mut(&mut self, threads: usize, f: &(dyn Fn(Segment<'_>) + Sync)) {
+        let n = self.n;
+        let (ld, h) = Self::dims(n);
+        let threads = threads.clamp(1, h.max(1));
+        if threads == 1 {
+            return self.segments_mut(f);
+        }
+        // every stored column holds ld values: equal shares of whole columns
+        let per = h.div_ceil(threads);
+        let parts: Vec<std::sync::Mutex<Option<(usize, &mut [f64])>>> = self.buf[..ld * h]
+            .chunks_mut(ld * per)
+            .enumerate()
+            .map(|(p, chunk)| std::sync::Mutex::new(Some((p * per, chunk))))
+            .collect();
+        crate::pool::run(parts.len(), &|p| {
+            let Some((first, chunk)) = parts[p].lock().unwrap_or_else(|e| e.into_inner()).take() else { return };
+            let mut f = f;
+            for (dc, col) in chunk.chunks_mut(ld).enumerate() {
+                Self::column_segments(n, first + dc, col, &mut f);
+            }
+        });
     }
 
     /// The Cholesky factor in place (LAPACK pftrf); None when the matrix is not numerically
@@ -338,6 +369,19 @@ mod tests {
                 }
             });
             assert_eq!(seen, n * (n + 1) / 2);
+            // the threaded version: every stored value mapped once, to f(i, j) at entry (i, j)
+            for threads in [1usize, 2, 3, 8] {
+                let mut q = PackedLower { n, buf: rfp.clone() };
+                q.segments_par_mut(threads, &|seg| match seg {
+                    Segment::Row { i, j0, vals } => vals.iter_mut().enumerate().for_each(|(t, v)| *v += (i * 1000 + j0 + t) as f64),
+                    Segment::Column { j, i0, vals } => vals.iter_mut().enumerate().for_each(|(t, v)| *v += ((i0 + t) * 1000 + j) as f64),
+                });
+                for j in 0..n {
+                    for i in j..n {
+                        assert_eq!(q.buf[PackedLower::index(n, i, j)], a[[i, j]] + (i * 1000 + j) as f64, "n={n} threads={threads} ({i},{j})");
+                    }
+                }
+            }
             // Gram by sfrk against the product
             let w = Array2::from_shape_fn((n + 4, n).f(), |(t, j)| ((t * 7 + j * 3) % 11) as f64 - 5.0 + 0.1 * j as f64);
             let g = PackedLower::gram(w.view(), &|| false).unwrap();

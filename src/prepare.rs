@@ -609,10 +609,16 @@ fn factor_into(
     if !(tss_raw.is_finite() && tss_centred.is_finite()) {
         check_finite(eq, 0)?;
     }
-    let rq = thin_qr_in_place(scratch, t, k, stop).map_err(|e| match e {
+    let qr_error = |e| match e {
         SurError::Interrupted => e,
         e => SurError::numerical(&format!("QR of equation '{}'", eq.name), e),
-    })?;
+    };
+    // well-conditioned narrow blocks by CholeskyQR2 (four passes over the rows), the others by
+    // Householder
+    let rq = match crate::linalg::cholqr2_in_place(scratch, t, k, stop).map_err(qr_error)? {
+        Some(r) => r,
+        None => thin_qr_in_place(scratch, t, k, stop).map_err(qr_error)?,
+    };
     // R in data units, and with unit-norm columns for the rank and condition checks
     let mut r = rq;
     let mut rs = r.clone();

@@ -539,6 +539,72 @@ fn householder_qr_matches_lapack() {
 }
 
 #[test]
+fn cholqr2_is_a_qr_factorisation_and_declines_what_it_cannot_do_well() {
+    use ndarray_linalg::QR;
+    use crate::linalg::{cholqr2_in_place, CHOLQR_COND_MAX, CHOLQR_MAX_M};
+    let mut rng = Rng(91);
+    // chunk edges (512 rows), odd widths, a long T, columns of very different scales, and a
+    // condition number of about 1e3 (mixed columns)
+    for &(t, m, mix) in &[(6usize, 6usize, 0.0), (511, 3, 0.0), (513, 5, 0.0), (5000, 6, 0.0), (4096, 16, 0.999), (200_000, 4, 0.99)] {
+        let mut a = Array2::from_shape_fn((t, m).f(), |_| rng.normal());
+        for j in 1..m {
+            let prev = a.column(j - 1).to_owned();
+            let mut c = a.column_mut(j);
+            c.zip_mut_with(&prev, |v, p| *v = mix * p + (1.0 - mix) * *v);
+        }
+        for j in 0..m {
+            a.column_mut(j).mapv_inplace(|v| v * 10f64.powi(j as i32 * 7 - 20));
+        }
+        let mut buf = a.clone();
+        let r = cholqr2_in_place(buf.as_slice_memory_order_mut().unwrap(), t, m, &|| false).unwrap().expect("well-conditioned");
+        // A = Q R (column by column, relative to the column), Q'Q = I, R as LAPACK's up to signs
+        let back = buf.dot(&r);
+        for j in 0..m {
+            let scale = a.column(j).iter().fold(0.0f64, |s, v| s.max(v.abs()));
+            for i in 0..t {
+                assert!((back[[i, j]] - a[[i, j]]).abs() <= 1e-13 * scale, "t={t} m={m} ({i},{j})");
+            }
+        }
+        let qtq = buf.t().dot(&buf);
+        for i in 0..m {
+            for j in 0..m {
+                assert_relative_eq!(qtq[[i, j]], if i == j { 1.0 } else { 0.0 }, epsilon = 1e-14);
+            }
+            assert!(r[[i, i]] > 0.0);
+        }
+        let (_, rl) = a.qr().unwrap();
+        for i in 0..m {
+            for j in i..m {
+                let scale = rl[[j, j]].abs().max(rl[[i, j]].abs());
+                assert!((r[[i, j]].abs() - rl[[i, j]].abs()).abs() <= 1e-12 * scale, "t={t} m={m} R({i},{j})");
+            }
+        }
+    }
+    // declined, the block untouched: ill-conditioned, not finite, too wide, norm out of range
+    let t = 1000;
+    let mut a = Array2::from_shape_fn((t, 3).f(), |_| rng.normal());
+    let c0 = a.column(0).to_owned();
+    a.column_mut(2).zip_mut_with(&c0, |v, p| *v = *p + 1e-5 * *v);
+    let mut bad_nan = a.clone();
+    bad_nan[[500, 1]] = f64::NAN;
+    let mut tiny = a.clone();
+    tiny.column_mut(1).mapv_inplace(|v| v * 1e-120);
+    let wide = Array2::from_shape_fn((t, CHOLQR_MAX_M + 1).f(), |_| rng.normal());
+    for (what, x) in [("condition 1e5", a), ("NaN", bad_nan), ("17 columns", wide), ("norm 1e-120", tiny)] {
+        let m = x.ncols();
+        let mut buf = x.clone();
+        let got = cholqr2_in_place(buf.as_slice_memory_order_mut().unwrap(), t, m, &|| false).unwrap();
+        assert!(got.is_none(), "{what}: accepted");
+        assert!(buf.iter().zip(x.iter()).all(|(p, q)| p.to_bits() == q.to_bits()), "{what}: block changed");
+    }
+    assert!(CHOLQR_COND_MAX < 1e5);
+    // asked to stop: interrupted, not a result
+    let mut buf = Array2::from_shape_fn((t, 3).f(), |_| rng.normal());
+    let got = cholqr2_in_place(buf.as_slice_memory_order_mut().unwrap(), t, 3, &|| true);
+    assert!(matches!(got, Err(SurError::Interrupted)));
+}
+
+#[test]
 fn parallel_data_pass_equals_sequential_and_reports_the_first_bad_equation() {
     // T (K_i + 1)^2 summed is large enough here for step 0 to be shared over threads; each
     // equation's arithmetic does not depend on the thread, so results are bit-identical to
