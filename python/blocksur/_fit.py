@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 from functools import cached_property
 from typing import TYPE_CHECKING, Any
 
@@ -12,7 +13,7 @@ from . import _core
 from ._restrictions import parse_restrictions
 from ._frame import expand_new
 from ._tests import HypothesisTestResult
-from .errors import InvalidOptionError, ShapeMismatchError
+from .errors import InvalidOptionError, NotConvergedWarning, NumericalError, ShapeMismatchError
 
 if TYPE_CHECKING:  # pragma: no cover
     from ._system import EquationSystem
@@ -102,6 +103,49 @@ def _series_factory() -> Any:
 
 
 _float_series = _series_factory()
+
+
+def check_level(level: Any) -> None:
+    """Refuses a confidence level that is not a number strictly between 0 and 1."""
+    ok = isinstance(level, (int, float, np.integer, np.floating)) and not isinstance(level, (bool, np.bool_))
+    if not (ok and 0 < level < 1):
+        raise InvalidOptionError(f"level must be a number between 0 and 1 (e.g. 0.95), got {level!r}")
+
+
+def _check_nested(loose: Any, tight: Any) -> None:
+    """Refuses two restriction sets (or None, unrestricted) unless the tighter one implies the
+    looser one: every row of the looser R lies in the row space of the tighter R, with the
+    matching combination of the tighter q. Rows are compared at unit norm, to a relative
+    tolerance of 1e-9."""
+    if loose is None or len(loose) == 0:
+        return  # no restriction: implied by anything
+    if tight is None or len(tight) == 0:
+        bad = [0]
+    else:
+        rt = np.asarray(tight.r, dtype=float)
+        qt = np.asarray(tight.q, dtype=float)
+        bad = []
+        for i, (row, q) in enumerate(zip(np.asarray(loose.r, dtype=float), np.asarray(loose.q, dtype=float))):
+            norm = float(np.linalg.norm(row))
+            row, q = row / norm, q / norm
+            a = np.linalg.lstsq(rt.T, row, rcond=None)[0]
+            scale = max(1.0, float(np.linalg.norm(a) * np.linalg.norm(rt)))
+            row_ok = np.linalg.norm(rt.T @ a - row) <= 1e-9 * scale
+            # relative to the terms compared, plus the rounding of a (eps times the condition of
+            # the tighter R) on large right-hand sides that the row does not use
+            q_tol = 1e-9 * (abs(q) + float(np.abs(a) @ np.abs(qt))) + 1e-12 * scale * float(np.linalg.norm(qt))
+            q_ok = abs(float(a @ qt) - q) <= q_tol
+            if not (row_ok and q_ok):
+                bad.append(i)
+    tight_text = "; ".join(tight.texts) if tight is not None else "none"
+    if bad:
+        which = "; ".join(repr(loose.texts[i]) for i in bad[:3]) + (" ..." if len(bad) > 3 else "")
+        raise InvalidOptionError(
+            "the two fits are not nested: the LR test compares a fit with the fit under further "
+            "restrictions, so every restriction of the less restricted fit must follow from those "
+            f"of the more restricted one; {which} does not follow from theirs ({tight_text}). "
+            "Compare each fit with the unrestricted fit, or with a fit under both sets of restrictions"
+        )
 
 
 class SystemFit:
@@ -397,8 +441,7 @@ class SystemFit:
         return pd.Series(p, index=self._coef_index, name="pval")
 
     def _crit(self, level: float) -> np.ndarray | float:
-        if not (0 < level < 1):
-            raise InvalidOptionError(f"level must be between 0 and 1, got {level!r}")
+        check_level(level)
         a = 0.5 + level / 2
         return _stats().t.ppf(a, self._coef_df()) if self.inference == "t" else _stats().norm.ppf(a)
 
@@ -463,7 +506,18 @@ class SystemFit:
     def lr_against(self, other: "SystemFit") -> HypothesisTestResult:
         """Likelihood-ratio test between this fit and a nested one (both iterated ML fits:
         ``method="ifgls"``, ``omega="ml"``, on the same system). LR = 2 (ll_big - ll_small)
-        ~ chi2(difference in free coefficients)."""
+        ~ chi2(difference in free coefficients).
+
+        Nested means that every restriction of the less restricted fit follows from those of
+        the more restricted one (an unrestricted fit is nested in any restricted fit); fits
+        that are not nested are refused. A restricted fit whose log-likelihood exceeds the
+        other's by more than rounding (an iterated fit that stopped short of its maximum) is
+        refused too, rather than reported as a statistic of zero."""
+        if not isinstance(other, SystemFit):
+            raise TypeError(
+                "lr_against expects another SystemFit of the same EquationSystem (an iterated ML "
+                f"fit with or without restrictions), not {type(other).__name__}"
+            )
         for f in (self, other):
             if f.method != "ifgls" or f.omega_divisor != "ml":
                 raise InvalidOptionError(
@@ -476,7 +530,32 @@ class SystemFit:
         if free_self == free_other:
             raise InvalidOptionError("the fits have the same number of free coefficients: not nested")
         big, small = (self, other) if free_self > free_other else (other, self)
-        lr = max(2.0 * (big.loglik - small.loglik), 0.0)
+        _check_nested(big.restrictions, small.restrictions)
+        for which, f in (("this fit", self), ("the other fit", other)):
+            if not f.converged:
+                warnings.warn(
+                    f"{which} did not converge (converged=False): its log-likelihood may be "
+                    "short of the maximum the LR test assumes; refit it with a larger max_iter "
+                    "(or cg_max_iter on the matrix-free path)",
+                    NotConvergedWarning,
+                    stacklevel=2,
+                )
+        lr = 2.0 * (big.loglik - small.loglik)
+        if lr < 0.0:
+            scale = max(abs(big.loglik), abs(small.loglik), 1.0)
+            if lr < -1e-8 * scale:
+                unconverged = [w for w, f in (("this fit", self), ("the other fit", other)) if not f.converged]
+                cause = (
+                    f" ({' and '.join(unconverged)} did not converge: refit with a larger max_iter)"
+                    if unconverged
+                    else " (an iterated fit stopped short of the maximum: refit both with a smaller tol)"
+                )
+                raise NumericalError(
+                    f"the more restricted fit has the higher log-likelihood ({small.loglik!r} against "
+                    f"{big.loglik!r} for the less restricted one), which cannot happen at the maximum "
+                    f"of the likelihood: the LR statistic {lr:.6g} is meaningless{cause}"
+                )
+            lr = 0.0  # rounding of two equal maxima
         df = abs(free_self - free_other)
         null = "; ".join(small.restrictions.texts) if small.restrictions is not None else "the smaller model"
         return HypothesisTestResult("LR", null, lr, "chi2", df, None, float(_stats().chi2.sf(lr, df)))
@@ -766,10 +845,11 @@ class SystemFit:
 
         restore_pickle(self, state)
 
-    def report(self, level: float = 0.95, max_equations: int = 12, width: int = 100) -> str:
+    def report(self, level: float = 0.95, max_equations: int | None = 12, width: int = 100) -> str:
         """A plain-text report for terminals and logs: header (method, sample, iterations,
-        Omega divisor, covariance), one block per equation, the residual correlations and the
-        system-wide statistics, at most ``width`` columns.
+        Omega divisor, covariance), one block per equation (the first ``max_equations``, a whole
+        number >= 1, or None for all), the residual correlations and the system-wide
+        statistics, at most ``width`` columns (a whole number from 80 to 1000).
 
         Example
         -------
@@ -779,8 +859,9 @@ class SystemFit:
 
         return text_report(self, level=level, max_equations=max_equations, width=width)
 
-    def report_html(self, level: float = 0.95, max_equations: int = 12) -> str:
-        """The report as an HTML fragment (what Jupyter shows for a fit).
+    def report_html(self, level: float = 0.95, max_equations: int | None = 12) -> str:
+        """The report as an HTML fragment (what Jupyter shows for a fit); ``max_equations`` as
+        in :meth:`report`.
 
         Example
         -------
@@ -797,7 +878,8 @@ class SystemFit:
         return self.report_html()
 
     def to_markdown(self, level: float = 0.95, digits: int = 4) -> str:
-        """The coefficient table as a Markdown (pipe) table.
+        """The coefficient table as a Markdown (pipe) table, with ``digits`` significant digits
+        (a whole number from 1 to 15).
 
         Example
         -------
@@ -809,7 +891,8 @@ class SystemFit:
 
     def to_latex(self, level: float = 0.95, digits: int = 4, caption: str | None = None,
                  label: str | None = None) -> str:
-        """The coefficient table as a LaTeX ``table`` with a ``tabular`` (booktabs rules).
+        """The coefficient table as a LaTeX ``table`` with a ``tabular`` (booktabs rules), with
+        ``digits`` significant digits (a whole number from 1 to 15).
 
         Example
         -------

@@ -29,6 +29,8 @@ Example
 from __future__ import annotations
 
 import difflib
+import re
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
@@ -488,6 +490,106 @@ def _is_table(obj: Any) -> bool:
     return isinstance(obj, pd.DataFrame) or mod == "polars" or (mod == "pyarrow" and hasattr(obj, "column_names"))
 
 
+# -- categories in new data ---------------------------------------------------------------------
+_C_CALL = re.compile(r"C\(\s*(`[^`]+`|[A-Za-z_][A-Za-z0-9_]*)\s*(?:,.*)?\)", re.S)
+_SHOW_VALUES = 5
+_SHOW_LEVELS = 20
+
+
+def _categorical_factors(model_spec: Any) -> list[tuple[str, list[Any]]]:
+    """(factor expression, levels seen at fit time) of each categorical factor of a fitted
+    formula, from the encoder state formulaic keeps in its model spec."""
+    out = []
+    for expr, entry in (getattr(model_spec, "encoder_state", None) or {}).items():
+        try:
+            kind, state = entry
+            levels = list(state["categories"])
+        except (TypeError, ValueError, KeyError):
+            continue
+        if getattr(kind, "value", kind) == "categorical":
+            out.append((str(expr), levels))
+    return out
+
+
+def _factor_column(expr: str, columns: Any) -> str | None:
+    """The data column a categorical factor reads: the factor itself (a column name, in
+    backticks or not) or the first argument of ``C(...)``; None for anything computed."""
+    e = expr.strip()
+    m = _C_CALL.fullmatch(e)
+    name = m.group(1) if m else e
+    if len(name) > 1 and name[0] == name[-1] == "`":
+        name = name[1:-1]
+    return name if name in columns else None
+
+
+def _levels_text(levels: list[Any]) -> str:
+    shown = ", ".join(repr(v) for v in levels[:_SHOW_LEVELS])
+    more = len(levels) - _SHOW_LEVELS
+    return shown + (f", ... ({more} more, {len(levels)} in all)" if more > 0 else "")
+
+
+def _check_categories(spec: _Spec, frame: pd.DataFrame) -> bool:
+    """Refuses new data whose categorical columns hold a missing value or a level the fit has no
+    coefficient for (formulaic would encode either as the reference level, silently). Returns
+    whether some categorical factor could not be traced to one column (left to formulaic's
+    warning)."""
+    unchecked = False
+    for expr, levels in _categorical_factors(spec.model_spec):
+        col = _factor_column(expr, frame.columns)
+        if col is None:
+            unchecked = True
+            continue
+        values = frame[col]
+        missing = values.isna().to_numpy()
+        bad = missing | ~values.isin(levels).to_numpy()
+        if not bad.any():
+            continue
+        rows = np.flatnonzero(bad)
+        raw = values.to_numpy()
+        shown = ", ".join(
+            ("a missing value" if missing[r] else repr(raw[r])) + f" (row {r})" for r in rows[:_SHOW_VALUES]
+        )
+        if len(rows) > _SHOW_VALUES:
+            shown += f", ... ({len(rows)} rows in all)"
+        odd = list(dict.fromkeys(None if missing[r] else raw[r] for r in rows))
+        raise InputError(
+            f"equation '{spec.name}': column {col!r} of the new data has values the fit has no "
+            f"coefficient for: {shown}. A missing value or a level not seen in the estimation "
+            f"sample cannot be predicted (it would count as the reference level); the known "
+            f"levels are {_levels_text(levels)}. Map those rows to a known level or drop them",
+            equation=spec.name,
+            column=col,
+            values=odd,
+            rows=[int(r) for r in rows],
+            levels=levels,
+        )
+    return unchecked
+
+
+def _raise_on_mismatch(spec: _Spec, caught: list[Any], unchecked: bool) -> None:
+    """Turns formulaic's warning about categories outside the fitted levels into an error;
+    passes on any other warning recorded while the formula was applied."""
+    try:
+        from formulaic.errors import DataMismatchWarning
+    except ImportError:  # pragma: no cover - an older formulaic
+        DataMismatchWarning = ()  # type: ignore[assignment]  # noqa: N806
+    for w in caught:
+        if DataMismatchWarning and issubclass(w.category, DataMismatchWarning):
+            found = re.search(r"dataset\):\s*(.*?)\.\s*They are", str(w.message), re.S)
+            detail = found.group(1) if found else str(w.message).splitlines()[0]
+            raise InputError(
+                f"equation '{spec.name}': a categorical term of the formula {spec.formula!r} "
+                f"gets values in the new data that the fit has no coefficient for: {detail}; "
+                "a missing value or a level not seen in the estimation sample cannot be "
+                "predicted (it would count as the reference level): map those rows to a known "
+                "level or drop them",
+                equation=spec.name,
+                column=None,
+            )
+    for w in caught:
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno, source=w.source)
+
+
 def expand_new(system: Any, new: Any) -> Any:
     """For a table-built system, turns one new table into ``{equation: regressor DataFrame}``
     (formulas re-applied with the categories and transform state learned at fit time).
@@ -520,8 +622,18 @@ def expand_new(system: Any, new: Any) -> Any:
             if v not in table.columns:
                 raise _unknown(table, s.name, v, "the name", "used in the formula is not a column of the new data")
         frame = table.frame([v for v in rhs_vars], None)
+        unchecked = _check_categories(s, frame)
         try:
-            X = s.model_spec.get_model_matrix(frame, na_action="ignore")
+            if unchecked:
+                # categories of a term not read from one column (C(a + b), a transform): let
+                # formulaic's own warning about values outside the fitted levels stop the
+                # prediction instead of their silent encoding as the reference level
+                with warnings.catch_warnings(record=True) as caught:
+                    warnings.simplefilter("always")
+                    X = s.model_spec.get_model_matrix(frame, na_action="ignore")
+            else:
+                caught = []
+                X = s.model_spec.get_model_matrix(frame, na_action="ignore")
         except Exception as err:  # formulaic raises several kinds here
             raise FormulaError(
                 f"equation '{s.name}': cannot apply the formula {s.formula!r} to the new data: "
@@ -529,5 +641,6 @@ def expand_new(system: Any, new: Any) -> Any:
                 equation=s.name,
                 formula=s.formula,
             ) from None
+        _raise_on_mismatch(s, caught, unchecked)
         out[s.name] = pd.DataFrame(np.asarray(X, dtype=float), index=table.index, columns=[str(c) for c in X.columns])
     return out

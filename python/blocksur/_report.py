@@ -95,6 +95,34 @@ def _level(level: float) -> str:
     return f"{100 * level:g}%"
 
 
+# Narrowest text report: the coefficient rows take 72 columns besides the regressor name, which
+# gets at least 8; the widest is generous (a wider request is a mistake, and each rule line costs it).
+MIN_WIDTH = 80
+MAX_WIDTH = 1000
+MAX_DIGITS = 15
+
+
+def _whole(name: str, value: Any, low: int, high: int | None = None, allow_none: bool = False,
+           none_means: str = "") -> int | None:
+    """A whole-number option in [low, high], or None where allowed; InvalidOptionError otherwise."""
+    from .errors import InvalidOptionError
+
+    if value is None and allow_none:
+        return None
+    ok = isinstance(value, (int, np.integer)) and not isinstance(value, (bool, np.bool_))
+    if not ok or value < low or (high is not None and value > high):
+        allowed = f"from {low} to {high}" if high is not None else f">= {low}"
+        extra = f", or None {none_means}" if allow_none else ""
+        raise InvalidOptionError(f"{name} must be a whole number {allowed}{extra}; got {value!r}")
+    return int(value)
+
+
+def _check_level(level: Any) -> None:
+    from ._fit import check_level
+
+    check_level(level)
+
+
 # -- the facts a report shows (shared by text and HTML) ----------------------------------------------
 def _header(fit: "SystemFit", level: float) -> list[tuple[str, str]]:
     rows = []
@@ -195,10 +223,16 @@ def _caution(fit: "SystemFit") -> str:
 
 
 # -- plain text ------------------------------------------------------------------------------------
-def text_report(fit: "SystemFit", level: float = 0.95, max_equations: int = 12, width: int = 100,
+def text_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None = 12, width: int = 100,
                 max_corr: int = 8) -> str:
-    """The fit as plain text, no line longer than ``width`` (at least 80) characters."""
-    width = max(int(width), 80)
+    """The fit as plain text, no line longer than ``width`` (80 to 1000) characters;
+    ``max_equations=None`` shows every equation."""
+    _check_level(level)
+    width = _whole("width", width, MIN_WIDTH, MAX_WIDTH)
+    max_equations = _whole("max_equations", max_equations, 1, allow_none=True, none_means="for all equations")
+    max_corr = _whole("max_corr", max_corr, 1)
+    if max_equations is None:
+        max_equations = fit.n_eq
     out: list[str] = []
     wrap_label = 15
 
@@ -295,8 +329,15 @@ def _corr_color(v: float) -> str:
     return f"background:rgba({rgb},{a:.2f})"
 
 
-def html_report(fit: "SystemFit", level: float = 0.95, max_equations: int = 12, max_corr: int = 15) -> str:
-    """The fit as one well-formed HTML fragment (every tag closed, text escaped)."""
+def html_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None = 12,
+                max_corr: int = 15) -> str:
+    """The fit as one well-formed HTML fragment (every tag closed, text escaped);
+    ``max_equations=None`` shows every equation."""
+    _check_level(level)
+    max_equations = _whole("max_equations", max_equations, 1, allow_none=True, none_means="for all equations")
+    max_corr = _whole("max_corr", max_corr, 1)
+    if max_equations is None:
+        max_equations = fit.n_eq
     h: list[str] = [f'<div class="bsr"><style>{_STYLE}</style>']
     h.append(f"<h4>SUR system fit <small>({fit.n_eq} equations, {fit.n_obs} rows, {_e(fit.method)})</small></h4>")
     h.append('<table class="head"><tbody>')
@@ -358,6 +399,8 @@ def html_report(fit: "SystemFit", level: float = 0.95, max_equations: int = 12, 
 
 # -- Markdown and LaTeX -----------------------------------------------------------------------------
 def _rows(fit: "SystemFit", level: float, digits: int) -> list[list[str]]:
+    _check_level(level)
+    digits = _whole("digits (significant digits shown)", digits, 1, MAX_DIGITS)
     t = fit.coef_table(level)
     out = []
     for (eq, reg), row in t.iterrows():
@@ -371,6 +414,7 @@ def _rows(fit: "SystemFit", level: float, digits: int) -> list[list[str]]:
 
 def markdown_table(fit: "SystemFit", level: float = 0.95, digits: int = 4) -> str:
     """The coefficient table as a Markdown pipe table (one row per coefficient)."""
+    rows = _rows(fit, level, digits)
     stat = "z" if fit.inference == "z" else "t"
     lv = _level(level)
     head = ["equation", "regressor", "estimate", "s.e.", stat, "p-value", f"{lv} lower", f"{lv} upper"]
@@ -379,7 +423,7 @@ def markdown_table(fit: "SystemFit", level: float = 0.95, digits: int = 4) -> st
         return s.replace("\\", "\\\\").replace("|", "\\|")
 
     lines = ["| " + " | ".join(head) + " |", "|" + "|".join([":---", ":---"] + ["---:"] * 6) + "|"]
-    for row in _rows(fit, level, digits):
+    for row in rows:
         lines.append("| " + " | ".join(cell(c) for c in row) + " |")
     return "\n".join(lines) + "\n"
 
@@ -396,6 +440,12 @@ def _tex(s: str) -> str:
 def latex_table(fit: "SystemFit", level: float = 0.95, digits: int = 4, caption: str | None = None,
                 label: str | None = None) -> str:
     """The coefficient table as a LaTeX ``table`` (needs ``\\usepackage{booktabs}``)."""
+    from .errors import InvalidOptionError
+
+    for name, value in (("caption", caption), ("label", label)):
+        if value is not None and not isinstance(value, str):
+            raise InvalidOptionError(f"{name} must be a string or None, got {type(value).__name__}")
+    rows = _rows(fit, level, digits)
     stat = "$z$" if fit.inference == "z" else "$t$"
     lv = _tex(_level(level))
     out = [r"\begin{table}[htbp]", r"\centering"]
@@ -406,7 +456,7 @@ def latex_table(fit: "SystemFit", level: float = 0.95, digits: int = 4, caption:
     out += [r"\begin{tabular}{llrrrrl}", r"\toprule",
             rf"Equation & Regressor & Estimate & S.E. & {stat} & $p$-value & {lv} interval \\", r"\midrule"]
     prev = None
-    for eq, reg, est, se, st, p, lo, hi in _rows(fit, level, digits):
+    for eq, reg, est, se, st, p, lo, hi in rows:
         if prev is not None and eq != prev:
             out.append(r"\addlinespace")
         first = _tex(eq) if eq != prev else ""

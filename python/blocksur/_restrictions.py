@@ -195,15 +195,33 @@ def parse_restrictions(
     """Builds R and q from the string syntax or from an ``(R, q)`` pair of arrays."""
     k = sum(len(r) for r in regressors)
     if isinstance(spec, tuple) and len(spec) == 2 and not isinstance(spec[0], str):
-        r = np.atleast_2d(np.asarray(spec[0], dtype=float))
-        q = np.atleast_1d(np.asarray(spec[1], dtype=float))
+        try:
+            r = np.atleast_2d(np.asarray(spec[0], dtype=float))
+            q = np.atleast_1d(np.asarray(spec[1], dtype=float))
+        except (TypeError, ValueError):
+            raise RestrictionError(
+                f"R and q must be arrays of numbers: R of shape (m, {k}) (one column per "
+                "coefficient) and q of length m"
+            ) from None
         if r.ndim != 2 or r.shape[1] != k or q.shape != (r.shape[0],):
             raise RestrictionError(
                 f"R must have shape (m, {k}) (one column per coefficient) and q length m; "
                 f"got R {r.shape} and q {q.shape}"
             )
+        if not (np.all(np.isfinite(r)) and np.all(np.isfinite(q))):
+            raise RestrictionError("the restrictions contain NaN or infinite values")
         texts = tuple(f"row {i} of R" for i in range(r.shape[0]))
-        return RestrictionSet(r, q, texts)
+        rset = RestrictionSet(r, q, texts)
+        for i in range(r.shape[0]):
+            if not np.any(r[i]):
+                raise RestrictionError(f"{rset.describe(i)} mentions no coefficient", index=i)
+        return rset
+    if not isinstance(spec, (str, Sequence)) or isinstance(spec, (bytes, bytearray)):
+        raise TypeError(
+            "restrictions must be a restriction string such as 'north.price = south.price' "
+            "(several separated by ';'), a list of such strings, or an (R, q) pair of arrays "
+            f"with R over the order of SystemFit.coef; got {type(spec).__name__}"
+        )
     items = _split(spec)  # type: ignore[arg-type]
     if not items:
         raise RestrictionError("no restrictions were given")

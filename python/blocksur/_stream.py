@@ -52,7 +52,7 @@ from ._frame import CONSTANT_NAME, _numeric, _parse_specs, _Table, _unknown
 from ._progress import _wanted as progress_wanted
 from ._estimation import COND_WARN as _COND_WARN
 from ._estimation import run_estimation
-from ._system import SystemLabels, _as_float
+from ._system import SystemLabels, _as_float, _real_number, _whole_number
 from .errors import (
     DataNotKeptError,
     FormulaError,
@@ -107,14 +107,8 @@ def check_options(method: str, omega: str, tol: Any, max_iter: Any, restrictions
         )
     if shrink_target not in ("diagonal", "identity"):
         raise InvalidOptionError(f"unknown shrink_target {shrink_target!r}: use 'diagonal' or 'identity'")
-    if isinstance(max_iter, bool) or not isinstance(max_iter, (int, np.integer)) or max_iter < 1:
-        raise InvalidOptionError(f"max_iter must be a whole number >= 1, got {max_iter!r}")
-    try:
-        tol = float(tol)
-    except (TypeError, ValueError):
-        raise InvalidOptionError(f"tol must be a number >= 0, got {tol!r}") from None
-    if not (np.isfinite(tol) and tol >= 0):
-        raise InvalidOptionError(f"tol must be a finite number >= 0, got {tol!r}")
+    max_iter = _whole_number("max_iter", max_iter)
+    tol = _real_number("tol", tol, positive=False)
     if inference not in ("z", "t"):
         raise InvalidOptionError(f"unknown inference {inference!r}: use 'z' (normal) or 't'")
     core_omega = f"lw-{shrink_target}" if omega == "ledoit-wolf" else omega

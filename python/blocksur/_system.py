@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from . import _core
-from .errors import IllConditionedWarning, InvalidOptionError, ShapeMismatchError
+from .errors import IllConditionedWarning, InputError, InvalidOptionError, ShapeMismatchError
 from ._fit import SystemFit
 from ._progress import close as close_hook
 from ._progress import progress_hook
@@ -46,6 +46,68 @@ def _default_memory_limit() -> float:
 
 
 _F64 = np.dtype(np.float64)
+# The largest count (max_iter, cg_max_iter) the compiled core takes: a usize.
+_MAX_COUNT = int(np.iinfo(np.uintp).max)
+
+
+def _whole_number(option: str, value: Any) -> int:
+    """A count option (``max_iter``, ``cg_max_iter``): a whole number from 1 to the core's
+    limit."""
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)):
+        raise InvalidOptionError(
+            f"{option} must be a whole number >= 1 (an int, not {type(value).__name__}), "
+            f"got {value!r}"
+        )
+    if not 1 <= value <= _MAX_COUNT:
+        raise InvalidOptionError(
+            f"{option} must be a whole number from 1 to {_MAX_COUNT} (the largest count the "
+            f"compiled core takes), got {value!r}"
+        )
+    return int(value)
+
+
+def _real_number(option: str, value: Any, *, positive: bool, extra: str = "") -> float:
+    """A finite real option (``tol``, ``cg_tol``, ``memory_limit``): >= 0, or > 0 if positive.
+    Strings and booleans are refused: ``True`` is not a tolerance."""
+    allowed = f"a finite number {'> 0' if positive else '>= 0'}{extra}"
+    if isinstance(value, (bool, np.bool_, str, bytes)):
+        raise InvalidOptionError(
+            f"{option} must be {allowed}, not {type(value).__name__} {value!r}"
+        )
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        raise InvalidOptionError(f"{option} must be {allowed}, got {value!r}") from None
+    if not (math.isfinite(number) and (number > 0 if positive else number >= 0)):
+        raise InvalidOptionError(f"{option} must be {allowed}, got {value!r}")
+    return number
+
+
+def _name_list(where: str, value: Any) -> list[str]:
+    """One equation's regressor names: a list (any iterable but a string) of names."""
+    if isinstance(value, (str, bytes)):
+        raise InvalidOptionError(
+            f"{where} must be a list of names, one per column of X, not the string {value!r} "
+            f"(a string is not split into names: write [{value!r}] for one regressor)"
+        )
+    try:
+        return [str(v) for v in value]
+    except TypeError:
+        raise InvalidOptionError(
+            f"{where} must be a list of names, one per column of X, not "
+            f"{type(value).__name__} {value!r}"
+        ) from None
+
+
+def _may_alias(value: Any, arr: np.ndarray) -> bool:
+    """Whether ``arr = np.asarray(value)`` (float64 already, no conversion) may read the
+    caller's memory. Python lists are built into a new array, and so is a DataFrame of several
+    dtypes (its columns are interleaved); arrays, Series and one-dtype DataFrames give views."""
+    if isinstance(value, (list, tuple)):
+        return False
+    if isinstance(value, pd.DataFrame) and value.shape[1] > 0:
+        return bool(np.may_share_memory(arr, value.iloc[:, 0].to_numpy()))
+    return True
 
 
 @functools.lru_cache(maxsize=64)
@@ -53,9 +115,13 @@ def _default_regressors(k: int) -> tuple[str, ...]:
     return tuple(f"x{j}" for j in range(k))
 
 
-def _as_float(name: str, what: str, value: Any, ndim: int) -> np.ndarray:
+def _as_float(name: str, what: str, value: Any, ndim: int, copy: bool = False) -> np.ndarray:
+    """``value`` as a float64 array of ``ndim`` dimensions (any strides), checked. With
+    ``copy=True`` the result never shares memory with ``value``: it is copied here unless the
+    conversion already made a new array (so at most one copy), keeping its memory order."""
     if type(value) is np.ndarray and value.ndim == ndim and value.dtype == _F64:
-        return value  # already what the core reads (any strides): nothing to check or convert
+        # already what the core reads (any strides): nothing to check or convert
+        return value.copy(order="K") if copy else value
     if np.ma.isMaskedArray(value) and np.ma.getmaskarray(value).any():
         raise ShapeMismatchError(
             f"equation '{name}': the {what} is a masked array with masked values; fill them or "
@@ -81,7 +147,72 @@ def _as_float(name: str, what: str, value: Any, ndim: int) -> np.ndarray:
             f"equation '{name}': the {what} has shape {arr.shape}; expected {shape}",
             equation=name,
         )
-    return np.asarray(arr, dtype=np.float64)  # no copy when already float64, any strides
+    out = np.asarray(arr, dtype=np.float64)  # no copy when already float64, any strides
+    if copy and arr.dtype == _F64 and _may_alias(value, out):
+        out = out.copy(order="K")
+    return out
+
+
+def _read_only(arr: np.ndarray) -> np.ndarray:
+    """A read-only view of ``arr`` (the caller's own array keeps its flags)."""
+    view = arr.view()
+    view.flags.writeable = False
+    return view
+
+
+def _check_indexes(
+    name: str, y: Any, X: Any, first: tuple[pd.Index, str] | None
+) -> tuple[pd.Index, str] | None:
+    """Refuses pandas row indexes that differ, within an equation or from the first one seen
+    (rows are paired by position). Indexes of other lengths are left to the length check.
+    Returns the first (index, equation) seen so far."""
+    how = (
+        "blocksur pairs rows by position, not by label: reset the indexes "
+        "(.reset_index(drop=True)) or align them (e.g. y, X = y.align(X, join='inner', axis=0)) "
+        "first"
+    )
+    y_idx = y.index if isinstance(y, (pd.Series, pd.DataFrame)) else None
+    x_idx = X.index if isinstance(X, (pd.Series, pd.DataFrame)) else None
+    if y_idx is not None and x_idx is not None and len(y_idx) == len(x_idx):
+        if not y_idx.equals(x_idx):
+            raise ShapeMismatchError(
+                f"equation '{name}': the row indexes of y and X differ; {how}", equation=name
+            )
+    for idx in (y_idx, x_idx):
+        if idx is None:
+            continue
+        if first is None:
+            first = (idx, name)
+        elif len(idx) == len(first[0]) and not idx.equals(first[0]):
+            raise ShapeMismatchError(
+                f"equation '{name}': its row index differs from that of equation '{first[1]}'; "
+                f"{how}",
+                equation=name,
+            )
+    return first
+
+
+def _unrepresentable(name: str, X: np.ndarray, regressors: list[str]) -> InputError:
+    """The error for an equation whose condition number came back infinite: a regressor column
+    too small to scale to unit length (its values subnormal, below 2.2e-308 in magnitude)."""
+    tiny = np.finfo(np.float64).tiny
+    for j, reg in enumerate(regressors):
+        top = float(np.max(np.abs(X[:, j]))) if X.shape[0] else 0.0
+        if 0.0 < top < tiny:
+            return InputError(
+                f"equation '{name}': the values of regressor '{reg}' are too small to represent "
+                f"in double precision (subnormal: largest magnitude {top:.3g}, below {tiny:.3g}), "
+                "so its coefficient would overflow; rescale the column (express it in larger "
+                "units)",
+                equation=name,
+                column=reg,
+            )
+    return InputError(
+        f"equation '{name}': the condition number of the regressors is infinite (a column too "
+        "small or too large to represent in double precision); rescale the regressors",
+        equation=name,
+        column=None,
+    )
 
 
 class SystemLabels:
@@ -117,9 +248,21 @@ class EquationSystem(SystemLabels):
         ``y`` has shape (T,), ``X`` shape (T, K_i); any float or integer dtype, C or Fortran
         order, strided views. pandas objects are accepted: the column names of a DataFrame ``X``
         name its regressors and the index of ``y`` labels the rows of residuals and fitted values.
+        The row indexes of pandas inputs must agree (``y`` with ``X``, and across equations):
+        rows are paired by position, so indexes that differ raise
+        :class:`~blocksur.errors.ShapeMismatchError`; reset or align them first.
     regressor_names
         Optional names of the columns of each ``X``: a dict ``{equation: [names]}`` or a list of
-        lists in equation order. Defaults to the DataFrame columns, else ``x0, x1, ...``.
+        lists in equation order. Defaults to the DataFrame columns (the name of a Series ``X``),
+        else ``x0, x1, ...``.
+    copy
+        ``True`` (default): the system keeps its own copy of the data, made once (none more when
+        a conversion to float64 already made a new array), so later edits of the arrays given
+        do not reach it or its fits. ``False``: arrays that are already float64 are kept by
+        reference, which saves memory on very large data; they must then not be modified while
+        the system or any of its fits is in use (a fit caches its preparation, and residuals and
+        fitted values are computed later from the data). Either way the system stores read-only
+        arrays (views, when kept by reference: your own arrays stay writeable).
 
     Example
     -------
@@ -139,7 +282,11 @@ class EquationSystem(SystemLabels):
         self,
         equations: Mapping[str, tuple[Any, Any]] | Sequence[tuple[Any, Any]],
         regressor_names: Mapping[str, Sequence[str]] | Sequence[Sequence[str]] | None = None,
+        *,
+        copy: bool = True,
     ) -> None:
+        if not isinstance(copy, (bool, np.bool_)):
+            raise InvalidOptionError(f"copy must be True or False, got {copy!r}")
         if isinstance(equations, Mapping):
             items = [(str(k), v) for k, v in equations.items()]
         elif isinstance(equations, Sequence) and not isinstance(equations, (str, bytes)):
@@ -157,21 +304,35 @@ class EquationSystem(SystemLabels):
                     f"regressor_names mentions unknown equations {sorted(unknown)}; "
                     f"the equations are {names}"
                 )
-            given = {str(k): list(map(str, v)) for k, v in regressor_names.items()}
+            given = {
+                str(k): _name_list(f"regressor_names[{str(k)!r}]", v)
+                for k, v in regressor_names.items()
+            }
         elif regressor_names is None:
             given = {}
         else:
+            if isinstance(regressor_names, (str, bytes)) or not hasattr(
+                regressor_names, "__iter__"
+            ):
+                raise InvalidOptionError(
+                    "regressor_names must be a dict {equation: [names]} or a list of name lists "
+                    f"in equation order, not {type(regressor_names).__name__} {regressor_names!r}"
+                )
             lists = list(regressor_names)
             if len(lists) != len(items):
                 raise ShapeMismatchError(
                     f"regressor_names has {len(lists)} entries for {len(items)} equations"
                 )
-            given = {n: list(map(str, r)) for n, r in zip(names, lists)}
+            given = {
+                n: _name_list(f"regressor_names[{i}] (equation '{n}')", r)
+                for i, (n, r) in enumerate(zip(names, lists))
+            }
 
         self._ys: list[np.ndarray] = []
         self._xs: list[np.ndarray] = []
         self._regressors: list[list[str]] = []
         self._index: pd.Index | None = None
+        first: tuple[pd.Index, str] | None = None  # the first pandas row index, its equation
         for name, pair in items:
             if not ((type(pair) is tuple or isinstance(pair, Sequence)) and len(pair) == 2):
                 raise ShapeMismatchError(
@@ -180,12 +341,15 @@ class EquationSystem(SystemLabels):
             y, X = pair
             if self._index is None and isinstance(y, (pd.Series, pd.DataFrame)):
                 self._index = y.index
-            yv = _as_float(name, "dependent variable", y, 1)
-            Xv = _as_float(name, "regressor matrix", X, 2)
+            first = _check_indexes(name, y, X, first)
+            yv = _as_float(name, "dependent variable", y, 1, copy=copy)
+            Xv = _as_float(name, "regressor matrix", X, 2, copy=copy)
             if name in given:
                 regs = given[name]
             elif isinstance(X, pd.DataFrame):
                 regs = [str(c) for c in X.columns]
+            elif isinstance(X, pd.Series) and X.name is not None:
+                regs = [str(X.name)]
             else:
                 regs = list(_default_regressors(Xv.shape[1]))
             if len(regs) != Xv.shape[1]:
@@ -193,8 +357,9 @@ class EquationSystem(SystemLabels):
                     f"equation '{name}': {len(regs)} regressor names for {Xv.shape[1]} columns",
                     equation=name,
                 )
-            self._ys.append(yv)
-            self._xs.append(Xv)
+            # read-only: no step of the library, and no user edit through a view, changes them
+            self._ys.append(_read_only(yv))
+            self._xs.append(_read_only(Xv))
             self._regressors.append(regs)
         self._names = names
         self._prepared: Any = None
@@ -231,12 +396,22 @@ class EquationSystem(SystemLabels):
         """
         from ._frame import build_system
 
-        return build_system(data, equations, constant=constant, context=context, cls=cls)
+        def make(eqs: Any, regressor_names: Any = None) -> "EquationSystem":
+            # the arrays were built from the table for this system alone: no second copy
+            return cls(eqs, regressor_names=regressor_names, copy=False)
+
+        return build_system(data, equations, constant=constant, context=context, cls=make)
 
     def __getstate__(self) -> dict[str, Any]:
         state = self.__dict__.copy()
         state["_prepared"] = None  # compiled; rebuilt by the next fit
         return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        # unpickled (or deep-copied) arrays are fresh and writeable: read-only again
+        self._ys = [_read_only(y) for y in self._ys]
+        self._xs = [_read_only(x) for x in self._xs]
 
     @property
     def sample_info(self) -> Any:
@@ -277,7 +452,11 @@ class EquationSystem(SystemLabels):
         return self._prepared.get(False) if isinstance(self._prepared, dict) else None
 
     def _warn_conditions(self, prepared: Any, stacklevel: int) -> None:
-        for name, cond in zip(self._names, prepared.conditions):
+        for name, cond, X, regs in zip(
+            self._names, prepared.conditions, self._xs, self._regressors
+        ):
+            if cond == math.inf:  # a column whose scaling overflows: refuse, naming it
+                raise _unrepresentable(name, X, regs)
             if cond > _COND_WARN:
                 warnings.warn(
                     f"equation '{name}': the regressors are ill-conditioned (condition number "
@@ -373,9 +552,11 @@ class EquationSystem(SystemLabels):
             of the basis W (8 T (K + N) bytes) with the GLS matrix in packed storage, and what
             the covariance takes afterwards (one K x K matrix, three for the robust kinds).
         memory_limit
-            Bytes the direct solver may use (default: half of the machine's memory).
+            Bytes the direct solver may use: a finite number > 0, or ``None`` for half of the
+            machine's memory.
         cg_tol, cg_max_iter
-            Conjugate gradients stop at this relative residual or iteration count.
+            Conjugate gradients stop at this relative residual (a finite number > 0) or
+            iteration count (a whole number >= 1).
         progress
             Progress bars (tqdm) for the data pass and the GLS steps of an iterated fit:
             ``True``, ``False``, or ``None`` for on only when standard error is a terminal.
@@ -400,8 +581,17 @@ class EquationSystem(SystemLabels):
             )
         if solver not in ("auto", "direct", "cg"):
             raise InvalidOptionError(f"unknown solver {solver!r}: use 'auto', 'direct' or 'cg'")
+        max_iter = _whole_number("max_iter", max_iter)
+        cg_max_iter = _whole_number("cg_max_iter", cg_max_iter)
+        tol = _real_number("tol", tol, positive=False)
+        cg_tol = _real_number("cg_tol", cg_tol, positive=True)
         if memory_limit is None:
             memory_limit = _default_memory_limit()
+        else:
+            memory_limit = _real_number(
+                "memory_limit", memory_limit, positive=True,
+                extra=" of bytes, or None for half of the machine's memory",
+            )
         k = sum(len(r) for r in self._regressors)
         one_pass = (
             method == "fgls" and restrictions is None and omega in ("ml", "dof")
@@ -415,14 +605,6 @@ class EquationSystem(SystemLabels):
                 "use solver='direct' or covariance='classical'"
             )
         core_omega = {"ledoit-wolf": f"lw-{shrink_target}"}.get(omega, omega)
-        if isinstance(max_iter, bool) or not isinstance(max_iter, (int, np.integer)) or max_iter < 1:
-            raise InvalidOptionError(f"max_iter must be a whole number >= 1, got {max_iter!r}")
-        try:
-            tol = float(tol)
-        except (TypeError, ValueError):
-            raise InvalidOptionError(f"tol must be a number >= 0, got {tol!r}") from None
-        if not (math.isfinite(tol) and tol >= 0):
-            raise InvalidOptionError(f"tol must be a finite number >= 0, got {tol!r}")
         if covariance not in _COVARIANCES:
             raise InvalidOptionError(
                 f"unknown covariance {covariance!r}: use 'classical', 'hc0' or 'hc1'"

@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 
 from ._system import SystemLabels
+from ._fit import check_level
 from .errors import DataNotKeptError, InputError, InvalidOptionError
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -94,8 +95,7 @@ def forecast_table(fit: "SystemFit", new: Any, level: float = 0.95, interval: st
     errors assumed)."""
     if interval not in ("mean", "observation"):
         raise InvalidOptionError(f"interval must be 'mean' or 'observation', got {interval!r}")
-    if not (0 < level < 1):
-        raise InvalidOptionError(f"level must be between 0 and 1, got {level!r}")
+    check_level(level)
     from scipy import stats
 
     pred = fit.predict(new)
@@ -334,7 +334,8 @@ class _RestoredSystem(SystemLabels):
 
             # a real system on the kept data: the same checks and options as the original
             eqs = {n: (y, x) for n, y, x in zip(self._names, self._ys, self._xs)}
-            self._prepared = EquationSystem(eqs, regressor_names=self._regressors)
+            # the restored arrays belong to this object alone: no copy
+            self._prepared = EquationSystem(eqs, regressor_names=self._regressors, copy=False)
         return self._prepared._prepare(*args, **kwargs)
 
 
