@@ -33,6 +33,10 @@ pub enum SurError {
     #[error("equation '{equation}': regressor '{column}' {detail}; drop it or reparameterise")]
     Collinear { equation: String, column: String, detail: String },
 
+    /// Values of a magnitude that leaves double precision no room for their sums of squares.
+    #[error("equation '{equation}': {detail}; rescale it to moderate units (divide or multiply by a power of ten: its coefficients scale with it)")]
+    Scale { equation: String, detail: String },
+
     /// The cross-equation covariance cannot be inverted.
     #[error("{detail}")]
     SingularOmega { equations: Vec<String>, detail: String },
@@ -64,6 +68,7 @@ impl SurError {
             SurError::TooFewObservations { .. } => "TooFewObservationsError",
             SurError::Collinear { .. } => "CollinearityError",
             SurError::SingularOmega { .. } => "SingularOmegaError",
+            SurError::Scale { .. } => "InputError",
             SurError::InvalidRestriction { .. } => "RestrictionError",
             SurError::InvalidOption(_) => "InvalidOptionError",
             SurError::Numerical { .. } => "NumericalError",

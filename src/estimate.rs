@@ -154,12 +154,14 @@ struct NullSpace {
     d0: Array1<f64>,
 }
 
-/// The pieces of a restricted fit: the null space and (G'WG)^-1 of its last step.
+/// The pieces of a restricted fit: the null space and, from its last step, the QR factors of
+/// F = L'G (W = L L'; F = G when W = I): R_F^-1 (p x p) and Q_F (K x p).
 #[derive(Debug, Clone)]
 struct RestrictedParts {
     space: NullSpace,
     theta: Array1<f64>,
-    a_inv: Array2<f64>,
+    rf_inv: Array2<f64>,
+    qf: Array2<f64>,
 }
 
 /// The result of one estimation.
@@ -505,27 +507,69 @@ impl Prepared {
     fn null_space(&self, rs: &Restrictions) -> Result<NullSpace> {
         use ndarray_linalg::SVD;
         let (m, k) = rs.r.dim();
-        // Coefficients no restriction mentions keep their own unit directions in N; only the
-        // mentioned ones share the SVD null space, so rounding never mixes the two groups.
+        let dependent = || SurError::InvalidRestriction { index: None, detail: "are linearly dependent".into() };
+        // Coefficients no restriction mentions keep their own unit directions in N. The others
+        // fall into groups that restrictions link (two coefficients in one restriction are in
+        // one group), and each group gets the SVD null space of its own restrictions: a
+        // direction of N never mixes coefficients that no restriction links, so a poorly
+        // determined coefficient does not leak into the variance of a well-determined one
+        // (one SVD over all of them had mixed the groups' directions arbitrarily).
         let involved: Vec<usize> = (0..k).filter(|&j| rs.r.column(j).iter().any(|v| *v != 0.0)).collect();
         let free: Vec<usize> = (0..k).filter(|j| !involved.contains(j)).collect();
-        let ri = rs.r.select(ndarray::Axis(1), &involved);
-        let ki = involved.len();
-        let (_, _, vt) = ri.svd(false, true).map_err(|e| SurError::numerical("SVD of the restrictions", e))?;
-        let vt = vt.ok_or_else(|| SurError::numerical("SVD of the restrictions", "no right singular vectors"))?;
+        let mut group: Vec<usize> = (0..k).collect();
+        fn root(group: &mut [usize], mut j: usize) -> usize {
+            while group[j] != j {
+                group[j] = group[group[j]];
+                j = group[j];
+            }
+            j
+        }
+        for row in rs.r.rows() {
+            let mut first = None;
+            for (j, v) in row.iter().enumerate() {
+                if *v != 0.0 {
+                    let rj = root(&mut group, j);
+                    match first {
+                        None => first = Some(rj),
+                        Some(f) => group[rj] = f,
+                    }
+                }
+            }
+        }
         let mut n = Array2::<f64>::zeros((k, k - m));
         for (c, &j) in free.iter().enumerate() {
             n[[j, c]] = 1.0;
         }
-        for c in 0..(ki - m) {
-            for (row, &j) in involved.iter().enumerate() {
-                n[[j, free.len() + c]] = vt[[m + c, row]];
+        let mut col = free.len();
+        let roots: Vec<usize> = involved.iter().map(|&j| root(&mut group, j)).collect();
+        let mut seen = Vec::new();
+        for &g in &roots {
+            if seen.contains(&g) {
+                continue;
             }
+            seen.push(g);
+            let members: Vec<usize> = involved.iter().zip(&roots).filter(|(_, r)| **r == g).map(|(j, _)| *j).collect();
+            let rows: Vec<usize> = (0..m).filter(|&i| members.iter().any(|&j| rs.r[[i, j]] != 0.0)).collect();
+            if rows.len() > members.len() || col + members.len() - rows.len() > k - m {
+                return Err(dependent());
+            }
+            let rg = rs.r.select(ndarray::Axis(0), &rows).select(ndarray::Axis(1), &members);
+            let (_, _, vt) = rg.svd(false, true).map_err(|e| SurError::numerical("SVD of the restrictions", e))?;
+            let vt = vt.ok_or_else(|| SurError::numerical("SVD of the restrictions", "no right singular vectors"))?;
+            for c in 0..(members.len() - rows.len()) {
+                for (pos, &j) in members.iter().enumerate() {
+                    n[[j, col + c]] = vt[[rows.len() + c, pos]];
+                }
+            }
+            col += members.len() - rows.len();
         }
+        if col != k - m {
+            return Err(dependent());
+        }
+        let ri = rs.r.select(ndarray::Axis(1), &involved);
         let mut rrt = ri.dot(&ri.t());
         symmetrize(&mut rrt);
-        let l = chol_lower(crate::linalg::to_fortran(&rrt))
-            .ok_or_else(|| SurError::InvalidRestriction { index: None, detail: "are linearly dependent".into() })?;
+        let l = chol_lower(crate::linalg::to_fortran(&rrt)).ok_or_else(dependent)?;
         let b0i = ri.t().dot(&chol_solve(&l, &rs.q)?);
         let mut b0 = Array1::<f64>::zeros(k);
         for (row, &j) in involved.iter().enumerate() {
@@ -547,22 +591,8 @@ impl Prepared {
     /// Solved as the least-squares problem min ||L'(d0 + G theta - delta_u)|| (W = L L') by QR
     /// of F = L'G, so the conditioning of G enters once, not squared as in the normal equations.
     fn restrict(&self, delta_u: &Array1<f64>, w: &Weight, space: &NullSpace) -> Result<(Array1<f64>, RestrictedParts)> {
-        let shared_factor;
-        let l = match w {
-            Weight::Identity => None,
-            Weight::Chol(l) => Some(l),
-            Weight::Packed(p) => {
-                shared_factor = p.to_full()?;
-                Some(&shared_factor)
-            }
-            Weight::Shared(_) => {
-                let m = self.weight_apply(w, &Array2::eye(self.n_coef()))?;
-                shared_factor = chol_lower(crate::linalg::to_fortran(&m))
-                    .ok_or_else(|| SurError::numerical("restricted estimation", "GLS matrix not positive definite"))?;
-                Some(&shared_factor)
-            }
-            Weight::MatrixFree => return Err(matrix_free_unsupported("restrictions")),
-        };
+        let factor = self.weight_factor(w)?;
+        let l = factor.as_deref();
         let gap = delta_u - &space.d0;
         let (f, c) = match l {
             None => (space.g.clone(), gap),
@@ -577,11 +607,26 @@ impl Prepared {
                 .into(),
         })?;
         let out = &space.d0 + &space.g.dot(&theta);
-        // (F'F)^-1 = R_F^-1 R_F^-T
-        let rinv = upper_inverse(&rf)?;
-        let mut a_inv = rinv.dot(&rinv.t());
-        symmetrize(&mut a_inv);
-        Ok((out, RestrictedParts { space: space.clone(), theta, a_inv }))
+        let rf_inv = upper_inverse(&rf)?;
+        Ok((out, RestrictedParts { space: space.clone(), theta, rf_inv, qf }))
+    }
+
+    /// The lower Cholesky factor L of the weight W = L L' (None for W = I).
+    fn weight_factor<'w>(&self, w: &'w Weight) -> Result<Option<std::borrow::Cow<'w, Array2<f64>>>> {
+        use std::borrow::Cow;
+        Ok(match w {
+            Weight::Identity => None,
+            Weight::Chol(l) => Some(Cow::Borrowed(l)),
+            Weight::Packed(p) => Some(Cow::Owned(p.to_full()?)),
+            Weight::Shared(_) => {
+                let m = self.weight_apply(w, &Array2::eye(self.n_coef()))?;
+                Some(Cow::Owned(
+                    chol_lower(crate::linalg::to_fortran(&m))
+                        .ok_or_else(|| SurError::numerical("restricted estimation", "GLS matrix not positive definite"))?,
+                ))
+            }
+            Weight::MatrixFree => return Err(matrix_free_unsupported("restrictions")),
+        })
     }
 
     /// Runs one estimation without restrictions.
@@ -658,7 +703,9 @@ impl Prepared {
                     (Weight::Chol(l), true) => Some(l),
                     _ => None,
                 };
-                let (unrestricted, sw, cond, cg) = self.gls_step(&oest, &delta, opts, cancel, warm, pending.take())?;
+                let (unrestricted, sw, cond, cg) = self
+                    .gls_step(&oest, &delta, opts, cancel, warm, pending.take())
+                    .map_err(|e| if n_iter > 0 { iterated_singular(e, n_iter) } else { e })?;
                 omega_cond = cond;
                 if let Some((its, res)) = cg {
                     cg_iterations.push(its);
@@ -697,12 +744,17 @@ impl Prepared {
                     break;
                 }
                 if n_iter < max_iter {
-                    oest = self.omega_at(&delta, &s, opts.divisor, data)?;
+                    oest = self.omega_at(&delta, &s, opts.divisor, data).map_err(|e| iterated_singular(e, n_iter))?;
                 }
             }
         }
         if let Some(m) = pending.take() {
             weight = Weight::Chol(self.factor_gls(m, true)?);
+        }
+        // a final step whose conjugate gradients stopped at cg_max_iter short of cg_tol is
+        // not a converged fit
+        if cg_residual > opts.cg_tol {
+            converged = false;
         }
         let OmegaEst { omega, shrinkage, .. } = oest;
         let gamma = &z + &delta;
@@ -967,30 +1019,20 @@ impl Prepared {
         Ok(v)
     }
 
-    /// Covariance of a restricted fit, in b coordinates: N Cov(theta) N' with
-    /// Cov(theta) = A^-1 G' B G A^-1, A = G'WG and B the covariance of the score W delta_u:
-    /// M for classical GLS, omega_ij Q_i'Q_j for classical OLS, the HC0 meat for robust kinds.
+    /// Covariance of a restricted fit, in b coordinates. With b = b0 + N theta,
+    /// theta = A^-1 G'(h - W d0), A = G'WG = R_F'R_F (F = L'G = Q_F R_F) and h the score of the
+    /// unrestricted step (W delta_u = h): A^-1 G' = R_F^-1 H' with H = L^-T Q_F (Q_F when W = I),
+    /// so Cov(b) = P (H' B H) P', P = N R_F^-1 and B = Cov(h): M for classical GLS (then
+    /// H'BH = I and Cov(b) = P P'), omega_ij Q_i'Q_j for classical OLS, the HC0 meat for the
+    /// robust kinds. The conditioning of the regressors enters once, through R_F^-1 (forming
+    /// A^-1 G'BG A^-1 from A^-1 had squared it: standard errors of nearly collinear, restricted
+    /// equations off by percents).
     fn restricted_covariance(&self, est: &Estimate, p: &RestrictedParts, kind: CovKind, data: Option<&SystemData>) -> Result<Array2<f64>> {
-        let g = &p.space.g;
-        let bg = match kind {
-            CovKind::Classical => match &est.weight {
-                Weight::Identity => self.classical_gamma_cov(est)?.dot(g),
-                w => self.weight_apply(w, g)?,
-            },
-            CovKind::Hc0 | CovKind::Hc1 => {
-                let data = data.ok_or_else(|| SurError::InvalidOption("a robust covariance needs the data".into()))?;
-                let mut meat = self.score_outer_product(est, data)?;
-                if kind == CovKind::Hc1 {
-                    let t = self.n_obs as f64;
-                    meat *= t / (t - self.n_coef() as f64 / self.n_eq() as f64);
-                }
-                meat.dot(g)
-            }
+        let (pmat, middle) = self.restricted_factors(est, p, kind, data)?;
+        let mut out = match middle {
+            None => pmat.dot(&pmat.t()),
+            Some(c) => pmat.dot(&c).dot(&pmat.t()),
         };
-        let mut mid = g.t().dot(&bg);
-        symmetrize(&mut mid);
-        let ct = p.a_inv.dot(&mid).dot(&p.a_inv);
-        let mut out = p.space.n.dot(&ct).dot(&p.space.n.t());
         // a coefficient fixed by a restriction of its own has exactly zero (co)variance
         for row in p.space.r.rows() {
             let nz: Vec<usize> = row.iter().enumerate().filter(|(_, x)| **x != 0.0).map(|(j, _)| j).collect();
@@ -1001,6 +1043,141 @@ impl Prepared {
         }
         symmetrize(&mut out);
         Ok(out)
+    }
+
+    /// The factors of `restricted_covariance`: P = N R_F^-1 (K x p) and H'BH (p x p; None when
+    /// it is the identity, classical GLS), Cov(b) = P (H'BH) P'.
+    fn restricted_factors(&self, est: &Estimate, p: &RestrictedParts, kind: CovKind, data: Option<&SystemData>) -> Result<(Array2<f64>, Option<Array2<f64>>)> {
+        use ndarray_linalg::{Diag, SolveTriangular, UPLO};
+        let pmat = p.space.n.dot(&p.rf_inv);
+        let middle = match (kind, &est.weight) {
+            (CovKind::Classical, Weight::Identity) => Some(self.classical_gamma_cov(est)?),
+            (CovKind::Classical, _) => None,
+            (CovKind::Hc0 | CovKind::Hc1, _) => {
+                let data = data.ok_or_else(|| SurError::InvalidOption("a robust covariance needs the data".into()))?;
+                let mut meat = self.score_outer_product(est, data)?;
+                if kind == CovKind::Hc1 {
+                    let t = self.n_obs as f64;
+                    meat *= t / (t - self.n_coef() as f64 / self.n_eq() as f64);
+                }
+                Some(meat)
+            }
+        };
+        let middle = match middle {
+            None => None,
+            Some(b) => {
+                let h = match self.weight_factor(&est.weight)? {
+                    None => p.qf.clone(),
+                    Some(l) => l
+                        .t()
+                        .solve_triangular(UPLO::Upper, Diag::NonUnit, &p.qf)
+                        .map_err(|e| SurError::numerical("restricted covariance", e))?,
+                };
+                let mut c = h.t().dot(&b.dot(&h));
+                symmetrize(&mut c);
+                Some(c)
+            }
+        };
+        Ok((pmat, middle))
+    }
+
+    /// For classical GLS with a Cholesky factor L of M (square or packed): `visit(i, x_i)` for
+    /// every equation i, x_i the rows from the equation's first of the columns of U = L^-1 that
+    /// belong to it (U is zero above them), so (M^-1)_ii = x_i' x_i. U is solved a panel of
+    /// whole equations at a time (columns c..d of U solve L[c.., c..] X = I[c.., c..d]): K^3/3
+    /// flops in all, as one trtri, but only a K x PANEL block in memory. Ok(false), visiting
+    /// nothing, for a weight without such a factor.
+    fn inverse_panels(&self, est: &Estimate, mut visit: impl FnMut(usize, ndarray::ArrayView2<f64>)) -> Result<bool> {
+        let panel: Option<PanelOfInverse<'_>> = match &est.weight {
+            Weight::Chol(l) => Some(Box::new(move |c, d| inverse_columns(l, c, d))),
+            Weight::Packed(p) => Some(Box::new(move |c, d| p.inverse_columns(c, d))),
+            _ => None,
+        };
+        let Some(inverse_columns) = panel else { return Ok(false) };
+        let n = self.n_eq();
+        let mut first = 0;
+        while first < n {
+            let c = self.offsets[first];
+            let mut last = first + 1;
+            while last < n && self.offsets[last + 1] - c <= PANEL {
+                last += 1;
+            }
+            let x = inverse_columns(c, self.offsets[last])?;
+            for i in first..last {
+                let (a, b) = (self.offsets[i] - c, self.offsets[i + 1] - c);
+                visit(i, x.slice(s![a.., a..b]));
+            }
+            first = last;
+        }
+        Ok(true)
+    }
+
+    /// Variances of the predicted means x'b_i for new regressor rows (`xs[i]`: m x K_i, the same
+    /// m for every equation), of the covariance kind given, without forming x V_ii x' from the
+    /// covariance matrix: along a nearly collinear direction of X_i that product cancels (V_ii
+    /// large, the variance small) and had lost three digits at condition 7e6. Here u = R_i^-T x
+    /// (the conditioning of X_i taken out by one triangular solve) meets the covariance of
+    /// gamma: classical GLS as |L^-1 panel u|^2, classical OLS as omega_ii |u|^2, the rest as
+    /// u' C_ii u; restricted fits as w' C w with w = P_i' x (P = N R_F^-1).
+    pub fn prediction_variances(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>, xs: &[ndarray::ArrayView2<f64>]) -> Result<Vec<Array1<f64>>> {
+        use ndarray_linalg::{Diag, SolveTriangular, UPLO};
+        self.check_matches(Some(est), data)?;
+        let n = self.n_eq();
+        if xs.len() != n || xs.iter().enumerate().any(|(i, x)| x.ncols() != self.k(i)) {
+            return Err(SurError::InvalidOption("new regressors: one m x K_i array per equation".into()));
+        }
+        let quad = |w: &Array2<f64>, c: &Array2<f64>| -> Array1<f64> {
+            // diag(w' C w) for the columns of w
+            let cw = c.dot(w);
+            Array1::from_iter(w.columns().into_iter().zip(cw.columns()).map(|(a, b)| a.dot(&b)))
+        };
+        if let Some(p) = &est.restricted {
+            let (pmat, middle) = self.restricted_factors(est, p, kind, data)?;
+            return Ok((0..n)
+                .map(|i| {
+                    let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+                    // w = P_i' x for each new row (p x m)
+                    let w = pmat.slice(s![a..b, ..]).t().dot(&xs[i].t());
+                    match &middle {
+                        None => w.map_axis(ndarray::Axis(0), |c| c.dot(&c)),
+                        Some(c) => quad(&w, c),
+                    }
+                })
+                .collect());
+        }
+        // u = R_i^-T x' (K_i x m) per equation
+        let us: Vec<Array2<f64>> = (0..n)
+            .map(|i| {
+                self.factors[i]
+                    .r
+                    .t()
+                    .solve_triangular(UPLO::Lower, Diag::NonUnit, &xs[i].t().to_owned())
+                    .map_err(|e| SurError::numerical("prediction variances", e))
+            })
+            .collect::<Result<_>>()?;
+        let sumsq = |u: &Array2<f64>| u.map_axis(ndarray::Axis(0), |c| c.dot(&c));
+        if kind == CovKind::Classical {
+            if matches!(self.cross, CrossProducts::MatrixFree { .. }) {
+                return Err(matrix_free_unsupported("prediction standard errors"));
+            }
+            let mut out = vec![Array1::zeros(0); n];
+            if self.inverse_panels(est, |i, x| out[i] = sumsq(&x.dot(&us[i])))? {
+                return Ok(out);
+            }
+            if matches!(est.weight, Weight::Identity) {
+                // omega_ii Q_i'Q_i = omega_ii I
+                return Ok(us.iter().enumerate().map(|(i, u)| sumsq(u) * est.omega[[i, i]]).collect());
+            }
+        }
+        let v = self.gamma_covariance(est, kind, data)?;
+        Ok(us
+            .iter()
+            .enumerate()
+            .map(|(i, u)| {
+                let (a, b) = (self.offsets[i], self.offsets[i + 1]);
+                quad(u, &v.slice(s![a..b, a..b]).to_owned())
+            })
+            .collect())
     }
 
     /// Sum over rows of s_t s_t', s_t stacking Q_i[t,:]' u_t[i], with u_t = Omega^-1 e_t for GLS
@@ -1079,38 +1256,26 @@ impl Prepared {
             return Ok(self.restricted_covariance(est, p, kind, data)?.diag().to_owned());
         }
         let rinv: Vec<Array2<f64>> = self.factors.iter().map(|f| upper_inverse(&f.r)).collect::<Result<_>>()?;
+        self.variances_with(est, kind, data, &rinv)
+    }
+
+    /// The variances of `coef_variances` with R_i^-1 given per equation (`rinv`): those of
+    /// b or, given the inverse factors of the column-scaled regressors, of b_j times the norm
+    /// of column j.
+    fn variances_with(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>, rinv: &[Array2<f64>]) -> Result<Array1<f64>> {
         let mut out = Array1::<f64>::zeros(self.n_coef());
         if kind == CovKind::Classical {
             if matches!(self.cross, CrossProducts::MatrixFree { .. }) {
                 return Err(matrix_free_unsupported("the covariance matrix"));
             }
-            let panel: Option<PanelOfInverse<'_>> = match &est.weight {
-                Weight::Chol(l) => Some(Box::new(move |c, d| inverse_columns(l, c, d))),
-                Weight::Packed(p) => Some(Box::new(move |c, d| p.inverse_columns(c, d))),
-                _ => None,
-            };
-            if let Some(inverse_columns) = panel {
-                // U = L^-1 a panel of whole equations at a time (columns c..d of U are zero
-                // above row c and solve L[c.., c..] X = I[c.., c..d]): K^3/3 flops in all, as
-                // one trtri, but only a K x PANEL block in memory.
-                let n = self.n_eq();
-                let mut first = 0;
-                while first < n {
-                    let c = self.offsets[first];
-                    let mut last = first + 1;
-                    while last < n && self.offsets[last + 1] - c <= PANEL {
-                        last += 1;
-                    }
-                    let x = inverse_columns(c, self.offsets[last])?;
-                    for (i, ri) in rinv.iter().enumerate().take(last).skip(first) {
-                        let (a, b) = (self.offsets[i] - c, self.offsets[i + 1] - c);
-                        let v = x.slice(s![a.., a..b]).dot(&ri.t());
-                        for (j, col) in v.columns().into_iter().enumerate() {
-                            out[c + a + j] = col.dot(&col);
-                        }
-                    }
-                    first = last;
+            let offsets = &self.offsets;
+            let visited = self.inverse_panels(est, |i, x| {
+                let v = x.dot(&rinv[i].t());
+                for (j, col) in v.columns().into_iter().enumerate() {
+                    out[offsets[i] + j] = col.dot(&col);
                 }
+            })?;
+            if visited {
                 return Ok(out);
             }
             for (i, ri) in rinv.iter().enumerate() {
@@ -1135,8 +1300,31 @@ impl Prepared {
     /// Standard errors of the coefficients b: square roots of `coef_variances`, with a
     /// variance that rounding leaves a hair below zero (a coefficient a restriction fixes) read
     /// as zero.
+    ///
+    /// Unrestricted fits take them from the column-scaled problem, se(b_j) = se(b_j |x_j|) /
+    /// |x_j| (|x_j| the norm of regressor j, the norm of column j of R_i): a regressor in units
+    /// of 1e+-200 has a standard error near 1e-+200 whose square is beyond double precision,
+    /// and squaring had given 0 or inf.
     pub fn coef_standard_errors(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array1<f64>> {
-        Ok(self.coef_variances(est, kind, data)?.mapv_into(|v| v.max(0.0).sqrt()))
+        self.check_matches(Some(est), data)?;
+        if est.restricted.is_some() {
+            return Ok(self.coef_variances(est, kind, data)?.mapv_into(|v| v.max(0.0).sqrt()));
+        }
+        let mut norms = Vec::with_capacity(self.n_coef());
+        let mut rinv = Vec::with_capacity(self.n_eq());
+        for f in &self.factors {
+            let mut rs = f.r.clone();
+            for mut col in rs.columns_mut() {
+                let nj = crate::linalg::scaled_norm(&col.to_vec());
+                norms.push(nj);
+                if nj > 0.0 && nj.is_finite() {
+                    col.mapv_inplace(|v| v / nj);
+                }
+            }
+            rinv.push(upper_inverse(&rs)?);
+        }
+        let v = self.variances_with(est, kind, data, &rinv)?;
+        Ok(Array1::from_iter(v.iter().zip(&norms).map(|(v, n)| v.max(0.0).sqrt() / n)))
     }
 
     /// Classical covariance of the coefficients b.
@@ -1259,6 +1447,24 @@ impl Restrictions {
             basis.push((v / nv, rhs / nv));
         }
         Ok(())
+    }
+}
+
+/// A singular Omega met after `steps` iterated FGLS steps, when the first Omega was not: the
+/// iterations themselves drove it there (the Gaussian likelihood can be unbounded when T is
+/// small against the equations and coefficients), which the usual causes do not explain.
+fn iterated_singular(e: SurError, steps: usize) -> SurError {
+    match e {
+        SurError::SingularOmega { equations, detail } => SurError::SingularOmega {
+            equations,
+            detail: format!(
+                "iterated FGLS, after {steps} GLS steps from a nonsingular start: {detail}. Here the \
+                 iterations drove Omega towards singularity, as happens when there are few observations \
+                 for the equations and coefficients (the likelihood may have no maximum); use \
+                 method='fgls', omega='ledoit-wolf', or more observations"
+            ),
+        },
+        e => e,
     }
 }
 

@@ -788,6 +788,11 @@ pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize, stop: &dyn Fn() -> 
 /// kappa^2 u below 1e-8, a margin of several orders at any T in memory.
 pub(crate) const CHOLQR_COND_MAX: f64 = 1e4;
 
+/// Shortest columns `cholqr2_in_place` takes: below, Householder costs little, and keeping it
+/// keeps the rounding of small systems as it was (the restricted first-order-condition property
+/// test on nearly saturated 7-row systems sits close to its tolerance either way).
+pub(crate) const CHOLQR_MIN_T: usize = 128;
+
 /// Widest block `cholqr2_in_place` takes (its passes grow as m^2 / 4 and Householder's as m^2).
 pub(crate) const CHOLQR_MAX_M: usize = 16;
 
@@ -803,7 +808,7 @@ pub(crate) const CHOLQR_MAX_M: usize = 16;
 /// condition number of the column-scaled block above CHOLQR_COND_MAX; the caller then uses
 /// Householder. R is returned row-major, its diagonal positive.
 pub(crate) fn cholqr2_in_place(buf: &mut [f64], t: usize, m: usize, stop: &dyn Fn() -> bool) -> Result<Option<Array2<f64>>> {
-    if m == 0 || m > CHOLQR_MAX_M || t < m || buf.len() != t * m {
+    if m == 0 || m > CHOLQR_MAX_M || t < CHOLQR_MIN_T.max(m) || buf.len() != t * m {
         return Ok(None);
     }
     let mut g1 = vec![0.0f64; m * m];
@@ -831,7 +836,8 @@ pub(crate) fn cholqr2_in_place(buf: &mut [f64], t: usize, m: usize, stop: &dyn F
     // R_1 of the scaled block is L' (upper): its condition decides
     let r1s = Array2::from_shape_fn((m, m), |(i, j)| g1[i * m + j]);
     let cond = triangular_condition(&r1s);
-    if !(cond <= CHOLQR_COND_MAX) {
+    // (a NaN condition number declines too)
+    if cond.is_nan() || cond > CHOLQR_COND_MAX {
         return Ok(None);
     }
     if stop() {

@@ -150,7 +150,9 @@ impl PackedLower {
         }
         // every stored column holds ld values: equal shares of whole columns
         let per = h.div_ceil(threads);
-        let parts: Vec<std::sync::Mutex<Option<(usize, &mut [f64])>>> = self.buf[..ld * h]
+        // (first column, its values): each taken once, by the thread of that index
+        type Share<'a> = std::sync::Mutex<Option<(usize, &'a mut [f64])>>;
+        let parts: Vec<Share<'_>> = self.buf[..ld * h]
             .chunks_mut(ld * per)
             .enumerate()
             .map(|(p, chunk)| std::sync::Mutex::new(Some((p * per, chunk))))

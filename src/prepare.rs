@@ -106,6 +106,7 @@ impl Prepared {
         if n > 1 && !matrix_free && data.identical_regressors() {
             for eq in &data.equations {
                 check_finite(eq, 0)?;
+                y_in_range(eq, eq.y.iter())?;
             }
             let (factors, qq) = shared_regressors(data, t)?;
             return Ok(done(factors, CrossProducts::SharedRegressors { qq }));
@@ -242,6 +243,26 @@ fn gram_across(w: &Array2<f64>, offsets: &[usize]) -> Array2<f64> {
     let owner: Vec<usize> =
         (0..p).map(|c| if c < k { offsets.partition_point(|&o| o <= c) - 1 } else { c - k }).collect();
     crate::linalg::gram_dots(buf, t, p, |i, j| owner[i] == owner[j])
+}
+
+/// Refuses a dependent variable whose largest |value| is outside Y_RANGE (naming the equation
+/// and which way it falls out), where its residual variance cannot be represented.
+fn y_in_range<'a>(eq: &Equation, y: impl Iterator<Item = &'a f64>) -> Result<()> {
+    let ymax = y.fold(0.0f64, |a, v| a.max(v.abs()));
+    if !(ymax.is_finite() && ymax > 0.0) || (Y_RANGE.0..=Y_RANGE.1).contains(&ymax) {
+        return Ok(());
+    }
+    let small = ymax < 1.0;
+    Err(SurError::Scale {
+        equation: eq.name.clone(),
+        detail: format!(
+            "the dependent variable's largest value in magnitude is {ymax:.1e}, too {} for its sums \
+             of squares and residual variance in double precision (they {} beyond 1e{}308)",
+            if small { "small" } else { "large" },
+            if small { "underflow" } else { "overflow" },
+            if small { "-" } else { "+" }
+        ),
+    })
 }
 
 /// Column 2-norm, computed with scaling so that huge or tiny columns neither overflow nor underflow.
@@ -589,6 +610,16 @@ fn factor_into(
         if nj == 0.0 {
             return Err(zero_column(&eq.name, &eq.regressors[j]));
         }
+        if nj < X_TINY && col.iter().fold(0.0f64, |a, v| a.max(v.abs())) < f64::MIN_POSITIVE {
+            return Err(SurError::Scale {
+                equation: eq.name.clone(),
+                detail: format!(
+                    "regressor '{}' has norm {nj:.1e}: its values are in the subnormal range of \
+                     double precision (below 2.2e-308), where digits are lost",
+                    eq.regressors[j]
+                ),
+            });
+        }
         norms.push(nj);
         if (1e-100..=1e100).contains(&nj) {
             scale.push(1.0);
@@ -605,6 +636,7 @@ fn factor_into(
         Some(y) => ebuf.copy_from_slice(y),
         None => ebuf.iter_mut().zip(eq.y.iter()).for_each(|(d, v)| *d = *v),
     }
+    y_in_range(eq, ebuf.iter())?;
     let (tss_centred, tss_raw) = tss(ebuf);
     if !(tss_raw.is_finite() && tss_centred.is_finite()) {
         check_finite(eq, 0)?;
@@ -833,6 +865,16 @@ pub(crate) fn refine_fit(
 
 /// Largest T K_i (values) of the column-major copy of X_i kept for the refinement (32 MB).
 const KEEP_COPY_MAX: usize = 1 << 22;
+
+/// The range of the largest |y_i| that step 0 accepts: beyond it the residual variances (squares
+/// of values a little smaller than y) under- or overflow double precision, and the errors that
+/// followed blamed an exact fit or a singular Omega.
+const Y_RANGE: (f64, f64) = (1e-120, 1e120);
+
+/// Regressor columns with a norm below this are looked at: refused when all their values are
+/// subnormal (below 2.2e-308, with fewer digits; the column scaling of step 0 handles any column
+/// of normal values).
+const X_TINY: f64 = 1e-290;
 
 /// Rows of one block of the copy and of the refinement's residual pass (between Ctrl-C checks).
 const REFINE_ROWS: usize = 1 << 18;

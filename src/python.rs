@@ -19,7 +19,7 @@ fn raise(py: Python<'_>, err: SurError) -> PyErr {
         let cls = module.getattr(err.kind())?;
         let kw = PyDict::new(py);
         match &err {
-            SurError::ShapeMismatch { equation, .. } => kw.set_item("equation", equation)?,
+            SurError::ShapeMismatch { equation, .. } | SurError::Scale { equation, .. } => kw.set_item("equation", equation)?,
             SurError::NonFinite { equation, row, column, .. } => {
                 kw.set_item("equation", equation)?;
                 kw.set_item("row", row)?;
@@ -356,6 +356,23 @@ impl PyPrepared {
     ) -> PyResult<Bound<'py, PyArray1<f64>>> {
         let out = self.of_kind(py, kind, ys, xs, |k, d| self.inner.coef_standard_errors(&est.inner, k, d))?;
         Ok(out.into_pyarray(py))
+    }
+
+    /// Variances of predicted means for new regressor rows (`new[i]`: m x K_i), of the given
+    /// covariance kind, one array of m values per equation (`Prepared::prediction_variances`).
+    #[pyo3(signature = (est, new, kind="classical", ys=None, xs=None))]
+    fn prediction_variances<'py>(
+        &self,
+        py: Python<'py>,
+        est: &PyEstimate,
+        new: Vec<PyReadonlyArray2<'py, f64>>,
+        kind: &str,
+        ys: Option<Vec<PyReadonlyArray1<'py, f64>>>,
+        xs: Option<Vec<PyReadonlyArray2<'py, f64>>>,
+    ) -> PyResult<Vec<Bound<'py, PyArray1<f64>>>> {
+        let views: Vec<_> = new.iter().map(|a| a.as_array()).collect();
+        let out = self.of_kind(py, kind, ys, xs, |k, d| self.inner.prediction_variances(&est.inner, k, d, &views))?;
+        Ok(out.into_iter().map(|v| v.into_pyarray(py)).collect())
     }
 
     /// Residual cross-products of unrestricted equation-by-equation OLS (N x N).

@@ -129,3 +129,76 @@ def test_prediction_se_restricted_gls_vs_statsmodels_substitution():
     for i, nm in enumerate("abc"):
         Vi = V[off[i]:off[i + 1], off[i]:off[i + 1]]
         np.testing.assert_allclose(pse[nm].to_numpy(), np.sqrt(np.diag(new[nm] @ Vi @ new[nm].T)), rtol=1e-9)
+
+
+def _exact_quadratic_forms(A, rows):
+    """x A^-1 x' for each row x, in exact rational arithmetic (the float entries taken as the
+    exact binary fractions they are): a reference free of rounding."""
+    from fractions import Fraction as Fr
+
+    n = len(A)
+
+    def solve(rhs):
+        M = [list(A[i]) + [rhs[i]] for i in range(n)]
+        for c in range(n):
+            p = next(r for r in range(c, n) if M[r][c] != 0)
+            M[c], M[p] = M[p], M[c]
+            for r in range(n):
+                if r != c and M[r][c] != 0:
+                    f = M[r][c] / M[c][c]
+                    M[r] = [a - f * b for a, b in zip(M[r], M[c])]
+        return [M[i][n] / M[i][i] for i in range(n)]
+
+    out = []
+    for row in rows:
+        x = [Fr(float(v)) for v in row]
+        out.append(float(sum(a * b for a, b in zip(x, solve(x)))))
+    return np.array(out)
+
+
+def test_prediction_se_along_a_nearly_collinear_direction_is_exact_to_rounding():
+    """New rows that follow the sample's near-collinearity (x2 = x1 + 1e-6 z, condition number
+    about 1e6): the prediction variance is small while the covariance has entries of order
+    1e10, so x V x' from the covariance matrix cancels (it lost three digits). Reference: exact
+    rational arithmetic on the same float data, x (X'X)^-1 x' omega_ii for OLS and
+    x_i (sum_jl omega^jl X_j'X_l)^-1_ii x_i' for GLS at the fit's Omega (the textbook formulas;
+    Omega^-1 from numpy, taken as exact)."""
+    from fractions import Fraction as Fr
+
+    rng = np.random.default_rng(7)
+    T = 30
+    x1, z, c, a = rng.normal(size=(4, T))
+    X0 = np.column_stack([np.ones(T), x1, x1 + 1e-6 * z])
+    X1 = np.column_stack([np.ones(T), c, a])
+    u = rng.multivariate_normal([0, 0], [[1, 0.6], [0.6, 1]], size=T)
+    y0 = X0 @ [1.0, 2.0, -1.0] + u[:, 0]
+    y1 = X1 @ [0.5, 1.0, -0.5] + u[:, 1]
+    t_new = rng.normal(size=4)
+    new0 = np.column_stack([np.ones(4), t_new, t_new + 1e-6 * rng.normal(size=4)])
+    new1 = np.column_stack([np.ones(4), rng.normal(size=4), rng.normal(size=4)])
+    system = blocksur.EquationSystem({"a": (y0, X0), "b": (y1, X1)})
+    new = {"a": new0, "b": new1}
+    Xf = [[[Fr(float(v)) for v in row] for row in X] for X in (X0, X1)]
+
+    def cross(i, j, w):
+        return [[w * sum(Xf[i][t][p] * Xf[j][t][q] for t in range(T)) for q in range(3)] for p in range(3)]
+
+    # OLS: omega_ii x (X_i'X_i)^-1 x'
+    ols = system.fit("ols")
+    om = ols.omega.to_numpy()
+    got = ols.prediction_se(new)
+    worst = 0.0
+    for i, (nm, rows) in enumerate(new.items()):
+        exact = np.sqrt(om[i, i] * _exact_quadratic_forms(cross(i, i, Fr(1)), rows))
+        worst = max(worst, ref.max_rel(got[nm].to_numpy(), exact))
+    # FGLS: the GLS matrix at the fit's Omega, its (0, 0) block of the inverse
+    fgls = system.fit("fgls")
+    oi = [[Fr(float(v)) for v in row] for row in np.linalg.inv(fgls.omega.to_numpy())]
+    blocks = [[cross(i, j, oi[i][j]) for j in range(2)] for i in range(2)]
+    A = [blocks[i][0][p] + blocks[i][1][p] for i in range(2) for p in range(3)]  # 6 x 6
+    got = fgls.prediction_se(new)["a"].to_numpy()
+    rows6 = [list(r) + [0.0, 0.0, 0.0] for r in new0]
+    exact = np.sqrt(_exact_quadratic_forms(A, rows6))
+    worst = max(worst, ref.max_rel(got, exact))
+    err = ref.record("inference: prediction_se along a near-collinear direction vs exact rationals (rel)", worst)
+    assert err < 1e-8

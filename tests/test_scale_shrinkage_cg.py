@@ -166,3 +166,33 @@ def test_cg_path_never_forms_a_k_by_k_matrix():
     # reference: the kernel's peak RSS (VmHWM) of the fit over the process with the data loaded
     record("CG path peak RSS growth / one K x K matrix (N=2000, T=300, K_i=4)", res["growth"] / kk)
     assert res["growth"] < 0.5 * kk, f"peak grew by {res['growth'] / 1e6:.0f} MB; K x K is {kk / 1e6:.0f} MB"
+
+
+def test_conjugate_gradients_stopped_short_is_not_a_converged_fit():
+    """cg_max_iter reached above cg_tol: converged=False and a NotConvergedWarning (the fit had
+    reported converged=True, silently, with coefficients a third of a standard error off). The
+    same solve run to its tolerance agrees with the direct solver (CG on a positive definite
+    system converges to its solution; common practice)."""
+    import warnings
+
+    from blocksur.errors import NotConvergedWarning
+
+    rng = np.random.default_rng(1)
+    T = 200
+    e = rng.multivariate_normal([0, 0, 0], [[1, 0.8, 0.8], [0.8, 1, 0.8], [0.8, 0.8, 1]], size=T)
+    eqs = {}
+    for i, k in enumerate([3, 4, 5]):
+        Xi = np.column_stack([np.ones(T), rng.normal(size=(T, k - 1))])
+        eqs[f"e{i}"] = (Xi @ np.ones(k) + e[:, i], Xi)
+    system = blocksur.EquationSystem(eqs)
+    direct = system.fit("fgls")
+    with pytest.warns(NotConvergedWarning, match="cg_max_iter=1"):
+        short = system.fit("fgls", solver="cg", cg_max_iter=1)
+    assert not short.converged
+    assert short.cg_residual > 1e-10
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", NotConvergedWarning)
+        full = system.fit("fgls", solver="cg")
+    assert full.converged
+    np.testing.assert_allclose(full.coef.to_numpy(), direct.coef.to_numpy(), rtol=0,
+                               atol=1e-8 * float(direct.se.min()))

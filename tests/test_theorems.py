@@ -216,3 +216,26 @@ def test_equation_order_permutes_results(method, divisor):
     np.testing.assert_allclose(f1.resid[order].to_numpy(), f2.resid.to_numpy(), rtol=0, atol=rtol * sd)
     record(f"theorem: equation permutation, {method} (max rel over coef/se/vcov/omega/r2/ssr/loglik)", worst)
     assert worst <= rtol
+
+
+@pytest.mark.parametrize("scale", [1e200, 1e-200, 1e300, 1e-300])
+@pytest.mark.parametrize("covariance", ["classical", "hc0", "hc1"])
+def test_rescaled_regressor_rescales_its_coefficient_and_se(scale, covariance):
+    """Regressor j times c gives coefficient b_j / c and standard error se_j / |c|, the rest
+    unchanged (linear reparametrisation; common practice, no source needed), also where se_j^2
+    is beyond double precision: the standard errors come from the column-scaled problem (they
+    had been 0 or inf at c = 1e+-200, their squares under- or overflowing)."""
+    rng = np.random.default_rng(5)
+    T = 80
+    X = np.column_stack([np.ones(T), rng.normal(size=T), rng.normal(size=T)])
+    X2 = np.column_stack([np.ones(T), rng.normal(size=T)])
+    y1 = X @ [1.0, 2.0, -0.5] + rng.normal(size=T)
+    y2 = X2 @ [0.0, 1.0] + rng.normal(size=T) + 0.3 * y1
+    base = blocksur.EquationSystem({"a": (y1, X), "b": (y2, X2)}).fit("fgls", covariance=covariance)
+    c = np.array([1.0, scale, 1.0])
+    fit = blocksur.EquationSystem({"a": (y1, X * c), "b": (y2, X2)}).fit("fgls", covariance=covariance)
+    np.testing.assert_allclose(fit.coef["a"].to_numpy() * c, base.coef["a"].to_numpy(), rtol=1e-12)
+    np.testing.assert_allclose(fit.se["a"].to_numpy() * c, base.se["a"].to_numpy(), rtol=1e-12)
+    np.testing.assert_allclose(fit.se["b"].to_numpy(), base.se["b"].to_numpy(), rtol=1e-12)
+    np.testing.assert_allclose(fit.stat.to_numpy(), base.stat.to_numpy(), rtol=1e-11)
+    assert np.all(np.isfinite(fit.pval.to_numpy()))

@@ -134,7 +134,11 @@ def test_json_round_trip_is_exact(method, covariance):
     assert back.omega_diagonal_lm().statistic == fit.omega_diagonal_lm().statistic
     new = {n: np.ones((2, len(r))) for n, r in system.regressor_names.items()}
     assert back.predict(new).equals(fit.predict(new))
-    assert back.prediction_se(new).equals(fit.prediction_se(new))
+    # the live fit takes prediction standard errors from its factors, the restored one from the
+    # stored covariance matrix: equal to rounding (the factors are not kept, so along nearly
+    # collinear directions of X a restored fit is the less accurate of the two)
+    np.testing.assert_allclose(back.prediction_se(new).to_numpy(), fit.prediction_se(new).to_numpy(), rtol=1e-12)
+    assert back.prediction_se(new).index.equals(fit.prediction_se(new).index)
 
 
 def test_json_round_trip_keeps_nan_and_labels():

@@ -166,6 +166,17 @@ class Prepared:
         :meth:`coef_covariance`, computed without the K x K matrix where the kind allows it
         (classical unrestricted fits: one triangular inverse of the Cholesky factor)."""
 
+    def prediction_variances(
+        self,
+        est: Estimate,
+        new: Sequence[_F64_2D],
+        kind: str = "classical",
+        ys: Sequence[_F64_1D] | None = None,
+        xs: Sequence[_F64_2D] | None = None,
+    ) -> list[_F64_1D]:
+        """Variances of the predicted means for new regressor rows (``new[i]``: m x K_i), one
+        array of m values per equation, from the factors rather than the covariance matrix."""
+        ...
     def ols_crossprod(self) -> _F64_2D:
         """Residual cross-products of unrestricted equation-by-equation OLS (N x N)."""
 

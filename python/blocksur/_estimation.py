@@ -63,13 +63,21 @@ def run_estimation(
         raise
     finally:
         close_hook(hook)
-    warn_about(est, max_iter, tol, stacklevel + 1)
+    warn_about(est, max_iter, tol, stacklevel + 1, cg_tol=cg_tol, cg_max_iter=cg_max_iter)
     return est, rset
 
 
-def warn_about(est: Any, max_iter: int, tol: float, stacklevel: int) -> None:
+def warn_about(
+    est: Any,
+    max_iter: int,
+    tol: float,
+    stacklevel: int,
+    *,
+    cg_tol: float | None = None,
+    cg_max_iter: int | None = None,
+) -> None:
     """The warnings an estimate calls for: a nearly singular Omega, an iterated fit that did
-    not converge."""
+    not converge, conjugate gradients that stopped short of their tolerance."""
     if est.omega_cond > COND_WARN:
         warnings.warn(
             f"the estimated cross-equation covariance is nearly singular (condition number "
@@ -79,7 +87,20 @@ def warn_about(est: Any, max_iter: int, tol: float, stacklevel: int) -> None:
             IllConditionedWarning,
             stacklevel=stacklevel,
         )
-    if not est.converged:
+    cg_short = (
+        cg_tol is not None and len(est.cg_iterations) > 0 and est.cg_residual > cg_tol
+    )
+    if cg_short:
+        warnings.warn(
+            f"the conjugate-gradient solve of the last GLS step stopped after "
+            f"{est.cg_iterations[-1]} iterations (cg_max_iter={cg_max_iter}) at relative "
+            f"residual {est.cg_residual:.3g}, above cg_tol={cg_tol:g}: the coefficients are "
+            "not the GLS solution to that tolerance (converged=False); raise cg_max_iter, "
+            "or use solver='direct' if the memory allows",
+            NotConvergedWarning,
+            stacklevel=stacklevel,
+        )
+    elif not est.converged:
         path = est.criterion_path
         warnings.warn(
             f"iterated FGLS stopped after max_iter={max_iter} GLS steps without meeting "

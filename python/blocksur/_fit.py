@@ -735,15 +735,29 @@ class SystemFit:
 
     def prediction_se(self, new: Any) -> pd.DataFrame:
         """Standard errors of the predicted means, sqrt(diag(X_new V_ii X_new')), with V this
-        fit's covariance. (For a new observation add the error variance omega_ii.)"""
+        fit's covariance. (For a new observation add the error variance omega_ii.) A live fit
+        computes them from its factors, accurate along nearly collinear directions of X too; a
+        fit restored from a file or dict, which keeps only V, from V."""
         new = expand_new(self._system, new)  # one table for a table-built system
         xs = self._new_x(new)
-        offs = np.asarray(self._prepared.offsets)
-        v = self.vcov.to_numpy()
-        cols = []
-        for i, x in enumerate(xs):
-            vi = v[offs[i] : offs[i + 1], offs[i] : offs[i + 1]]
-            cols.append(np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", x, vi, x), 0.0)))
+        if isinstance(self._prepared, _core.Prepared) and self.solver != "cg":
+            # from the factors (x R_i^-1 against the covariance of the orthonormal coordinates):
+            # x V_ii x' from V itself cancels along nearly collinear directions of X_i
+            xs = [np.ascontiguousarray(x, dtype=np.float64) for x in xs]
+            if self.covariance == "classical":
+                var = self._prepared.prediction_variances(self._est, xs)
+            else:
+                var = self._prepared.prediction_variances(
+                    self._est, xs, self.covariance, self._system._ys, self._system._xs
+                )
+            cols = [np.sqrt(np.maximum(v, 0.0)) for v in var]
+        else:
+            offs = np.asarray(self._prepared.offsets)
+            v = self.vcov.to_numpy()
+            cols = []
+            for i, x in enumerate(xs):
+                vi = v[offs[i] : offs[i + 1], offs[i] : offs[i + 1]]
+                cols.append(np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", x, vi, x), 0.0)))
         return pd.DataFrame(np.column_stack(cols), index=self._new_index(new), columns=self._names)
 
     # -- tables, saving, reports and plots (see _tidy.py, _report.py, _plots.py) ---------------
