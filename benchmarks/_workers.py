@@ -168,7 +168,7 @@ def threads_worker(case: str, config: str, loops: int, rounds: int, pause: float
         return W.T @ W
 
     def bs_op():
-        return blocksur.EquationSystem(d).fit(method="fgls").coef
+        return blocksur.EquationSystem(d, copy=False).fit(method="fgls").coef
 
     res = {"np_alone": [], "bs_alone": [], "alt_total": [], "alt_np": [], "alt_bs": []}
     with ctx:
