@@ -673,6 +673,8 @@ class SystemFit:
 
     # -- prediction ----------------------------------------------------------------------------
     def _new_x(self, new: Any) -> list[np.ndarray]:
+        from ._system import _label, _not_real, _refuse_columns
+
         names = self._names
         if isinstance(new, dict):
             missing = [n for n in names if n not in new]
@@ -687,13 +689,25 @@ class SystemFit:
         rows = None
         for name, regs, x in zip(names, self._system._regressors, items):
             if isinstance(x, pd.DataFrame):
+                if isinstance(x.columns, pd.MultiIndex):  # named as the constructor names them
+                    x = x.set_axis([_label(c) for c in x.columns], axis=1)
                 missing = [r for r in regs if r not in x.columns]
                 if missing:
                     raise ShapeMismatchError(
                         f"equation '{name}': new data lack regressors {missing}", equation=name
                     )
                 x = x[regs]
-            a = np.asarray(x, dtype=float)
+            # the constructor's refusals: numpy would read categories as numbers, drop the
+            # imaginary part of complex values (a warning only) and parse strings
+            _refuse_columns(name, "new regressor matrix", x)
+            if isinstance(x, (pd.DataFrame, pd.Series)):
+                a = x.to_numpy(dtype=float, na_value=np.nan)  # missing values: refused below
+            else:
+                a = np.asarray(x)
+                err = _not_real(name, "the new regressor matrix", a.dtype)
+                if err is not None:
+                    raise err
+                a = np.asarray(a, dtype=float)
             if a.ndim == 1:
                 a = a[None, :] if len(regs) > 1 or rows == 1 else a[:, None]
             if a.ndim != 2 or a.shape[1] != len(regs):

@@ -253,6 +253,14 @@ def _parse_formula(text: str, label: str | None, table: _Table) -> _Spec:
             equation=label,
             formula=text,
         )
+    if not text.split("~", 1)[0].strip():
+        # formulaic reads "~ x" as a formula without sides and fails on its missing `lhs`
+        raise FormulaError(
+            f"equation {where!r}: the formula {text!r} has no dependent variable; write the "
+            "dependent column on the left of '~' ('dependent ~ regressors')",
+            equation=label,
+            formula=text,
+        )
     try:
         f = formulaic.Formula(text)
         lhs_terms = list(f.lhs)
@@ -352,15 +360,33 @@ def _parse_specs(equations: Any, table: _Table) -> list[_Spec]:
 
 # -- building the matrices -----------------------------------------------------------------------
 def _numeric(table: _Table, spec: _Spec, col: str, values: np.ndarray) -> np.ndarray:
-    if values.dtype == object or not (np.issubdtype(values.dtype, np.number) or values.dtype == np.bool_):
+    """A column of the pair form, refused unless its values are real numbers. numpy counts
+    durations and complex values as numbers, and a pandas categorical of numbers reads as them."""
+    from ._system import _time_hint
+
+    dtype = values.dtype
+    if table.kind == "pandas" and isinstance(table.data[table.columns[col]].dtype, pd.CategoricalDtype):
+        problem = "is a pandas categorical"
+        if col == spec.dependent:
+            hint = ("; a dependent variable must be real numbers: convert it with .astype(float) "
+                    "if its categories are the values")
+        else:
+            hint = (f"; encode it as dummy columns with a formula term C({col}), or convert it "
+                    "with .astype(float) if its categories are quantities")
+    elif dtype.kind == "c":
+        problem, hint = "has complex values", "; give real numbers"
+    elif dtype.kind in "mM":
+        problem, hint = f"has values of type {dtype}", f": {_time_hint(dtype)}"
+    elif dtype == object or not (np.issubdtype(dtype, np.number) or dtype == np.bool_):
+        problem = f"has values of type {dtype} that are not numbers"
         hint = f"; for categories use a formula with C({col})" if spec.formula is None else ""
-        raise InputError(
-            f"equation '{spec.name}': column {col!r} has values of type {values.dtype} that are "
-            f"not numbers{hint}",
-            equation=spec.name,
-            column=col,
-        )
-    return values
+    else:
+        return values
+    raise InputError(
+        f"equation '{spec.name}': column {col!r} {problem}{hint}",
+        equation=spec.name,
+        column=col,
+    )
 
 
 def _materialize(spec: _Spec, frame: pd.DataFrame | None, table: _Table, keep: np.ndarray,
@@ -604,7 +630,7 @@ def expand_new(system: Any, new: Any) -> Any:
             for c in s.regressors:
                 if c not in table.columns:
                     raise _unknown(table, s.name, c, "the regressor", "is not a column of the new data")
-            cols = {c: np.asarray(table.values(c), dtype=float) for c in s.regressors}
+            cols = {c: np.asarray(_numeric(table, s, c, table.values(c)), dtype=float) for c in s.regressors}
             X = pd.DataFrame(cols, index=table.index)
             if info.constant:
                 X.insert(0, CONSTANT_NAME, 1.0)

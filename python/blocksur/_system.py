@@ -115,6 +115,92 @@ def _default_regressors(k: int) -> tuple[str, ...]:
     return tuple(f"x{j}" for j in range(k))
 
 
+def _label(key: Any) -> str:
+    """A column label as a regressor name: the levels of a MultiIndex column (a tuple) joined
+    by ``_``, empty levels left out (``("price", "mean")`` -> ``price_mean``)."""
+    if isinstance(key, tuple):
+        return "_".join(str(k) for k in key if str(k) != "")
+    return str(key)
+
+
+def _time_hint(dtype: np.dtype) -> str:
+    """How to turn dates or durations (numpy counts ``timedelta64`` as integers) into numbers."""
+    if dtype.kind == "m":
+        return (
+            "durations are not numbers until given a unit, for example hours: "
+            "td / np.timedelta64(1, 'h')"
+        )
+    return (
+        "dates are not numbers; give for example days since a start date: "
+        "(d - start) / np.timedelta64(1, 'D')"
+    )
+
+
+def _not_real(
+    name: str, where: str, dtype: np.dtype, column: str | None = None
+) -> ShapeMismatchError | None:
+    """The error for values of ``dtype`` that are not real numbers (None when they are), about
+    ``where`` ("the regressor matrix", "column 'x' of ..."). Durations (``timedelta64``) count
+    as integers to numpy and complex values as numbers: both are refused here, as are dates,
+    strings and objects."""
+    if dtype.kind == "c":
+        fix = "is complex; give real numbers"
+    elif dtype.kind in "mM":
+        fix = f"has dtype {dtype}; {_time_hint(dtype)}"
+    elif dtype == object or not (np.issubdtype(dtype, np.number) or dtype == np.bool_):
+        fix = f"has dtype {dtype}; give real numbers (any float or integer dtype)"
+    else:
+        return None
+    return ShapeMismatchError(f"equation '{name}': {where} {fix}", equation=name, column=column)
+
+
+def _refuse_columns(name: str, what: str, value: Any) -> None:
+    """Refuses, by column, what numpy would read as numbers though it is none, before it does:
+    pandas categoricals (their categories or codes), durations, complex values, strings and
+    objects in a DataFrame, a Series or a Categorical. Nullable numeric dtypes pass."""
+    if isinstance(value, pd.DataFrame):
+        dtypes = [(_label(c), dt) for c, dt in value.dtypes.items()]
+    elif isinstance(value, (pd.Series, pd.Categorical)):
+        label = getattr(value, "name", None)
+        dtypes = [(None if label is None else _label(label), value.dtype)]
+    else:
+        return
+    for col, dtype in dtypes:
+        one = col is None or what == "dependent variable"
+        where = f"the {what}" if one else f"column {col!r} of the {what}"
+        if isinstance(dtype, pd.CategoricalDtype):
+            # labels, not quantities
+            if what == "dependent variable":
+                fix = (
+                    "a dependent variable must be real numbers: convert it with .astype(float) "
+                    "if its categories are the values"
+                )
+            else:
+                fix = (
+                    "categorical columns must be encoded as dummy columns first, for example by "
+                    f"EquationSystem.from_table with the formula term C({col or 'column'}); or "
+                    "convert it with .astype(float) if its categories are quantities"
+                )
+            raise ShapeMismatchError(
+                f"equation '{name}': {where} is a pandas categorical; {fix}",
+                equation=name,
+                column=col,
+            )
+        if isinstance(dtype, np.dtype):
+            err = _not_real(name, where, dtype, col)
+        elif pd.api.types.is_numeric_dtype(dtype) and not pd.api.types.is_complex_dtype(dtype):
+            err = None  # nullable integers, floats, booleans
+        else:
+            err = ShapeMismatchError(
+                f"equation '{name}': {where} has dtype {dtype}; give real numbers (any float or "
+                "integer dtype)",
+                equation=name,
+                column=col,
+            )
+        if err is not None:
+            raise err
+
+
 def _as_float(name: str, what: str, value: Any, ndim: int, copy: bool = False) -> np.ndarray:
     """``value`` as a float64 array of ``ndim`` dimensions (any strides), checked. With
     ``copy=True`` the result never shares memory with ``value``: it is copied here unless the
@@ -128,17 +214,11 @@ def _as_float(name: str, what: str, value: Any, ndim: int, copy: bool = False) -
             "drop those rows (the sample must be common to all equations)",
             equation=name,
         )
+    _refuse_columns(name, what, value)
     arr = np.asarray(value)
-    if arr.dtype == object or not (np.issubdtype(arr.dtype, np.number) or arr.dtype == np.bool_):
-        raise ShapeMismatchError(
-            f"equation '{name}': the {what} has dtype {arr.dtype}; give real numbers "
-            "(any float or integer dtype)",
-            equation=name,
-        )
-    if np.iscomplexobj(arr):
-        raise ShapeMismatchError(
-            f"equation '{name}': the {what} is complex; give real numbers", equation=name
-        )
+    err = _not_real(name, f"the {what}", arr.dtype)
+    if err is not None:
+        raise err
     if what == "regressor matrix" and arr.ndim == 1:
         arr = arr[:, None]
     if arr.ndim != ndim:
@@ -280,7 +360,9 @@ class EquationSystem(SystemLabels):
     regressor_names
         Optional names of the columns of each ``X``: a dict ``{equation: [names]}`` or a list of
         lists in equation order. Defaults to the DataFrame columns (the name of a Series ``X``),
-        else ``x0, x1, ...``.
+        else ``x0, x1, ...``. MultiIndex columns are named by their levels joined with ``_``,
+        empty levels left out (``("price", "mean")`` -> ``price_mean``); ``predict`` reads new
+        DataFrames with the same columns the same way.
     copy
         ``True`` (default): the system keeps its own copy of the data, made once (none more when
         a conversion to float64 already made a new array), so later edits of the arrays given
@@ -376,9 +458,9 @@ class EquationSystem(SystemLabels):
             if name in given:
                 regs = given[name]
             elif isinstance(X, pd.DataFrame):
-                regs = [str(c) for c in X.columns]
+                regs = [_label(c) for c in X.columns]
             elif isinstance(X, pd.Series) and X.name is not None:
-                regs = [str(X.name)]
+                regs = [_label(X.name)]
             else:
                 regs = list(_default_regressors(Xv.shape[1]))
             if len(regs) != Xv.shape[1]:
