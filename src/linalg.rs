@@ -788,10 +788,12 @@ pub fn thin_qr_in_place(buf: &mut [f64], t: usize, m: usize, stop: &dyn Fn() -> 
 /// kappa^2 u below 1e-8, a margin of several orders at any T in memory.
 pub(crate) const CHOLQR_COND_MAX: f64 = 1e4;
 
-/// Shortest columns `cholqr2_in_place` takes: below, Householder costs little, and keeping it
-/// keeps the rounding of small systems as it was (the restricted first-order-condition property
-/// test on nearly saturated 7-row systems sits close to its tolerance either way).
-pub(crate) const CHOLQR_MIN_T: usize = 128;
+/// Shortest columns `cholqr2_in_place` takes: below, its fixed costs (the small factorisations
+/// and the condition test) outweigh the passes it saves (case (a), T = 200: step 0 34 -> 43 us
+/// with it), and Householder keeps the rounding of small systems as it was (the restricted
+/// first-order-condition property test on nearly saturated 7-row systems sits close to its
+/// tolerance either way).
+pub(crate) const CHOLQR_MIN_T: usize = 512;
 
 /// Widest block `cholqr2_in_place` takes (its passes grow as m^2 / 4 and Householder's as m^2).
 pub(crate) const CHOLQR_MAX_M: usize = 16;

@@ -53,6 +53,8 @@ _MAX_COUNT = int(np.iinfo(np.uintp).max)
 def _whole_number(option: str, value: Any) -> int:
     """A count option (``max_iter``, ``cg_max_iter``): a whole number from 1 to the core's
     limit."""
+    if type(value) is int and 1 <= value <= _MAX_COUNT:  # the usual case, quickly
+        return value
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)):
         raise InvalidOptionError(
             f"{option} must be a whole number >= 1 (an int, not {type(value).__name__}), "
@@ -69,6 +71,8 @@ def _whole_number(option: str, value: Any) -> int:
 def _real_number(option: str, value: Any, *, positive: bool, extra: str = "") -> float:
     """A finite real option (``tol``, ``cg_tol``, ``memory_limit``): >= 0, or > 0 if positive.
     Strings and booleans are refused: ``True`` is not a tolerance."""
+    if type(value) is float and math.isfinite(value) and (value > 0 if positive else value >= 0):
+        return value  # the usual case, quickly
     allowed = f"a finite number {'> 0' if positive else '>= 0'}{extra}"
     if isinstance(value, (bool, np.bool_, str, bytes)):
         raise InvalidOptionError(
@@ -262,7 +266,7 @@ def _snapshot(ys: list[np.ndarray], xs: list[np.ndarray], shared: list[tuple[int
 def _read_only(arr: np.ndarray) -> np.ndarray:
     """A read-only view of ``arr`` (the caller's own array keeps its flags)."""
     view = arr.view()
-    view.flags.writeable = False
+    view.setflags(write=False)  # (half the time of assigning flags.writeable: per-call cost)
     return view
 
 
