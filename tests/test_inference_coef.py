@@ -202,3 +202,27 @@ def test_prediction_se_along_a_nearly_collinear_direction_is_exact_to_rounding()
     worst = max(worst, ref.max_rel(got, exact))
     err = ref.record("inference: prediction_se along a near-collinear direction vs exact rationals (rel)", worst)
     assert err < 1e-8
+
+
+@pytest.mark.parametrize("identical", [True, False])
+@pytest.mark.parametrize("method", ["ols", "fgls", "ifgls"])
+@pytest.mark.parametrize("covariance", ["classical", "hc0", "hc1"])
+@pytest.mark.parametrize("restrictions", [None, "e0.x1 = e1.x1"])
+def test_prediction_se_from_factors_is_the_quadratic_form_of_vcov(identical, method, covariance, restrictions):
+    """On well-conditioned data every route of the factor-based prediction variances (OLS,
+    shared regressors, Cholesky GLS, robust kinds, restricted fits) equals the definition
+    sqrt(diag(x V_ii x')) with V = fit.vcov, to rounding."""
+    rng = np.random.default_rng(3)
+    T = 60
+    Xs = [np.column_stack([np.ones(T), rng.normal(size=(T, 2))])]
+    Xs += [Xs[0] if identical else np.column_stack([np.ones(T), rng.normal(size=(T, 2))]) for _ in range(2)]
+    u = rng.multivariate_normal([0, 0, 0], [[1, 0.5, 0.3], [0.5, 1, 0.4], [0.3, 0.4, 1]], size=T)
+    eqs = {f"e{i}": (Xs[i] @ rng.normal(size=3) + u[:, i], Xs[i]) for i in range(3)}
+    new = {k: rng.normal(size=(4, 3)) for k in eqs}
+    fit = blocksur.EquationSystem(eqs).fit(method, covariance=covariance, restrictions=restrictions)
+    v = fit.vcov.to_numpy()
+    expect = np.column_stack([
+        np.sqrt(np.einsum("ij,jk,ik->i", new[k], v[3 * i:3 * i + 3, 3 * i:3 * i + 3], new[k]))
+        for i, k in enumerate(eqs)
+    ])
+    np.testing.assert_allclose(fit.prediction_se(new).to_numpy(), expect, rtol=1e-12)
