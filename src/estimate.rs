@@ -1461,10 +1461,11 @@ fn iterated_singular(e: SurError, steps: usize) -> SurError {
         SurError::SingularOmega { equations, detail } => SurError::SingularOmega {
             equations,
             detail: format!(
-                "iterated FGLS, after {steps} GLS steps from a nonsingular start: {detail}. Here the \
-                 iterations drove Omega towards singularity, as happens when there are few observations \
-                 for the equations and coefficients (the likelihood may have no maximum); use \
-                 method='fgls', omega='ledoit-wolf', or more observations"
+                "iterated FGLS drove the cross-equation covariance towards singularity: it was \
+                 nonsingular at the start and is singular after {steps} GLS steps, as happens when \
+                 there are few observations for the equations and coefficients (the likelihood may \
+                 have no maximum); use method='fgls', omega='ledoit-wolf', or more observations. \
+                 (If the data themselves are the cause, the test of the last Omega reads: {detail})"
             ),
         },
         e => e,

@@ -229,3 +229,33 @@ def test_lr_close_to_wald_under_true_restrictions():
     assert abs(lr - w) <= 0.1 * (1 + w)
     assert max(lr, w) < stats.chi2.ppf(0.9999, 2)
     assert lr > 0 and w > 0
+
+
+def test_joint_wald_is_invariant_to_the_units_of_the_regressors():
+    """Regressors in very different units (income in dollars, a share): the joint Wald
+    statistic does not depend on the units (rescaling a regressor rescales its coefficient and
+    its covariance row together; common practice). It had been refused as 'R V R' singular'
+    when the units put R V R' eigenvalues 1e12 apart; compared with the same test with income
+    in millions, and with the definition (R b)' (R V R')^-1 (R b) computed here."""
+    rng = np.random.default_rng(4)
+    T = 200
+    income = rng.normal(50_000, 15_000, size=T)
+    share = rng.uniform(0, 1, size=T)
+    u = rng.multivariate_normal([0, 0], [[1, 0.5], [0.5, 1]], size=T)
+    y1 = 1 + 2e-5 * income + 0.8 * share + u[:, 0]
+    X2 = np.column_stack([np.ones(T), rng.normal(size=T)])
+    y2 = X2 @ [0.3, 1.0] + u[:, 1]
+    stats_ = []
+    for scale in (1.0, 1e-6):
+        X1 = np.column_stack([np.ones(T), income * scale, share])
+        fit = blocksur.EquationSystem({"a": (y1, X1), "b": (y2, X2)},
+                                      regressor_names={"a": ["const", "income", "share"], "b": ["const", "x"]}).fit("fgls")
+        w = fit.wald("a.income = 0; a.share = 0")
+        R = np.zeros((2, 5))
+        R[0, 1] = R[1, 2] = 1
+        b, V = fit.coef.to_numpy(), fit.vcov.to_numpy()
+        expect = float((R @ b) @ np.linalg.solve(R @ V @ R.T, R @ b))
+        np.testing.assert_allclose(w.statistic, expect, rtol=1e-9)
+        stats_.append(w.statistic)
+    err = ref.record("inference: joint Wald, income in dollars vs millions (rel)", abs(stats_[0] / stats_[1] - 1))
+    assert err < 1e-8

@@ -205,3 +205,66 @@ def test_multiindex_columns_name_regressors_by_their_joined_levels(fit):
     # a Series taken from such a frame is named the same way
     one = blocksur.EquationSystem({"south": (y2, X[("price", "mean")])})
     assert one.regressor_names == {"south": ["price_mean"]}
+
+
+def test_dataframe_of_mixed_numeric_column_dtypes_is_read_as_numbers():
+    """A regressor frame mixing float, bool (what pd.get_dummies returns) and nullable Int64
+    columns: numpy alone makes one array of objects of it (it was refused); the fit equals
+    statsmodels OLS on the same values as a float array (reference: statsmodels OLS)."""
+    import statsmodels.api as sm
+
+    rng = np.random.default_rng(11)
+    T = 80
+    zone = rng.choice(["n", "s", "w"], size=T)
+    X = pd.concat(
+        [
+            pd.DataFrame({"const": 1.0, "x": rng.normal(size=T)}),
+            pd.get_dummies(pd.Series(zone), prefix="zone", drop_first=True),
+            pd.DataFrame({"k": pd.array(rng.integers(0, 5, size=T), dtype="Int64")}),
+        ],
+        axis=1,
+    )
+    Xf = X.to_numpy(dtype=float)
+    y = Xf @ [1.0, 0.5, -0.3, 0.2, 0.1] + rng.normal(size=T)
+    y2 = rng.normal(size=T)
+    fit = blocksur.EquationSystem({"a": (y, X), "b": (y2, X[["const", "x"]])}).fit("ols", omega="dof")
+    assert list(fit.coef["a"].index) == ["const", "x", "zone_s", "zone_w", "k"]
+    np.testing.assert_allclose(fit.coef["a"].to_numpy(), sm.OLS(y, Xf).fit().params, rtol=1e-12)
+    # a missing value in a nullable column is reported with its row, not read as a number
+    Xm = X.copy()
+    Xm.loc[7, "k"] = pd.NA
+    with pytest.raises(blocksur.errors.NonFiniteError) as info:
+        blocksur.EquationSystem({"a": (y, Xm), "b": (y2, X[["const", "x"]])}).fit("ols")
+    assert info.value.row == 7 and info.value.equation == "a"
+
+
+def test_restriction_arrays_must_hold_real_numbers():
+    rng = np.random.default_rng(2)
+    T = 40
+    X = np.column_stack([np.ones(T), rng.normal(size=T)])
+    system = blocksur.EquationSystem({"a": (rng.normal(size=T), X), "b": (rng.normal(size=T), X)})
+    R = np.array([[0, 1, 0, -1]], dtype=complex)
+    for bad in ((R, np.zeros(1)), (np.array([["0", "1", "0", "-1"]]), np.zeros(1)), (R.real, np.array(["0"]))):
+        with pytest.raises(blocksur.errors.RestrictionError, match="real numbers"):
+            system.fit("fgls", restrictions=bad)
+    fit = system.fit("fgls")
+    with pytest.raises(blocksur.errors.RestrictionError, match="real numbers"):
+        fit.wald((R, np.zeros(1)))
+
+
+def test_column_labels_that_become_the_same_name_are_refused_at_construction():
+    """Two labels that name one regressor once made strings and joined (('price', 'mean') and
+    ('price_mean', ''); 0 and '0'): refused when the system is built, naming the labels (the
+    fit had failed later with 'appears twice' and no word of where the duplicate came from)."""
+    rng = np.random.default_rng(0)
+    T = 20
+    cases = [
+        pd.MultiIndex.from_tuples([("price", "mean"), ("price_mean", "")]),
+        pd.Index([0, "0"], dtype=object),
+    ]
+    for cols in cases:
+        X = pd.DataFrame(rng.normal(size=(T, 2)), columns=cols)
+        with pytest.raises(errors.ShapeMismatchError, match="appear more than once") as info:
+            blocksur.EquationSystem({"a": (rng.normal(size=T), X)})
+        assert info.value.equation == "a"
+        assert "column labels" in str(info.value)

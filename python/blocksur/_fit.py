@@ -489,13 +489,23 @@ class SystemFit:
                 )
         gap = r @ self.coef.to_numpy() - q
         rvr = r @ self.vcov.to_numpy() @ r.T
-        ev = np.linalg.eigvalsh((rvr + rvr.T) / 2)
-        if not ev[0] > 1e-12 * max(ev[-1], 0.0):
+        rvr = (rvr + rvr.T) / 2
+        # the singularity test and the solve on the correlation form of R V R': restrictions on
+        # coefficients in very different units (dollars and shares) scale its rows apart, and
+        # an eigenvalue test on R V R' itself had called such joint tests singular
+        d = np.sqrt(np.diag(rvr))
+        ok = bool(np.all(np.isfinite(d)) and np.all(d > 0))
+        if ok:
+            corr = rvr / np.outer(d, d)
+            ev = np.linalg.eigvalsh(corr)
+            ok = bool(ev[0] > 1e-12 * max(ev[-1], 0.0))
+        if not ok:
             raise InvalidOptionError(
                 "R V R' is singular: the restrictions concern coefficients whose covariance is "
                 "(numerically) degenerate"
             )
-        w = float(gap @ np.linalg.solve(rvr, gap))
+        gs = gap / d
+        w = float(gs @ np.linalg.solve(corr, gs))
         null = "; ".join(rset.texts)
         if form == "chi2":
             return HypothesisTestResult("Wald", null, w, "chi2", m, None, float(_stats().chi2.sf(w, m)))

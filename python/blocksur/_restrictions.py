@@ -195,6 +195,13 @@ def parse_restrictions(
     """Builds R and q from the string syntax or from an ``(R, q)`` pair of arrays."""
     k = sum(len(r) for r in regressors)
     if isinstance(spec, tuple) and len(spec) == 2 and not isinstance(spec[0], str):
+        for what, part in (("R", spec[0]), ("q", spec[1])):
+            kind = np.asarray(part).dtype.kind
+            if kind not in "biuf":
+                raise RestrictionError(
+                    f"{what} must hold real numbers (integers or floats), not dtype "
+                    f"{np.asarray(part).dtype} (complex, text, dates or durations are refused)"
+                )
         try:
             r = np.atleast_2d(np.asarray(spec[0], dtype=float))
             q = np.atleast_1d(np.asarray(spec[1], dtype=float))

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import collections
 import functools
 import math
 import os
@@ -219,7 +220,16 @@ def _as_float(name: str, what: str, value: Any, ndim: int, copy: bool = False) -
             equation=name,
         )
     _refuse_columns(name, what, value)
-    arr = np.asarray(value)
+    if isinstance(value, pd.DataFrame) or (
+        isinstance(value, pd.Series) and not isinstance(value.dtype, np.dtype)
+    ):
+        # numeric columns of mixed or pandas' own (nullable, pyarrow) dtypes, each checked
+        # above: numpy would make one array of objects of them (a float frame with the bool
+        # dummies of pd.get_dummies was refused); missing values become NaN, which the core
+        # reports with their row
+        arr = value.to_numpy(dtype=np.float64, na_value=np.nan)
+    else:
+        arr = np.asarray(value)
     err = _not_real(name, f"the {what}", arr.dtype)
     if err is not None:
         raise err
@@ -470,6 +480,21 @@ class EquationSystem(SystemLabels):
             if len(regs) != Xv.shape[1]:
                 raise ShapeMismatchError(
                     f"equation '{name}': {len(regs)} regressor names for {Xv.shape[1]} columns",
+                    equation=name,
+                )
+            if len(set(regs)) != len(regs):
+                twice = [r for r, count in collections.Counter(regs).items() if count > 1]
+                labels = (
+                    [c for c in X.columns if _label(c) in twice]
+                    if isinstance(X, pd.DataFrame) and name not in given
+                    else []
+                )
+                raise ShapeMismatchError(
+                    f"equation '{name}': the regressor name(s) {sorted(twice)} appear more than "
+                    "once"
+                    + (f" (from the column labels {labels}: as names, labels are strings and the "
+                       "levels of MultiIndex labels are joined with '_')" if labels else "")
+                    + "; rename the columns or give regressor_names",
                     equation=name,
                 )
             # read-only: no step of the library, and no user edit through a view, changes them
