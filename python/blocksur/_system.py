@@ -206,13 +206,12 @@ def _refuse_columns(name: str, what: str, value: Any) -> None:
             raise err
 
 
-def _as_float(name: str, what: str, value: Any, ndim: int, copy: bool = False) -> np.ndarray:
-    """``value`` as a float64 array of ``ndim`` dimensions (any strides), checked. With
-    ``copy=True`` the result never shares memory with ``value``: it is copied here unless the
-    conversion already made a new array (so at most one copy), keeping its memory order."""
+def _as_float(name: str, what: str, value: Any, ndim: int) -> np.ndarray:
+    """``value`` as a float64 array of ``ndim`` dimensions (any strides), checked; no copy
+    beyond what the conversion needs (the system's snapshot is `_snapshot`'s)."""
     if type(value) is np.ndarray and value.ndim == ndim and value.dtype == _F64:
         # already what the core reads (any strides): nothing to check or convert
-        return value.copy(order="K") if copy else value
+        return value
     if np.ma.isMaskedArray(value) and np.ma.getmaskarray(value).any():
         raise ShapeMismatchError(
             f"equation '{name}': the {what} is a masked array with masked values; fill them or "
@@ -241,10 +240,7 @@ def _as_float(name: str, what: str, value: Any, ndim: int, copy: bool = False) -
             f"equation '{name}': the {what} has shape {arr.shape}; expected {shape}",
             equation=name,
         )
-    out = np.asarray(arr, dtype=np.float64)  # no copy when already float64, any strides
-    if copy and arr.dtype == _F64 and _may_alias(value, out):
-        out = out.copy(order="K")
-    return out
+    return np.asarray(arr, dtype=np.float64)  # no copy when already float64, any strides
 
 
 def _shares(value: Any, arr: np.ndarray) -> bool:
