@@ -1269,10 +1269,29 @@ impl Prepared {
                 return Err(matrix_free_unsupported("the covariance matrix"));
             }
             let offsets = &self.offsets;
+            let mut t = Vec::new();
             let visited = self.inverse_panels(est, |i, x| {
-                let v = x.dot(&rinv[i].t());
-                for (j, col) in v.columns().into_iter().enumerate() {
-                    out[offsets[i] + j] = col.dot(&col);
+                let ki = x.ncols();
+                if ki > 16 {
+                    let v = x.dot(&rinv[i].t());
+                    for (j, col) in v.columns().into_iter().enumerate() {
+                        out[offsets[i] + j] = col.dot(&col);
+                    }
+                    return;
+                }
+                // column j of x R_i^-T is sum_c x[:, c] R_i^-1[j, c] (c >= j): narrow blocks
+                // without a BLAS call per equation
+                t.clear();
+                t.resize(x.nrows(), 0.0);
+                for j in 0..ki {
+                    t.iter_mut().for_each(|v| *v = 0.0);
+                    for c in j..ki {
+                        let f = rinv[i][[j, c]];
+                        for (tv, xv) in t.iter_mut().zip(x.column(c)) {
+                            *tv += f * xv;
+                        }
+                    }
+                    out[offsets[i] + j] = crate::linalg::dot(&t, &t);
                 }
             })?;
             if visited {
@@ -1638,6 +1657,9 @@ type PanelOfInverse<'a> = Box<dyn Fn(usize, usize) -> Result<Array2<f64>> + 'a>;
 /// Columns of whole equations per panel of L^-1 in `coef_variances` (a K x PANEL block).
 const PANEL: usize = 256;
 
+/// Factors up to this order are inverted by `inverse_columns`' own loops rather than BLAS.
+const SMALL_PANEL: usize = 64;
+
 /// Rows and columns c.. x c..d of L^-1 for the lower Cholesky factor from `chol_lower` (the
 /// rows above c are zero): solves L[c.., c..] X = I[c.., c..d] by one BLAS trsm.
 // A BLAS kernel: its home is linalg.rs, kept here while that module is being rewritten.
@@ -1653,6 +1675,26 @@ fn inverse_columns(l: &Array2<f64>, c: usize, d: usize) -> Result<Array2<f64>> {
     }
     if (0..m).any(|i| l[[c + i, c + i]] == 0.0) {
         return Err(SurError::numerical("inverse of the Cholesky factor", "zero on the diagonal"));
+    }
+    if m <= SMALL_PANEL {
+        // forward substitution by columns of L (contiguous): a BLAS trsm on a 20 x 20 factor
+        // cost 3 us of call overhead, most of a small system's standard errors
+        let lbuf = l.as_slice_memory_order().expect("column-major");
+        let xbuf = x.as_slice_memory_order_mut().expect("column-major");
+        for j in 0..w {
+            let col = &mut xbuf[j * m..(j + 1) * m];
+            for p in j..m {
+                let lcol = &lbuf[(c + p) * k + c..(c + p + 1) * k];
+                let v = col[p] / lcol[p];
+                col[p] = v;
+                if v != 0.0 {
+                    for (xi, li) in col[p + 1..].iter_mut().zip(&lcol[p + 1..m]) {
+                        *xi -= li * v;
+                    }
+                }
+            }
+        }
+        return Ok(x);
     }
     // SAFETY: `l` is k x k column-major, so L[c.., c..] starts at c * k + c with leading
     // dimension k; `x` is a fresh m x w column-major buffer with leading dimension m.
@@ -1812,5 +1854,28 @@ mod variance_tests {
             ys.iter().zip(&xs).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.view())).collect(),
         );
         assert!(matches!(Prepared::fgls_from_data(&data, Divisor::Ml, &|| true), Err(SurError::Interrupted)));
+    }
+
+    #[test]
+    fn panels_of_the_inverse_factor_solve_the_triangular_system_on_both_routes() {
+        // definition of the panel: L[c.., c..] X = I[c.., c..d]; orders on both sides of
+        // SMALL_PANEL (own loops below, BLAS trsm above), against the plain identity
+        for n in [7usize, SMALL_PANEL, SMALL_PANEL + 37] {
+            let l = Array2::from_shape_fn((n, n).f(), |(i, j)| {
+                if i < j { 0.0 } else if i == j { 1.0 + (i % 5) as f64 } else { ((i * 7 + j * 3) as f64 * 0.61).sin() }
+            });
+            for (c, d) in [(0, n), (0, 1), (n / 3, n / 2 + 1), (n - 1, n), (n, n)] {
+                let x = inverse_columns(&l, c, d).unwrap();
+                assert_eq!(x.dim(), (n - c, d - c));
+                let lx = l.slice(s![c.., c..]).dot(&x);
+                for ((i, j), v) in lx.indexed_iter() {
+                    let want = if i == j { 1.0 } else { 0.0 };
+                    assert!((v - want).abs() < 1e-12, "n {n} c {c} d {d}: (L X)[{i},{j}] = {v}");
+                }
+            }
+        }
+        let mut zero = Array2::<f64>::eye(5).reversed_axes(); // column-major, as the factors are
+        zero[[2, 2]] = 0.0;
+        assert!(inverse_columns(&zero, 0, 5).is_err());
     }
 }

@@ -575,11 +575,23 @@ pub fn chol_inverse_owned(l: Array2<f64>) -> Result<Array2<f64>> {
 /// The inverse of an upper-triangular matrix (column by column back substitution).
 pub fn upper_inverse(r: &Array2<f64>) -> Result<Array2<f64>> {
     let n = r.nrows();
+    if r.ncols() != n {
+        return Err(SurError::numerical("triangular solve", "shapes do not match"));
+    }
+    if (0..n).any(|i| r[[i, i]] == 0.0 || !r[[i, i]].is_finite()) {
+        return Err(SurError::numerical("triangular solve", "zero on the diagonal"));
+    }
+    // column j of R^-1 by back substitution on R x = e_j (rows j+1.. of x are zero), the same
+    // operations in the same order as `upper_solve`, without a vector per column
     let mut inv = Array2::<f64>::zeros((n, n));
     for j in 0..n {
-        let mut e = Array1::<f64>::zeros(n);
-        e[j] = 1.0;
-        inv.column_mut(j).assign(&upper_solve(r, &e)?);
+        for i in (0..=j).rev() {
+            let mut acc = if i == j { 1.0 } else { 0.0 };
+            for p in (i + 1)..=j {
+                acc -= r[[i, p]] * inv[[p, j]];
+            }
+            inv[[i, j]] = acc / r[[i, i]];
+        }
     }
     Ok(inv)
 }

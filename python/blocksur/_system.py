@@ -458,15 +458,19 @@ class EquationSystem(SystemLabels):
                     f"equation '{name}': expected a (y, X) pair", equation=name
                 )
             y, X = pair
-            if self._index is None and isinstance(y, (pd.Series, pd.DataFrame)):
-                self._index = y.index
-            first = _check_indexes(name, y, X, first)
+            plain = type(y) is np.ndarray and type(X) is np.ndarray  # no labels, no index
+            if not plain:
+                if self._index is None and isinstance(y, (pd.Series, pd.DataFrame)):
+                    self._index = y.index
+                first = _check_indexes(name, y, X, first)
             yv = _as_float(name, "dependent variable", y, 1)
             Xv = _as_float(name, "regressor matrix", X, 2)
             if copy:
                 shared.append((len(self._ys), _shares(y, yv), _shares(X, Xv)))
             if name in given:
                 regs = given[name]
+            elif plain:
+                regs = list(_default_regressors(Xv.shape[1]))
             elif isinstance(X, pd.DataFrame):
                 regs = [_label(c) for c in X.columns]
             elif isinstance(X, pd.Series) and X.name is not None:
@@ -493,15 +497,19 @@ class EquationSystem(SystemLabels):
                     + "; rename the columns or give regressor_names",
                     equation=name,
                 )
-            # read-only: no step of the library, and no user edit through a view, changes them
             self._ys.append(yv)
             self._xs.append(Xv)
             self._regressors.append(regs)
-        if shared:
+        if copy:
+            # every array is now the system's own (a snapshot copy or a fresh conversion)
             _snapshot(self._ys, self._xs, shared)
-        # read-only: no step of the library, and no user edit through a view, changes them
-        self._ys = [_read_only(y) for y in self._ys]
-        self._xs = [_read_only(x) for x in self._xs]
+            for a in self._ys + self._xs:
+                a.setflags(write=False)
+        else:
+            # read-only views: no step of the library, and no user edit through a view,
+            # changes them (the caller's arrays keep their flags)
+            self._ys = [_read_only(y) for y in self._ys]
+            self._xs = [_read_only(x) for x in self._xs]
         self._names = names
         self._prepared: Any = None
         self._sample: Any = None  # SampleInfo when built by from_table
