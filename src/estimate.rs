@@ -1045,6 +1045,41 @@ impl Prepared {
         Ok(out)
     }
 
+    /// Standard errors of a restricted fit from the factors of its covariance, without forming
+    /// it: se_j = s_j sqrt(p_j' C p_j / s_j^2) for row p_j of P (C = H'BH, or I), s_j the row's
+    /// largest magnitude. A regressor in units of 1e+-200 has a row of P near 1e-+200, whose
+    /// squares the covariance matrix cannot hold (se had come out 0 or inf); a coefficient
+    /// fixed by a restriction of its own has se 0, as its row and column of the covariance.
+    fn restricted_standard_errors(&self, est: &Estimate, p: &RestrictedParts, kind: CovKind, data: Option<&SystemData>) -> Result<Array1<f64>> {
+        let (mut pmat, middle) = self.restricted_factors(est, p, kind, data)?;
+        let mut size = Array1::<f64>::zeros(pmat.nrows());
+        for (mut row, s) in pmat.rows_mut().into_iter().zip(size.iter_mut()) {
+            *s = row.iter().fold(0.0f64, |a, v| a.max(v.abs()));
+            if *s > 0.0 && s.is_finite() {
+                let inv = 1.0 / *s;
+                row.mapv_inplace(|v| v * inv);
+            }
+        }
+        let pc = match &middle {
+            None => None,
+            Some(c) => Some(pmat.dot(c)),
+        };
+        let mut out = Array1::from_iter((0..pmat.nrows()).map(|j| {
+            let q = match &pc {
+                None => pmat.row(j).dot(&pmat.row(j)),
+                Some(pc) => pc.row(j).dot(&pmat.row(j)),
+            };
+            size[j] * q.max(0.0).sqrt()
+        }));
+        for row in p.space.r.rows() {
+            let mut nz = row.iter().enumerate().filter(|(_, x)| **x != 0.0).map(|(j, _)| j);
+            if let (Some(j), None) = (nz.next(), nz.next()) {
+                out[j] = 0.0;
+            }
+        }
+        Ok(out)
+    }
+
     /// The factors of `restricted_covariance`: P = N R_F^-1 (K x p) and H'BH (p x p; None when
     /// it is the identity, classical GLS), Cov(b) = P (H'BH) P'.
     fn restricted_factors(&self, est: &Estimate, p: &RestrictedParts, kind: CovKind, data: Option<&SystemData>) -> Result<(Array2<f64>, Option<Array2<f64>>)> {
@@ -1325,11 +1360,14 @@ impl Prepared {
     /// of 1e+-200 has a standard error near 1e-+200 whose square is beyond double precision,
     /// and squaring had given 0 or inf.
     pub fn coef_standard_errors(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array1<f64>> {
+        if let Some(p) = &est.restricted {
+            return self.restricted_standard_errors(est, p, kind, data);
+        }
         let plain = self.coef_variances(est, kind, data)?;
         // variances that are all well inside double precision's range (the usual case) serve
         // as they are; the column-scaled problem only where one is near it or beyond
         let safe = |v: &f64| v.abs() > 1e-280 && v.abs() < 1e280;
-        if est.restricted.is_some() || plain.iter().all(safe) {
+        if plain.iter().all(safe) {
             return Ok(plain.mapv_into(|v| v.max(0.0).sqrt()));
         }
         let mut norms = Vec::with_capacity(self.n_coef());

@@ -239,3 +239,36 @@ def test_rescaled_regressor_rescales_its_coefficient_and_se(scale, covariance):
     np.testing.assert_allclose(fit.se["b"].to_numpy(), base.se["b"].to_numpy(), rtol=1e-12)
     np.testing.assert_allclose(fit.stat.to_numpy(), base.stat.to_numpy(), rtol=1e-11)
     assert np.all(np.isfinite(fit.pval.to_numpy()))
+
+
+@pytest.mark.parametrize("scale", [1e200, 1e-200, 1e300, 1e-300])
+@pytest.mark.parametrize("covariance", ["classical", "hc0"])
+def test_rescaled_regressor_rescales_its_se_in_a_restricted_fit(scale, covariance):
+    """As above, with cross-equation restrictions that do not involve the rescaled regressor:
+    coefficient b_j / c and standard error se_j / |c|, the rest unchanged (linear
+    reparametrisation; common practice, no source needed). Restricted standard errors come
+    from the rows of the covariance's factor, scaled (they had been 0 or inf at c = 1e+-200,
+    the covariance's diagonal under- or overflowing); a coefficient the restrictions fix on
+    its own keeps a standard error of exactly 0."""
+    rng = np.random.default_rng(11)
+    T = 90
+    X = np.column_stack([np.ones(T), rng.normal(size=T), rng.normal(size=T)])
+    X2 = np.column_stack([np.ones(T), rng.normal(size=T), rng.normal(size=T)])
+    e = rng.multivariate_normal([0, 0], [[1.0, 0.5], [0.5, 1.0]], size=T)
+    y1 = X @ [1.0, 2.0, -0.5] + e[:, 0]
+    y2 = X2 @ [0.0, -0.5, 1.0] + e[:, 1]
+    rules = "a.x2 = b.x1; b.x0 = 0"
+    base = blocksur.EquationSystem({"a": (y1, X), "b": (y2, X2)}).fit(
+        "fgls", restrictions=rules, covariance=covariance
+    )
+    c = np.array([1.0, scale, 1.0])
+    fit = blocksur.EquationSystem({"a": (y1, X * c), "b": (y2, X2)}).fit(
+        "fgls", restrictions=rules, covariance=covariance
+    )
+    np.testing.assert_allclose(fit.coef["a"].to_numpy() * c, base.coef["a"].to_numpy(), rtol=1e-10)
+    np.testing.assert_allclose(fit.se["a"].to_numpy() * c, base.se["a"].to_numpy(), rtol=1e-10)
+    np.testing.assert_allclose(fit.se["b"].to_numpy(), base.se["b"].to_numpy(), rtol=1e-10)
+    assert fit.se[("b", "x0")] == 0.0 and base.se[("b", "x0")] == 0.0
+    assert np.all(fit.se.drop(("b", "x0")).to_numpy() > 0)
+    # the moderate-scale standard errors equal the square roots of the covariance's diagonal
+    np.testing.assert_allclose(base.se.to_numpy(), np.sqrt(np.diag(base.vcov.to_numpy())), rtol=1e-12)
