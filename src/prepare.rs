@@ -245,16 +245,28 @@ fn gram_across(w: &Array2<f64>, offsets: &[usize]) -> Array2<f64> {
     crate::linalg::gram_dots(buf, t, p, |i, j| owner[i] == owner[j])
 }
 
+/// The largest |value| (0 for none; NaN is skipped, as `f64::max` does: non-finite values are
+/// refused by their own check).
+pub(crate) fn abs_max<'a>(y: impl IntoIterator<Item = &'a f64>) -> f64 {
+    y.into_iter().fold(0.0f64, |a, v| a.max(v.abs()))
+}
+
 /// Refuses a dependent variable whose largest |value| is outside Y_RANGE (naming the equation
 /// and which way it falls out), where its residual variance cannot be represented.
 fn y_in_range<'a>(eq: &Equation, y: impl Iterator<Item = &'a f64>) -> Result<()> {
-    let ymax = y.fold(0.0f64, |a, v| a.max(v.abs()));
+    y_max_in_range(&eq.name, abs_max(y))
+}
+
+/// The check of `y_in_range` on the largest |y| of equation `equation`, however it was found
+/// (in one pass over the data, or as the running maximum of the summaries of chunks). Zero (a y
+/// of zeros) and non-finite values pass: other checks judge them.
+pub(crate) fn y_max_in_range(equation: &str, ymax: f64) -> Result<()> {
     if !(ymax.is_finite() && ymax > 0.0) || (Y_RANGE.0..=Y_RANGE.1).contains(&ymax) {
         return Ok(());
     }
     let small = ymax < 1.0;
     Err(SurError::Scale {
-        equation: eq.name.clone(),
+        equation: equation.to_string(),
         detail: format!(
             "the dependent variable's largest value in magnitude is {ymax:.1e}, too {} for its sums \
              of squares and residual variance in double precision (they {} beyond 1e{}308)",

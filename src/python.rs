@@ -478,18 +478,21 @@ impl PyEstimate {
     }
 }
 
-type Factors<'py> = (usize, Vec<PyReadonlyArray2<'py, f64>>);
+/// A pass-1 summary: (n_rows, [R of [X_i | y_i]], [largest |y_i|]).
+type Factors<'py> = (usize, Vec<PyReadonlyArray2<'py, f64>>, Vec<f64>);
+type FactorsOut<'py> = (usize, Vec<Bound<'py, PyArray2<f64>>>, Vec<f64>);
 
 fn factors_from_py(f: &Factors<'_>) -> RowFactors {
-    RowFactors { n_rows: f.0, r: f.1.iter().map(|a| a.as_array().to_owned()).collect() }
+    RowFactors { n_rows: f.0, r: f.1.iter().map(|a| a.as_array().to_owned()).collect(), y_max: f.2.clone() }
 }
 
-fn factors_to_py<'py>(py: Python<'py>, f: RowFactors) -> (usize, Vec<Bound<'py, PyArray2<f64>>>) {
-    (f.n_rows, f.r.into_iter().map(|a| a.into_pyarray(py)).collect())
+fn factors_to_py<'py>(py: Python<'py>, f: RowFactors) -> FactorsOut<'py> {
+    (f.n_rows, f.r.into_iter().map(|a| a.into_pyarray(py)).collect(), f.y_max)
 }
 
-/// The fields the pass-2 and one-pass summaries share: row count, column sums, y moments.
-type Shared = (usize, ndarray::Array1<f64>, Vec<f64>, Vec<f64>, Vec<f64>);
+/// The fields the pass-2 and one-pass summaries share: row count, column sums, y moments and
+/// largest |y|.
+type Shared = (usize, ndarray::Array1<f64>, Vec<f64>, Vec<f64>, Vec<f64>, Vec<f64>);
 
 fn item<'py>(d: &Bound<'py, PyDict>, k: &str, what: &str) -> PyResult<Bound<'py, pyo3::PyAny>> {
     d.get_item(k)?.ok_or_else(|| PyValueError::new_err(format!("{what} lacks '{k}'")))
@@ -502,6 +505,7 @@ fn shared_from_py(d: &Bound<'_, PyDict>, what: &str) -> PyResult<Shared> {
         item(d, "y_mean", what)?.extract()?,
         item(d, "y_m2", what)?.extract()?,
         item(d, "y_raw", what)?.extract()?,
+        item(d, "y_max", what)?.extract()?,
     ))
 }
 
@@ -513,27 +517,28 @@ fn shared_to_py<'py>(py: Python<'py>, s: Shared, key: &str, matrix: ndarray::Arr
     d.set_item("y_mean", s.2)?;
     d.set_item("y_m2", s.3)?;
     d.set_item("y_raw", s.4)?;
+    d.set_item("y_max", s.5)?;
     Ok(d)
 }
 
 fn stats_from_py(d: &Bound<'_, PyDict>) -> PyResult<CrossStats> {
-    let (n_rows, colsum, y_mean, y_m2, y_raw) = shared_from_py(d, "pass-2 summary")?;
+    let (n_rows, colsum, y_mean, y_m2, y_raw, y_max) = shared_from_py(d, "pass-2 summary")?;
     let gram = item(d, "gram", "pass-2 summary")?.extract::<PyReadonlyArray2<f64>>()?.as_array().to_owned();
-    Ok(CrossStats { n_rows, gram, colsum, y_mean, y_m2, y_raw })
+    Ok(CrossStats { n_rows, gram, colsum, y_mean, y_m2, y_raw, y_max })
 }
 
 fn stats_to_py(py: Python<'_>, s: CrossStats) -> PyResult<Bound<'_, PyDict>> {
-    shared_to_py(py, (s.n_rows, s.colsum, s.y_mean, s.y_m2, s.y_raw), "gram", s.gram)
+    shared_to_py(py, (s.n_rows, s.colsum, s.y_mean, s.y_m2, s.y_raw, s.y_max), "gram", s.gram)
 }
 
 fn summary_from_py(d: &Bound<'_, PyDict>) -> PyResult<RowSummary> {
-    let (n_rows, colsum, y_mean, y_m2, y_raw) = shared_from_py(d, "row summary")?;
+    let (n_rows, colsum, y_mean, y_m2, y_raw, y_max) = shared_from_py(d, "row summary")?;
     let r = item(d, "r", "row summary")?.extract::<PyReadonlyArray2<f64>>()?.as_array().to_owned();
-    Ok(RowSummary { n_rows, r, colsum, y_mean, y_m2, y_raw })
+    Ok(RowSummary { n_rows, r, colsum, y_mean, y_m2, y_raw, y_max })
 }
 
 fn summary_to_py(py: Python<'_>, s: RowSummary) -> PyResult<Bound<'_, PyDict>> {
-    shared_to_py(py, (s.n_rows, s.colsum, s.y_mean, s.y_m2, s.y_raw), "r", s.r)
+    shared_to_py(py, (s.n_rows, s.colsum, s.y_mean, s.y_m2, s.y_raw, s.y_max), "r", s.r)
 }
 
 fn default_names(n: usize, xs: &[PyReadonlyArray2<'_, f64>]) -> (Vec<String>, Vec<Vec<String>>) {
@@ -542,7 +547,8 @@ fn default_names(n: usize, xs: &[PyReadonlyArray2<'_, f64>]) -> (Vec<String>, Ve
     (names, regs)
 }
 
-/// Pass 1 of a chunked fit on one chunk: (n_rows, [R of [X_i | y_i] per equation]).
+/// Pass 1 of a chunked fit on one chunk: (n_rows, [R of [X_i | y_i] per equation], [largest
+/// |y_i| per equation]).
 #[pyfunction]
 #[pyo3(signature = (ys, xs, names, regressors, row_offset=0))]
 fn pass1_chunk<'py>(
@@ -552,7 +558,7 @@ fn pass1_chunk<'py>(
     names: Vec<String>,
     regressors: Vec<Vec<String>>,
     row_offset: usize,
-) -> PyResult<(usize, Vec<Bound<'py, PyArray2<f64>>>)> {
+) -> PyResult<FactorsOut<'py>> {
     let data = equations(&ys, &xs, &names, &regressors)?;
     let out = detach_gated(py, || RowFactors::from_chunk(&data, row_offset)).map_err(|e| raise(py, e))?;
     Ok(factors_to_py(py, out))
@@ -560,10 +566,17 @@ fn pass1_chunk<'py>(
 
 /// Merges two pass-1 summaries.
 #[pyfunction]
-fn pass1_merge<'py>(py: Python<'py>, a: Factors<'py>, b: Factors<'py>) -> PyResult<(usize, Vec<Bound<'py, PyArray2<f64>>>)> {
+fn pass1_merge<'py>(py: Python<'py>, a: Factors<'py>, b: Factors<'py>) -> PyResult<FactorsOut<'py>> {
     let (a, b) = (factors_from_py(&a), factors_from_py(&b));
     let out = detach_gated(py, || a.merge(b)).map_err(|e| raise(py, e))?;
     Ok(factors_to_py(py, out))
+}
+
+/// Refuses a merged pass-1 summary whose largest |y| of an equation of `names` is out of range
+/// (InputError naming it, as finishing would), before pass 2 reads the rows again.
+#[pyfunction]
+fn pass1_check(py: Python<'_>, names: Vec<String>, factors: Factors<'_>) -> PyResult<()> {
+    factors_from_py(&factors).check_y_range(&names).map_err(|e| raise(py, e))
 }
 
 /// Pass 2 of a chunked fit on one chunk, given the merged pass-1 summary: a dict of sums.
@@ -594,7 +607,7 @@ fn pass2_merge<'py>(py: Python<'py>, a: Bound<'py, PyDict>, b: Bound<'py, PyDict
 }
 
 /// One-pass summary of a chunk (a square root of Z'Z for Z = [X_1 y_1 .. X_N y_N], column
-/// sums, y moments): a dict that `row_merge` combines and `row_finish` completes.
+/// sums, y moments and largest |y|): a dict that `row_merge` combines and `row_finish` completes.
 #[pyfunction]
 #[pyo3(signature = (ys, xs, names, regressors, row_offset=0))]
 fn row_chunk<'py>(
@@ -619,16 +632,16 @@ fn row_merge<'py>(py: Python<'py>, a: Bound<'py, PyDict>, b: Bound<'py, PyDict>)
 }
 
 /// The pass-1 factors and pass-2 statistics of the rows a one-pass summary covers, for
-/// equations of `widths[i]` = K_i + 1 columns.
+/// equations `names` of `widths[i]` = K_i + 1 columns.
 #[pyfunction]
-#[allow(clippy::type_complexity)]
 fn row_finish<'py>(
     py: Python<'py>,
     summary: Bound<'py, PyDict>,
     widths: Vec<usize>,
-) -> PyResult<((usize, Vec<Bound<'py, PyArray2<f64>>>), Bound<'py, PyDict>)> {
+    names: Vec<String>,
+) -> PyResult<(FactorsOut<'py>, Bound<'py, PyDict>)> {
     let s = summary_from_py(&summary)?;
-    let (f, st) = detach_gated(py, || s.finish(&widths)).map_err(|e| raise(py, e))?;
+    let (f, st) = detach_gated(py, || s.finish(&names, &widths)).map_err(|e| raise(py, e))?;
     Ok((factors_to_py(py, f), stats_to_py(py, st)?))
 }
 
@@ -760,6 +773,7 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(residuals, m)?)?;
     m.add_function(wrap_pyfunction!(pass1_chunk, m)?)?;
     m.add_function(wrap_pyfunction!(pass1_merge, m)?)?;
+    m.add_function(wrap_pyfunction!(pass1_check, m)?)?;
     m.add_function(wrap_pyfunction!(pass2_chunk, m)?)?;
     m.add_function(wrap_pyfunction!(pass2_merge, m)?)?;
     m.add_function(wrap_pyfunction!(prepare_from_summaries, m)?)?;

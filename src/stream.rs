@@ -7,19 +7,24 @@
 //! matrices W_c'W_c (P x P). Both summaries merge associatively, in any order and any tree, and
 //! `Prepared::from_summaries` finishes exactly as the in-memory path does. `RowSummary` gets
 //! both summaries from one read of the rows (a tall-skinny QR of all the columns at once).
+//! All three carry the largest |y_i| of the rows (merged by taking the maximum: exact, in any
+//! order), so that finishing refuses a y out of the range of the in-memory path with its message
+//! (and a caller running the passes apart can refuse it after pass 1: `RowFactors::check_y_range`).
 
 use ndarray::{concatenate, s, Array1, Array2, Axis, ShapeBuilder};
 
 use crate::error::{Result, SurError};
 use crate::linalg::{gram, symmetrize, upper_inverse};
-use crate::prepare::{check_rank, cond_of_scaled, CrossProducts, EquationFactor, Prepared};
+use crate::prepare::{abs_max, check_rank, cond_of_scaled, y_max_in_range, CrossProducts, EquationFactor, Prepared};
 use crate::system::SystemData;
 
-/// Pass-1 summary of some rows: per equation the upper-triangular R of [X_i | y_i].
+/// Pass-1 summary of some rows: per equation the upper-triangular R of [X_i | y_i], and the
+/// largest |y_i| (merged by max).
 #[derive(Debug, Clone)]
 pub struct RowFactors {
     pub n_rows: usize,
     pub r: Vec<Array2<f64>>,
+    pub y_max: Vec<f64>,
 }
 
 /// The R factor (m x m; rows below min(rows, m) zero) of a rows x m matrix, by LAPACK dgeqrf
@@ -102,14 +107,26 @@ impl RowFactors {
             };
             r.push(tsqr_rows(rows, k + 1, fill, "QR of a chunk")?);
         }
-        Ok(RowFactors { n_rows: rows, r })
+        let y_max = data.equations.iter().map(|eq| abs_max(eq.y)).collect();
+        Ok(RowFactors { n_rows: rows, r, y_max })
+    }
+
+    /// Refuses the rows, as finishing would, when the largest |y| of an equation of `names` is
+    /// out of range: for callers that run pass 2 apart, so that they stop before reading the rows
+    /// again (and before pass 2 meets factors that overflowed).
+    pub fn check_y_range(&self, names: &[String]) -> Result<()> {
+        if names.len() != self.y_max.len() || names.len() != self.r.len() {
+            return Err(SurError::InvalidOption("the pass-1 summary does not match the system".into()));
+        }
+        check_y_range(names, &self.y_max)
     }
 
     /// The summary of the union of two sets of rows.
     pub fn merge(self, other: RowFactors) -> Result<RowFactors> {
-        if self.r.len() != other.r.len() {
+        if self.r.len() != other.r.len() || self.y_max.len() != self.r.len() || other.y_max.len() != other.r.len() {
             return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
         }
+        let y_max = merge_max(&self.y_max, &other.y_max);
         let mut r = Vec::with_capacity(self.r.len());
         for (a, b) in self.r.into_iter().zip(other.r) {
             if a.dim() != b.dim() || a.nrows() != a.ncols() || a.nrows() == 0 {
@@ -120,7 +137,7 @@ impl RowFactors {
             f.assign(&stacked);
             r.push(qr_r(f, "QR of stacked chunk factors")?);
         }
-        Ok(RowFactors { n_rows: self.n_rows + other.n_rows, r })
+        Ok(RowFactors { n_rows: self.n_rows + other.n_rows, r, y_max })
     }
 }
 
@@ -132,11 +149,12 @@ pub struct CrossStats {
     pub gram: Array2<f64>,
     /// Column sums of W (P).
     pub colsum: Array1<f64>,
-    /// Per equation: mean of y and sum of squares about it (merged by Chan's formula), and the
-    /// raw sum of squares.
+    /// Per equation: mean of y and sum of squares about it (merged by Chan's formula), the raw
+    /// sum of squares, and the largest |y| (merged by max).
     pub y_mean: Vec<f64>,
     pub y_m2: Vec<f64>,
     pub y_raw: Vec<f64>,
+    pub y_max: Vec<f64>,
 }
 
 /// The inverses of the merged pass-1 factors, computed once and shared by every chunk of pass 2.
@@ -199,8 +217,8 @@ impl CrossStats {
             w.column_mut(k + i).assign(&qa.column(ki).mapv(|v| v * basis.sign[i]));
             off += ki;
         }
-        let (y_mean, y_m2, y_raw) = y_moments(data, rows);
-        Ok(CrossStats { n_rows: rows, gram: gram(w.view()), colsum: w.sum_axis(Axis(0)), y_mean, y_m2, y_raw })
+        let (y_mean, y_m2, y_raw, y_max) = y_moments(data, rows);
+        Ok(CrossStats { n_rows: rows, gram: gram(w.view()), colsum: w.sum_axis(Axis(0)), y_mean, y_m2, y_raw, y_max })
     }
 
     /// The summary of the union of two sets of rows.
@@ -212,12 +230,13 @@ impl CrossStats {
             || self.y_mean.len() != other.y_mean.len()
             || self.y_m2.len() != other.y_m2.len()
             || self.y_raw.len() != other.y_raw.len()
+            || self.y_max.len() != other.y_max.len()
         {
             return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
         }
-        let (y_mean, y_m2, y_raw) = merge_moments(
-            (self.n_rows, &self.y_mean, &self.y_m2, &self.y_raw),
-            (other.n_rows, &other.y_mean, &other.y_m2, &other.y_raw),
+        let (y_mean, y_m2, y_raw, y_max) = merge_moments(
+            (self.n_rows, &self.y_mean, &self.y_m2, &self.y_raw, &self.y_max),
+            (other.n_rows, &other.y_mean, &other.y_m2, &other.y_raw, &other.y_max),
         );
         Ok(CrossStats {
             n_rows: self.n_rows + other.n_rows,
@@ -226,26 +245,33 @@ impl CrossStats {
             y_mean,
             y_m2,
             y_raw,
+            y_max,
         })
     }
 }
 
-/// Per equation: the mean of y, its sum of squares about the mean, and its raw sum of squares.
-fn y_moments(data: &SystemData, rows: usize) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
-    let (mut y_mean, mut y_m2, mut y_raw) = (Vec::new(), Vec::new(), Vec::new());
+/// Per equation: the mean of y, its sum of squares about the mean, its raw sum of squares, and
+/// its largest |value|.
+type YStats = (Vec<f64>, Vec<f64>, Vec<f64>, Vec<f64>);
+
+/// The `YStats` of the rows of a chunk.
+fn y_moments(data: &SystemData, rows: usize) -> YStats {
+    let (mut y_mean, mut y_m2, mut y_raw, mut y_max) = (Vec::new(), Vec::new(), Vec::new(), Vec::new());
     for eq in &data.equations {
         let mean = if rows > 0 { eq.y.sum() / rows as f64 } else { 0.0 };
         y_mean.push(mean);
         y_m2.push(eq.y.iter().map(|v| (v - mean) * (v - mean)).sum());
         y_raw.push(eq.y.iter().map(|v| v * v).sum());
+        y_max.push(abs_max(eq.y));
     }
-    (y_mean, y_m2, y_raw)
+    (y_mean, y_m2, y_raw, y_max)
 }
 
-type Moments<'a> = (usize, &'a [f64], &'a [f64], &'a [f64]);
+type Moments<'a> = (usize, &'a [f64], &'a [f64], &'a [f64], &'a [f64]);
 
-/// The moments of the union of two sets of rows (Chan et al.'s update for the sum of squares).
-fn merge_moments(a: Moments<'_>, b: Moments<'_>) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
+/// The `YStats` of the union of two sets of rows (Chan et al.'s update for the sum of squares;
+/// the maximum of the two maxima, exact in any order).
+fn merge_moments(a: Moments<'_>, b: Moments<'_>) -> YStats {
     let (na, nb) = (a.0 as f64, b.0 as f64);
     let n = na + nb;
     let mut y_mean = Vec::new();
@@ -256,17 +282,30 @@ fn merge_moments(a: Moments<'_>, b: Moments<'_>) -> (Vec<f64>, Vec<f64>, Vec<f64
         y_m2.push(a.2[i] + b.2[i] + if n > 0.0 { d * d * na * nb / n } else { 0.0 });
     }
     let y_raw = a.3.iter().zip(b.3).map(|(x, y)| x + y).collect();
-    (y_mean, y_m2, y_raw)
+    (y_mean, y_m2, y_raw, merge_max(a.4, b.4))
+}
+
+/// The largest |y| of the union of two sets of rows, per equation.
+fn merge_max(a: &[f64], b: &[f64]) -> Vec<f64> {
+    a.iter().zip(b).map(|(x, y)| x.max(*y)).collect()
+}
+
+/// Refuses summarised rows in which an equation's largest |y| lies outside the range the
+/// in-memory data pass accepts, with its message: called where the summaries are finished,
+/// before anything is computed from them.
+fn check_y_range(names: &[String], y_max: &[f64]) -> Result<()> {
+    names.iter().zip(y_max).try_for_each(|(name, &m)| y_max_in_range(name, m))
 }
 
 /// One-pass summary of some rows. With Z = [X_1 y_1 .. X_N y_N] (T x P, each equation's
 /// columns together), `r` is a square root of Z'Z (r'r = Z'Z, at most P rows) from tall-skinny
 /// QR: a chunk's R, and the R of two stacked summaries for their union. Orthogonal
 /// transformations only, so nothing is lost to the conditioning of Z'Z. With it come the column
-/// sums of Z and the moments of each y. `finish` turns it into exactly what the two passes
-/// give: Z = Q_Z r for an orthonormal Q_Z, so the QR [U_i u_i] R_i of equation i's columns of
-/// `r` makes Q_Z [U_i u_i] the Q factor of [X_i | y_i], and W'W is the Gram matrix of the
-/// small matrix [U_1 .. U_N, u_1 .. u_N] (P x P): one read of the rows instead of two.
+/// sums of Z and the moments and largest |value| of each y. `finish` turns it into exactly what
+/// the two passes give: Z = Q_Z r for an orthonormal Q_Z, so the QR [U_i u_i] R_i of equation
+/// i's columns of `r` makes Q_Z [U_i u_i] the Q factor of [X_i | y_i], and W'W is the Gram
+/// matrix of the small matrix [U_1 .. U_N, u_1 .. u_N] (P x P): one read of the rows instead of
+/// two.
 #[derive(Debug, Clone)]
 pub struct RowSummary {
     pub n_rows: usize,
@@ -275,6 +314,7 @@ pub struct RowSummary {
     pub y_mean: Vec<f64>,
     pub y_m2: Vec<f64>,
     pub y_raw: Vec<f64>,
+    pub y_max: Vec<f64>,
 }
 
 impl RowSummary {
@@ -300,8 +340,8 @@ impl RowSummary {
             }
         };
         let r = tsqr_rows(rows, p, fill, "QR of a chunk")?;
-        let (y_mean, y_m2, y_raw) = y_moments(data, rows);
-        Ok(RowSummary { n_rows: rows, r, colsum, y_mean, y_m2, y_raw })
+        let (y_mean, y_m2, y_raw, y_max) = y_moments(data, rows);
+        Ok(RowSummary { n_rows: rows, r, colsum, y_mean, y_m2, y_raw, y_max })
     }
 
     /// The summary of the union of two sets of rows.
@@ -315,6 +355,8 @@ impl RowSummary {
             || other.y_m2.len() != other.y_mean.len()
             || self.y_raw.len() != self.y_mean.len()
             || other.y_raw.len() != other.y_mean.len()
+            || self.y_max.len() != self.y_mean.len()
+            || other.y_max.len() != other.y_mean.len()
         {
             return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
         }
@@ -322,9 +364,9 @@ impl RowSummary {
         let mut f = Array2::<f64>::zeros(stacked.dim().f());
         f.assign(&stacked);
         let r = qr_r(f, "QR of stacked chunk summaries")?;
-        let (y_mean, y_m2, y_raw) = merge_moments(
-            (self.n_rows, &self.y_mean, &self.y_m2, &self.y_raw),
-            (other.n_rows, &other.y_mean, &other.y_m2, &other.y_raw),
+        let (y_mean, y_m2, y_raw, y_max) = merge_moments(
+            (self.n_rows, &self.y_mean, &self.y_m2, &self.y_raw, &self.y_max),
+            (other.n_rows, &other.y_mean, &other.y_m2, &other.y_raw, &other.y_max),
         );
         Ok(RowSummary {
             n_rows: self.n_rows + other.n_rows,
@@ -333,17 +375,27 @@ impl RowSummary {
             y_mean,
             y_m2,
             y_raw,
+            y_max,
         })
     }
 
-    /// The pass-1 and pass-2 summaries of the same rows, for equations with `widths[i]` =
-    /// K_i + 1 columns each.
-    pub fn finish(&self, widths: &[usize]) -> Result<(RowFactors, CrossStats)> {
+    /// The pass-1 and pass-2 summaries of the same rows, for equations `names` with
+    /// `widths[i]` = K_i + 1 columns each. A y out of range is refused here, naming its
+    /// equation, before the factors (which may then hold infinities) are looked at.
+    pub fn finish(&self, names: &[String], widths: &[usize]) -> Result<(RowFactors, CrossStats)> {
         let n = widths.len();
         let p: usize = widths.iter().sum();
-        if n == 0 || widths.contains(&0) || p != self.r.ncols() || self.colsum.len() != p || self.y_mean.len() != n {
+        if n == 0
+            || names.len() != n
+            || widths.contains(&0)
+            || p != self.r.ncols()
+            || self.colsum.len() != p
+            || self.y_mean.len() != n
+            || self.y_max.len() != n
+        {
             return Err(SurError::InvalidOption("the summary does not match the system".into()));
         }
+        check_y_range(names, &self.y_max)?;
         if self.r.iter().any(|v| !v.is_finite()) {
             return Err(SurError::InvalidOption("the summary holds non-finite values".into()));
         }
@@ -384,8 +436,9 @@ impl RowSummary {
             y_mean: self.y_mean.clone(),
             y_m2: self.y_m2.clone(),
             y_raw: self.y_raw.clone(),
+            y_max: self.y_max.clone(),
         };
-        Ok((RowFactors { n_rows: self.n_rows, r: factors }, stats))
+        Ok((RowFactors { n_rows: self.n_rows, r: factors, y_max: self.y_max.clone() }, stats))
     }
 }
 
@@ -415,9 +468,11 @@ impl Prepared {
             || stats.y_mean.len() != n
             || stats.y_m2.len() != n
             || stats.y_raw.len() != n
+            || stats.y_max.len() != n
         {
             return Err(SurError::InvalidOption("the pass-2 summary does not match the system".into()));
         }
+        check_y_range(&names, &stats.y_max)?;
         let mut out = Vec::with_capacity(n);
         for i in 0..n {
             let ki = regressors[i].len();

@@ -346,19 +346,33 @@ fn tree_merge<T>(mut level: Vec<T>, merge: impl Fn(T, T) -> T) -> T {
     level.pop().unwrap()
 }
 
+/// Rows a..b of the system (ys, xs), equations named e0, e1, ...
+fn rows_of<'a>(ys: &'a [Array1<f64>], xs: &'a [Array2<f64>], a: usize, b: usize) -> SystemData<'a> {
+    SystemData::new(
+        ys.iter()
+            .zip(xs)
+            .enumerate()
+            .map(|(i, (y, x))| Equation::new(format!("e{i}"), y.slice(s![a..b]), x.slice(s![a..b, ..])))
+            .collect(),
+    )
+}
+
 fn chunked_prepared(ys: &[Array1<f64>], xs: &[Array2<f64>], bounds: &[usize], one_pass: bool) -> Prepared {
+    try_chunked_prepared(ys, xs, bounds, one_pass).unwrap()
+}
+
+/// The chunk summaries of the rows `bounds[c]..bounds[c + 1]`, tree-merged (one pass) or merged
+/// last chunk first (two passes), and the prepared system finished from them.
+fn try_chunked_prepared(
+    ys: &[Array1<f64>],
+    xs: &[Array2<f64>],
+    bounds: &[usize],
+    one_pass: bool,
+) -> crate::error::Result<Prepared> {
     use crate::{CrossStats, Pass2Basis, RowFactors, RowSummary};
     let names: Vec<String> = (0..ys.len()).map(|i| format!("e{i}")).collect();
     let regs: Vec<Vec<String>> = xs.iter().map(|x| (0..x.ncols()).map(|j| format!("x{j}")).collect()).collect();
-    let chunk = |a: usize, b: usize| {
-        SystemData::new(
-            ys.iter()
-                .zip(xs)
-                .enumerate()
-                .map(|(i, (y, x))| Equation::new(format!("e{i}"), y.slice(s![a..b]), x.slice(s![a..b, ..])))
-                .collect(),
-        )
-    };
+    let chunk = |a: usize, b: usize| rows_of(ys, xs, a, b);
     let pieces: Vec<(usize, usize)> = bounds.windows(2).map(|w| (w[0], w[1])).collect();
     if one_pass {
         let all = tree_merge(
@@ -366,23 +380,23 @@ fn chunked_prepared(ys: &[Array1<f64>], xs: &[Array2<f64>], bounds: &[usize], on
             |a, b| a.merge(b).unwrap(),
         );
         let widths: Vec<usize> = xs.iter().map(|x| x.ncols() + 1).collect();
-        let (factors, stats) = all.finish(&widths).unwrap();
-        return Prepared::from_summaries(names, regs, &factors, &stats).unwrap();
+        let (factors, stats) = all.finish(&names, &widths)?;
+        return Prepared::from_summaries(names, regs, &factors, &stats);
     }
     let factors =
         tree_merge(pieces.iter().map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap()).collect(), |a, b| {
             a.merge(b).unwrap()
         });
-    let basis = Pass2Basis::new(&factors).unwrap();
+    let basis = Pass2Basis::new(&factors)?;
     let mut stats: Option<CrossStats> = None;
     for &(a, b) in pieces.iter().rev() {
-        let c = CrossStats::from_chunk(&chunk(a, b), &basis, a).unwrap();
+        let c = CrossStats::from_chunk(&chunk(a, b), &basis, a)?;
         stats = Some(match stats {
             None => c,
-            Some(s) => s.merge(c).unwrap(),
+            Some(s) => s.merge(c)?,
         });
     }
-    Prepared::from_summaries(names, regs, &factors, &stats.unwrap()).unwrap()
+    Prepared::from_summaries(names, regs, &factors, &stats.unwrap())
 }
 
 #[test]
@@ -404,6 +418,68 @@ fn chunked_passes_equal_the_in_memory_fit() {
         for i in 0..3 {
             assert_relative_eq!(full.factors[i].tss_centred, prep.factors[i].tss_centred, max_relative = 1e-12);
             assert_eq!(full.factors[i].spans_constant, prep.factors[i].spans_constant);
+        }
+    }
+}
+
+#[test]
+fn chunk_summaries_keep_the_largest_y_and_refuse_it_out_of_range_as_in_memory() {
+    use crate::{CrossStats, Pass2Basis, RowFactors, RowSummary};
+    let (mut ys, xs) = system(&[3, 2, 4], 53, 41);
+    let bounds = [0, 7, 8, 30, 53];
+    let pieces: Vec<(usize, usize)> = bounds.windows(2).map(|w| (w[0], w[1])).collect();
+    let names: Vec<String> = (0..3).map(|i| format!("e{i}")).collect();
+    let widths: Vec<usize> = xs.iter().map(|x| x.ncols() + 1).collect();
+    let chunk = |a: usize, b: usize| rows_of(&ys, &xs, a, b);
+    // The merged running maximum is the largest |y_i| over all rows, exactly, whatever the
+    // merge order (max is exact, commutative and associative).
+    let truth: Vec<f64> = ys.iter().map(|y| y.iter().fold(0.0f64, |m, v| m.max(v.abs()))).collect();
+    let summaries = || pieces.iter().map(|&(a, b)| RowSummary::from_chunk(&chunk(a, b), a).unwrap());
+    let tree = tree_merge(summaries().collect(), |a, b| a.merge(b).unwrap());
+    let backwards = summaries().rev().reduce(|a, b| a.merge(b).unwrap()).unwrap();
+    assert_eq!(tree.y_max, truth);
+    assert_eq!(backwards.y_max, truth);
+    let factors =
+        tree_merge(pieces.iter().map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap()).collect(), |a, b| {
+            a.merge(b).unwrap()
+        });
+    assert_eq!(factors.y_max, truth);
+    assert_eq!(tree.finish(&names, &widths).unwrap().0.y_max, truth);
+    let basis = Pass2Basis::new(&factors).unwrap();
+    let stats: Vec<CrossStats> =
+        pieces.iter().map(|&(a, b)| CrossStats::from_chunk(&chunk(a, b), &basis, a).unwrap()).collect();
+    assert_eq!(tree_merge(stats, |a, b| a.merge(b).unwrap()).y_max, truth);
+    assert!(factors.check_y_range(&names).is_ok());
+
+    // Equation e1's y scaled out of range: every streamed route gives the in-memory error
+    // (the same variant, equation and message), and so does the merged pass-1 summary's check;
+    // at 1e307 the factors overflow (pass 2 cannot run: only the check after pass 1 and the
+    // one-pass route are asked), and the refusal comes first.
+    let base = ys[1].clone();
+    for (scale, two_pass) in [(1e200, true), (1e-200, true), (1e-300, true), (1e307, false)] {
+        ys[1] = &base * scale;
+        let expected = Prepared::new(&data(&ys, &xs)).unwrap_err();
+        match &expected {
+            SurError::Scale { equation, .. } => assert_eq!(equation, "e1"),
+            other => panic!("expected the in-memory Scale error at {scale:e}, got {other:?}"),
+        }
+        let modes: &[bool] = if two_pass { &[true, false] } else { &[true] };
+        for &one_pass in modes {
+            let got = try_chunked_prepared(&ys, &xs, &bounds, one_pass).unwrap_err();
+            assert_eq!(got, expected, "scale {scale:e}, one pass {one_pass}");
+        }
+        let pass1 = pieces
+            .iter()
+            .map(|&(a, b)| RowFactors::from_chunk(&rows_of(&ys, &xs, a, b), a).unwrap())
+            .reduce(|a, b| a.merge(b).unwrap())
+            .unwrap();
+        assert_eq!(pass1.check_y_range(&names).unwrap_err(), expected, "pass 1, scale {scale:e}");
+    }
+    // Just inside the range, and a y of zeros (max 0), are not refused.
+    for scale in [1e100, 1e-100, 0.0] {
+        ys[1] = &base * scale;
+        for one_pass in [true, false] {
+            assert!(try_chunked_prepared(&ys, &xs, &bounds, one_pass).is_ok(), "scale {scale:e}");
         }
     }
 }

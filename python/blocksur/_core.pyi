@@ -49,7 +49,7 @@ def fgls_from_data(
 def residuals(ys: Sequence[_F64_1D], xs: Sequence[_F64_2D], coef: _F64_1D) -> _F64_2D:
     """Residuals y_i - X_i b_i as a T x N array, for stacked coefficients ``coef``."""
 
-_Factors = tuple[int, list[_F64_2D]]
+_Factors = tuple[int, list[_F64_2D], list[float]]
 
 def pass1_chunk(
     ys: Sequence[_F64_1D],
@@ -58,10 +58,15 @@ def pass1_chunk(
     regressors: Sequence[Sequence[str]],
     row_offset: int = 0,
 ) -> _Factors:
-    """Pass 1 of a chunked fit on one chunk of rows: (n_rows, [R of [X_i | y_i] per equation])."""
+    """Pass 1 of a chunked fit on one chunk of rows: (n_rows, [R of [X_i | y_i] per equation],
+    [largest |y_i| per equation])."""
 
 def pass1_merge(a: _Factors, b: _Factors) -> _Factors:
     """Merges two pass-1 summaries."""
+
+def pass1_check(names: Sequence[str], factors: _Factors) -> None:
+    """Raises InputError naming the equation when its largest |y| in a (merged) pass-1 summary
+    is out of the range the in-memory fit accepts, as finishing would: before pass 2."""
 
 def pass2_chunk(
     ys: Sequence[_F64_1D],
@@ -70,7 +75,8 @@ def pass2_chunk(
     row_offset: int = 0,
 ) -> dict[str, object]:
     """Pass 2 of a chunked fit on one chunk, given the merged pass-1 summary: a dict of sums
-    (``n_rows``, ``gram``, ``colsum``, ``y_mean``, ``y_m2``, ``y_raw``)."""
+    (``n_rows``, ``gram``, ``colsum``, ``y_mean``, ``y_m2``, ``y_raw``, ``y_max``: the largest
+    |y_i|, merged by max)."""
 
 def pass2_merge(a: dict[str, object], b: dict[str, object]) -> dict[str, object]:
     """Merges two pass-2 summaries."""
@@ -83,14 +89,17 @@ def row_chunk(
     row_offset: int = 0,
 ) -> dict[str, object]:
     """One-pass summary of a chunk: ``r`` (a square root of Z'Z for Z = [X_1 y_1 .. X_N y_N],
-    at most P rows), ``colsum`` (of Z), ``n_rows``, ``y_mean``, ``y_m2``, ``y_raw``."""
+    at most P rows), ``colsum`` (of Z), ``n_rows``, ``y_mean``, ``y_m2``, ``y_raw``, ``y_max``."""
 
 def row_merge(a: dict[str, object], b: dict[str, object]) -> dict[str, object]:
     """Merges two one-pass summaries (QR of the stacked square roots)."""
 
-def row_finish(summary: dict[str, object], widths: Sequence[int]) -> tuple[_Factors, dict[str, object]]:
+def row_finish(
+    summary: dict[str, object], widths: Sequence[int], names: Sequence[str]
+) -> tuple[_Factors, dict[str, object]]:
     """The pass-1 factors and pass-2 statistics of the rows a one-pass summary covers, for
-    equations of ``widths[i]`` = K_i + 1 columns."""
+    equations ``names`` of ``widths[i]`` = K_i + 1 columns. Raises InputError naming the
+    equation when its largest |y| is out of the range the in-memory fit accepts."""
 
 def prepare_from_summaries(
     names: Sequence[str],
@@ -98,7 +107,8 @@ def prepare_from_summaries(
     factors: _Factors,
     stats: dict[str, object],
 ) -> Prepared:
-    """The prepared system from merged pass-1 and pass-2 summaries of all rows."""
+    """The prepared system from merged pass-1 and pass-2 summaries of all rows (refusing a y
+    out of range, as :func:`row_finish` does)."""
 
 def fit_many(
     ys: Sequence[_F64_1D],

@@ -229,6 +229,7 @@ def fit_dask(
         raise InputError(
             "the collection held no rows" + (f" ({dropped} rows dropped for missing values)" if dropped else "")
         )
+    _core.pass1_check(layout.names, factors)  # a y out of range stops here, before pass 2
     t1 = time.perf_counter()
     fac = delayed(factors, pure=True)
     p2 = [delayed(_part_pass2, pure=True)(p, lay, fac, i, off) for i, (p, off) in enumerate(zip(parts, offsets))]

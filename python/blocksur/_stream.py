@@ -441,7 +441,7 @@ def run_passes(
             f"the {source} held no rows" + (f" ({dropped} rows dropped for missing values)" if dropped else "")
         )
     t1 = time.perf_counter()
-    factors, stats = _core.row_finish(summary, [len(r) + 1 for r in layout.regressors])
+    factors, stats = _core.row_finish(summary, [len(r) + 1 for r in layout.regressors], layout.names)
     info = StreamInfo(source, chunks, read, dropped, (t1 - t0, time.perf_counter() - t1))
     return layout, factors, stats, info
 
