@@ -381,3 +381,12 @@ def test_a_named_series_x_names_its_regressor():
     named = blocksur.EquationSystem({"a": (y1, pd.Series(X1[:, 1], name="price"))},
                                     regressor_names={"a": ["p"]})
     assert named.regressor_names == {"a": ["p"]}
+
+
+def test_empty_arrays_of_the_caller_keep_their_flags():
+    """An empty array shares memory with nothing (numpy says so), so the snapshot leaves it as
+    it is: the system must still not freeze the caller's own array object, only its view."""
+    y, X = np.zeros(0), np.zeros((0, 2))
+    system = blocksur.EquationSystem({"a": (y, X), "b": (np.zeros(0), np.zeros((0, 1)))})
+    assert y.flags.writeable and X.flags.writeable
+    assert not system._ys[0].flags.writeable and not system._xs[0].flags.writeable

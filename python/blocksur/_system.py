@@ -276,6 +276,12 @@ def _read_only(arr: np.ndarray) -> np.ndarray:
     return view
 
 
+def _own_read_only(arr: np.ndarray) -> np.ndarray:
+    """``arr``, an array of the system's own, made read-only in place (no view needed)."""
+    arr.setflags(write=False)
+    return arr
+
+
 def _check_indexes(
     name: str, y: Any, X: Any, first: tuple[pd.Index, str] | None
 ) -> tuple[pd.Index, str] | None:
@@ -501,10 +507,12 @@ class EquationSystem(SystemLabels):
             self._xs.append(Xv)
             self._regressors.append(regs)
         if copy:
-            # every array is now the system's own (a snapshot copy or a fresh conversion)
+            # every array is now the system's own (a snapshot copy or a fresh conversion), but
+            # for one that shares nothing with anything (an empty array) and is the caller's
             _snapshot(self._ys, self._xs, shared)
-            for a in self._ys + self._xs:
-                a.setflags(write=False)
+            given = {id(v) for _, pair in items for v in pair}
+            self._ys = [_read_only(a) if id(a) in given else _own_read_only(a) for a in self._ys]
+            self._xs = [_read_only(a) if id(a) in given else _own_read_only(a) for a in self._xs]
         else:
             # read-only views: no step of the library, and no user edit through a view,
             # changes them (the caller's arrays keep their flags)
