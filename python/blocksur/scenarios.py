@@ -51,9 +51,9 @@ def grid_load(n_districts: int = 6, n_days: int = 730, seed: int = 2024) -> Scen
     """
     rng = np.random.default_rng(seed)
     days = pd.date_range("2023-01-01", periods=n_days, freq="D", name="date")
-    doy = days.dayofyear.to_numpy()
+    doy = days.day_of_year.to_numpy()
     base_temp = 12 - 10 * np.cos(2 * np.pi * (doy - 15) / 365.25)
-    weekend = (days.dayofweek >= 5).astype(float)
+    weekend = (days.day_of_week >= 5).astype(float)
     # a regional weather shock shared by all districts, plus district noise
     names = [f"district_{i + 1}" for i in range(n_districts)]
     corr = 0.55 + 0.35 * rng.random((n_districts, n_districts))
