@@ -1361,6 +1361,7 @@ impl Prepared {
     /// and squaring had given 0 or inf.
     pub fn coef_standard_errors(&self, est: &Estimate, kind: CovKind, data: Option<&SystemData>) -> Result<Array1<f64>> {
         if let Some(p) = &est.restricted {
+            self.check_matches(Some(est), data)?;
             return self.restricted_standard_errors(est, p, kind, data);
         }
         let plain = self.coef_variances(est, kind, data)?;
@@ -1415,16 +1416,29 @@ impl Prepared {
     }
 }
 
+/// A restriction row and its right-hand side scaled to a row of unit length, or None for a
+/// row of zeros: first by its largest magnitude, so that the squares of entries near 1e+-200
+/// neither overflow (a row of 1e200s had read as zeros, "redundant") nor underflow ("mentions
+/// no coefficient").
+fn unit_row(row: ndarray::ArrayView1<f64>, q: f64) -> Option<(Array1<f64>, f64)> {
+    let top = row.iter().fold(0.0f64, |a, v| a.max(v.abs()));
+    if !(top > 0.0 && top.is_finite()) {
+        return None;
+    }
+    let scaled = row.mapv(|v| v / top);
+    let n = scaled.dot(&scaled).sqrt();
+    Some((scaled / n, q / top / n))
+}
+
 impl Restrictions {
-    /// The same restrictions with each row of R (and q) scaled to unit length.
+    /// The same restrictions with each row of R (and q) scaled to unit length (`unit_row`).
     pub fn normalized(&self) -> Restrictions {
         let mut r = self.r.clone();
         let mut q = self.q.clone();
         for (i, mut row) in r.rows_mut().into_iter().enumerate() {
-            let n = row.dot(&row).sqrt();
-            if n > 0.0 {
-                row /= n;
-                q[i] /= n;
+            if let Some((unit, rhs)) = unit_row(row.view(), q[i]) {
+                row.assign(&unit);
+                q[i] = rhs;
             }
         }
         Restrictions { r, q }
@@ -1482,12 +1496,9 @@ impl Restrictions {
         // its right-hand side agrees, inconsistent when it does not.
         let mut basis: Vec<(Array1<f64>, f64)> = Vec::new();
         for i in 0..m {
-            let row = self.r.row(i).to_owned();
-            let norm0 = row.dot(&row).sqrt();
-            if norm0 == 0.0 {
+            let Some((mut v, mut rhs)) = unit_row(self.r.row(i), self.q[i]) else {
                 return Err(bad(Some(i), "mentions no coefficient".into()));
-            }
-            let (mut v, mut rhs) = (row / norm0, self.q[i] / norm0);
+            };
             for _ in 0..2 {
                 for (u, qu) in &basis {
                     let c = u.dot(&v);

@@ -186,6 +186,15 @@ case("coef_standard_errors: estimate of another system, same K", "any")(
         _core.prepare([Y, Y2], [X3, X2], NAMES, [REGS[1], REGS[0]]).estimate("fgls", "ml", 1e-10, 1)
     )
 )
+for _m in ("ols", "fgls"):
+    # a restricted estimate of a smaller system: had panicked (ols) or returned 2 values (fgls)
+    case(f"coef_standard_errors: restricted {_m} estimate of another system")(
+        lambda m=_m: P.coef_standard_errors(
+            _core.prepare([Y], [X2], ["a"], [["x0", "x1"]]).estimate(
+                m, "ml", 1e-10, 10, np.array([[0.0, 1.0]]), np.array([0.5])
+            )
+        )
+    )
 case("coef_standard_errors: robust without data")(lambda: P.coef_standard_errors(E, "hc0"))
 case("coef_standard_errors: data with other K")(lambda: P.coef_standard_errors(E, "hc0", [Y, Y2], [X2, X2]))
 case("coef_standard_errors: X rows short")(lambda: P.coef_standard_errors(E, "hc1", [Y, Y2], [X2[:5], X3]))

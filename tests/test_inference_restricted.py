@@ -244,3 +244,21 @@ def test_restricted_standard_errors_of_nearly_collinear_regressors(delta):
         err = ref.record(f"inference: restricted FGLS se, collinear pair (delta {delta:g}), {covariance} (rel)",
                          float(np.max(np.abs(fit.se.to_numpy() / se_ref - 1))))
         assert err < 1e-8
+
+
+@pytest.mark.parametrize("factor", [1e200, -1e-200, 1e300, 1e-300])
+def test_restriction_rows_scaled_by_a_constant_give_the_same_fit(factor):
+    """R b = q and (c R) b = c q are the same restrictions (definition), for any c != 0, also
+    at c = 1e+-200: rows are scaled by their largest entry before their norm is taken (the
+    squares of 1e200 had overflowed: "redundant"; of 1e-200 underflowed: "mentions no
+    coefficient")."""
+    eqs = _data()
+    R, q, _ = _rq(eqs)
+    system = blocksur.EquationSystem(eqs)
+    base = system.fit("fgls", restrictions=(R, q))
+    scaled, qs = R.copy(), q.copy()
+    scaled[:, :] *= factor  # both rows; the second has q = 1
+    qs *= factor
+    fit = system.fit("fgls", restrictions=(scaled, qs))
+    np.testing.assert_allclose(fit.coef.to_numpy(), base.coef.to_numpy(), rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(fit.se.to_numpy(), base.se.to_numpy(), rtol=1e-12)
