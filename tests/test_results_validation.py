@@ -304,3 +304,29 @@ def test_report_options_at_their_limits_work(fit):
     assert 0.1 < est < 1
     assert f"| a | x1 | {est:.2f} |" in one
     assert f"& x1 & {est:.9f} &" in fifteen
+
+
+def test_lr_accepts_a_fit_of_an_unpickled_copy_and_refuses_other_data(system):
+    """Fits of an unpickled copy of the system (same equations, names and data) are fits of the
+    same model: the LR statistic is the same as between fits of the one object (definition).
+    A system with other data is refused; rows given as 1e-200 * (restriction) nest as the plain
+    one (rows compared after scaling by their largest entry)."""
+    import pickle
+
+    unrestricted = system.fit("ifgls", tol=1e-12)
+    restricted = system.fit("ifgls", restrictions="a.x1 = 0", tol=1e-12)
+    copy = pickle.loads(pickle.dumps(system))
+    restricted_copy = copy.fit("ifgls", restrictions="a.x1 = 0", tol=1e-12)
+    want = unrestricted.lr_against(restricted).statistic
+    assert unrestricted.lr_against(restricted_copy).statistic == pytest.approx(want, rel=1e-12)
+    pos = list(unrestricted.coef.index).index(("a", "x1"))
+    r = np.zeros((1, unrestricted.n_coef))
+    r[0, pos] = 1e-200  # its square underflows
+    scaled = system.fit("ifgls", restrictions=(r, np.zeros(1)), tol=1e-12)
+    assert unrestricted.lr_against(scaled).statistic == pytest.approx(want, rel=1e-9)
+    both = system.fit("ifgls", restrictions="a.x1 = 0; b.x1 = 0", tol=1e-12)
+    plain = both.lr_against(restricted).statistic
+    assert both.lr_against(scaled).statistic == pytest.approx(plain, rel=1e-9)
+    other = _system(seed=1).fit("ifgls", restrictions="a.x1 = 0", tol=1e-12)
+    with pytest.raises(InvalidOptionError, match="same EquationSystem"):
+        unrestricted.lr_against(other)

@@ -112,6 +112,25 @@ def check_level(level: Any) -> None:
         raise InvalidOptionError(f"level must be a number between 0 and 1 (e.g. 0.95), got {level!r}")
 
 
+def _same_data(a: Any, b: Any) -> bool:
+    """Whether two systems are one, or hold the same equations, regressor names and data
+    (an unpickled copy of the other, or the same arrays given twice)."""
+    if a is b:
+        return True
+    arrays = ("_ys", "_xs")
+    if not all(n in vars(s) for s in (a, b) for n in arrays):
+        return False  # a system without its rows (streamed, restored): only the same object
+    return (
+        a._names == b._names
+        and a._regressors == b._regressors
+        and all(
+            x.shape == y.shape and np.array_equal(x, y)
+            for n in arrays
+            for x, y in zip(getattr(a, n), getattr(b, n))
+        )
+    )
+
+
 def _check_nested(loose: Any, tight: Any) -> None:
     """Refuses two restriction sets (or None, unrestricted) unless the tighter one implies the
     looser one: every row of the looser R lies in the row space of the tighter R, with the
@@ -126,6 +145,8 @@ def _check_nested(loose: Any, tight: Any) -> None:
         qt = np.asarray(tight.q, dtype=float)
         bad = []
         for i, (row, q) in enumerate(zip(np.asarray(loose.r, dtype=float), np.asarray(loose.q, dtype=float))):
+            top = float(np.max(np.abs(row)))  # first, so that rows near 1e+-200 square safely
+            row, q = row / top, q / top
             norm = float(np.linalg.norm(row))
             row, q = row / norm, q / norm
             a = np.linalg.lstsq(rt.T, row, rcond=None)[0]
@@ -533,8 +554,11 @@ class SystemFit:
                 raise InvalidOptionError(
                     "the LR test compares maximum-likelihood fits: fit both with method='ifgls', omega='ml'"
                 )
-        if other._system is not self._system:
-            raise InvalidOptionError("the two fits must come from the same EquationSystem")
+        if not _same_data(other._system, self._system):
+            raise InvalidOptionError(
+                "the two fits must come from the same EquationSystem (or one with the same "
+                "equations, regressor names and data, such as an unpickled copy)"
+            )
         free_self = self.n_coef - self.n_restrictions
         free_other = other.n_coef - other.n_restrictions
         if free_self == free_other:
