@@ -259,3 +259,19 @@ def test_joint_wald_is_invariant_to_the_units_of_the_regressors():
         stats_.append(w.statistic)
     err = ref.record("inference: joint Wald, income in dollars vs millions (rel)", abs(stats_[0] / stats_[1] - 1))
     assert err < 1e-8
+
+
+@pytest.mark.parametrize("factor", [1e200, -1e-200, 1e300, 1e-300])
+def test_wald_is_invariant_to_the_scale_of_each_restriction_row(factor):
+    """(R, q) and (D R, D q) for a diagonal D != 0 state the same hypotheses, and the Wald
+    statistic is the same (definition: D cancels in (Rb-q)'(R V R')^-1 (Rb-q)); rows are
+    scaled by their largest entry first (rows times 1e+-200 had made R V R' over- or underflow
+    and the test was refused as singular)."""
+    eqs = _data()
+    R, q = _rows(eqs, TEST_SPEC)
+    fit = blocksur.EquationSystem(eqs).fit("fgls")
+    base = fit.wald((R, q))
+    d = np.array([factor, 1.0, 1.0 / factor])[: len(q)]
+    scaled = fit.wald((R * d[:, None], q * d))
+    assert scaled.statistic == pytest.approx(base.statistic, rel=1e-12)
+    assert scaled.df == base.df

@@ -497,7 +497,10 @@ class SystemFit:
         if form not in ("chi2", "F"):
             raise InvalidOptionError(f"form must be 'chi2' or 'F', got {form!r}")
         rset = parse_restrictions(restrictions, self._names, self._system._regressors)
-        r, q = rset.r, rset.q
+        # each row of (R, q) scaled by its largest entry: the statistic does not depend on the
+        # rows' scale (a row times 1e+-200 had made R V R' over- or underflow: "singular")
+        top = np.max(np.abs(rset.r), axis=1)
+        r, q = rset.r / top[:, None], rset.q / top
         m = len(q)
         if np.linalg.matrix_rank(r) < m:
             raise InvalidOptionError("the restrictions to test are linearly dependent: drop the redundant ones")
