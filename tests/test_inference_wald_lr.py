@@ -275,3 +275,22 @@ def test_wald_is_invariant_to_the_scale_of_each_restriction_row(factor):
     scaled = fit.wald((R * d[:, None], q * d))
     assert scaled.statistic == pytest.approx(base.statistic, rel=1e-12)
     assert scaled.df == base.df
+
+
+def test_wald_names_an_overflowing_covariance_and_tests_the_other_coefficients():
+    """A regressor in units of 1e-200 has a variance near 1e400, beyond double precision: a
+    Wald test involving its coefficient is refused with that cause (it had been called
+    "singular"), while tests of the other coefficients equal those of the unscaled fit (the
+    rescaling of one regressor leaves the others' estimates and covariance unchanged; common
+    practice, no source needed)."""
+    eqs = _data()
+    base = blocksur.EquationSystem(eqs).fit("fgls")
+    ya, Xa = eqs["a"]
+    c = np.array([1.0, 1e-200, 1.0])
+    fit = blocksur.EquationSystem({**eqs, "a": (ya, Xa * c)}).fit("fgls")
+    with pytest.raises(blocksur.errors.InvalidOptionError, match="beyond double precision"):
+        fit.wald("a.x1 = 0")
+    others = "b.x1 = c.x1; a.x2 = 0"
+    assert fit.wald(others).statistic == pytest.approx(base.wald(others).statistic, rel=1e-9)
+    # the single coefficient's z statistic is still there, from its standard error
+    assert fit.stat[("a", "x1")] == pytest.approx(base.stat[("a", "x1")], rel=1e-9)

@@ -512,7 +512,18 @@ class SystemFit:
                     "imposed at fit time, so R V R' is singular: test it on the unrestricted fit"
                 )
         gap = r @ self.coef.to_numpy() - q
-        rvr = r @ self.vcov.to_numpy() @ r.T
+        vcov = self.vcov.to_numpy()
+        used = np.flatnonzero(np.any(r != 0, axis=0))
+        sub = vcov[np.ix_(used, used)]
+        if not np.all(np.isfinite(sub)) or np.any((np.diag(sub) == 0) & (self.se.to_numpy()[used] > 0)):
+            raise InvalidOptionError(
+                "the covariance of the coefficients these restrictions involve is beyond double "
+                "precision (their variances over- or underflow: regressors in units near 1e+-200 "
+                "or beyond); rescale those regressors, or read a single coefficient's test from "
+                "stat / pval, which come from its standard error"
+            )
+        ru = r[:, used]  # the coefficients the restrictions involve (others may be inf apart)
+        rvr = ru @ sub @ ru.T
         rvr = (rvr + rvr.T) / 2
         # the singularity test and the solve on the correlation form of R V R': restrictions on
         # coefficients in very different units (dollars and shares) scale its rows apart, and
