@@ -1034,12 +1034,9 @@ impl Prepared {
             Some(c) => pmat.dot(&c).dot(&pmat.t()),
         };
         // a coefficient fixed by a restriction of its own has exactly zero (co)variance
-        for row in p.space.r.rows() {
-            let nz: Vec<usize> = row.iter().enumerate().filter(|(_, x)| **x != 0.0).map(|(j, _)| j).collect();
-            if nz.len() == 1 {
-                out.row_mut(nz[0]).fill(0.0);
-                out.column_mut(nz[0]).fill(0.0);
-            }
+        for j in fixed_alone(&p.space.r) {
+            out.row_mut(j).fill(0.0);
+            out.column_mut(j).fill(0.0);
         }
         symmetrize(&mut out);
         Ok(out)
@@ -1071,11 +1068,8 @@ impl Prepared {
             };
             size[j] * q.max(0.0).sqrt()
         }));
-        for row in p.space.r.rows() {
-            let mut nz = row.iter().enumerate().filter(|(_, x)| **x != 0.0).map(|(j, _)| j);
-            if let (Some(j), None) = (nz.next(), nz.next()) {
-                out[j] = 0.0;
-            }
+        for j in fixed_alone(&p.space.r) {
+            out[j] = 0.0;
         }
         Ok(out)
     }
@@ -1416,6 +1410,17 @@ impl Prepared {
     }
 }
 
+/// The coefficients a restriction of its own fixes (rows of R with one nonzero entry).
+fn fixed_alone(r: &Array2<f64>) -> impl Iterator<Item = usize> + '_ {
+    r.rows().into_iter().filter_map(|row| {
+        let mut nz = row.iter().enumerate().filter(|(_, x)| **x != 0.0).map(|(j, _)| j);
+        match (nz.next(), nz.next()) {
+            (Some(j), None) => Some(j),
+            _ => None,
+        }
+    })
+}
+
 /// A restriction row and its right-hand side scaled to a row of unit length, or None for a
 /// row of zeros: first by its largest magnitude, so that the squares of entries near 1e+-200
 /// neither overflow (a row of 1e200s had read as zeros, "redundant") nor underflow ("mentions
@@ -1726,23 +1731,11 @@ fn inverse_columns(l: &Array2<f64>, c: usize, d: usize) -> Result<Array2<f64>> {
         return Err(SurError::numerical("inverse of the Cholesky factor", "zero on the diagonal"));
     }
     if m <= SMALL_PANEL {
-        // forward substitution by columns of L (contiguous): a BLAS trsm on a 20 x 20 factor
-        // cost 3 us of call overhead, most of a small system's standard errors
+        // own loops: a BLAS trsm on a 20 x 20 factor cost 3 us of call overhead, most of a
+        // small system's standard errors
         let lbuf = l.as_slice_memory_order().expect("column-major");
         let xbuf = x.as_slice_memory_order_mut().expect("column-major");
-        for j in 0..w {
-            let col = &mut xbuf[j * m..(j + 1) * m];
-            for p in j..m {
-                let lcol = &lbuf[(c + p) * k + c..(c + p + 1) * k];
-                let v = col[p] / lcol[p];
-                col[p] = v;
-                if v != 0.0 {
-                    for (xi, li) in col[p + 1..].iter_mut().zip(&lcol[p + 1..m]) {
-                        *xi -= li * v;
-                    }
-                }
-            }
-        }
+        crate::linalg::lower_inverse_columns(lbuf, k, c, m, w, xbuf);
         return Ok(x);
     }
     // SAFETY: `l` is k x k column-major, so L[c.., c..] starts at c * k + c with leading

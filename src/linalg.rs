@@ -441,16 +441,26 @@ pub(crate) fn blocked_chol(a: &mut [f64], n: usize) -> bool {
 /// U = L^-1 (lower, column-major, n x n, into `u`) of a lower-triangular column-major L,
 /// column by column.
 pub(crate) fn small_lower_inverse(l: &[f64], n: usize, u: &mut [f64]) {
-    u[..n * n].fill(0.0);
-    for j in 0..n {
-        // solve L x = e_j, x[..j] = 0
-        let col = &mut u[j * n..(j + 1) * n];
+    lower_inverse_columns(l, n, 0, n, n, u);
+}
+
+/// Columns 0..w of the inverse of the m x m lower triangle L[c.., c..] of the column-major
+/// `l` (leading dimension `ld`), into the m x w column-major `x`: forward substitution on
+/// L x = e_j by columns of L (contiguous), x[..j] = 0. For small orders, where a BLAS trsm
+/// costs more in call overhead than the work.
+pub(crate) fn lower_inverse_columns(l: &[f64], ld: usize, c: usize, m: usize, w: usize, x: &mut [f64]) {
+    x[..m * w].fill(0.0);
+    for j in 0..w {
+        let col = &mut x[j * m..(j + 1) * m];
         col[j] = 1.0;
-        for c in j..n {
-            let v = col[c] / l[c * n + c];
-            col[c] = v;
-            for i in (c + 1)..n {
-                col[i] -= l[c * n + i] * v;
+        for p in j..m {
+            let lcol = &l[(c + p) * ld + c..(c + p) * ld + c + m];
+            let v = col[p] / lcol[p];
+            col[p] = v;
+            if v != 0.0 {
+                for (xi, li) in col[p + 1..].iter_mut().zip(&lcol[p + 1..]) {
+                    *xi -= li * v;
+                }
             }
         }
     }

@@ -131,6 +131,15 @@ def _same_data(a: Any, b: Any) -> bool:
     )
 
 
+def _rows_scaled(r: np.ndarray, q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each row of (R, q) divided by its largest |entry| (rows of zeros left as they are): the
+    same restrictions, whose rows' squares neither over- nor underflow near 1e+-200."""
+    r, q = np.asarray(r, dtype=float), np.asarray(q, dtype=float)
+    top = np.max(np.abs(r), axis=1) if r.size else np.ones(len(q))
+    top = np.where(top > 0, top, 1.0)
+    return r / top[:, None], q / top
+
+
 def _check_nested(loose: Any, tight: Any) -> None:
     """Refuses two restriction sets (or None, unrestricted) unless the tighter one implies the
     looser one: every row of the looser R lies in the row space of the tighter R, with the
@@ -144,9 +153,7 @@ def _check_nested(loose: Any, tight: Any) -> None:
         rt = np.asarray(tight.r, dtype=float)
         qt = np.asarray(tight.q, dtype=float)
         bad = []
-        for i, (row, q) in enumerate(zip(np.asarray(loose.r, dtype=float), np.asarray(loose.q, dtype=float))):
-            top = float(np.max(np.abs(row)))  # first, so that rows near 1e+-200 square safely
-            row, q = row / top, q / top
+        for i, (row, q) in enumerate(zip(*_rows_scaled(loose.r, loose.q))):
             norm = float(np.linalg.norm(row))
             row, q = row / norm, q / norm
             a = np.linalg.lstsq(rt.T, row, rcond=None)[0]
@@ -497,10 +504,9 @@ class SystemFit:
         if form not in ("chi2", "F"):
             raise InvalidOptionError(f"form must be 'chi2' or 'F', got {form!r}")
         rset = parse_restrictions(restrictions, self._names, self._system._regressors)
-        # each row of (R, q) scaled by its largest entry: the statistic does not depend on the
-        # rows' scale (a row times 1e+-200 had made R V R' over- or underflow: "singular")
-        top = np.max(np.abs(rset.r), axis=1)
-        r, q = rset.r / top[:, None], rset.q / top
+        # the statistic does not depend on the rows' scale (a row times 1e+-200 had made
+        # R V R' over- or underflow: "singular")
+        r, q = _rows_scaled(rset.r, rset.q)
         m = len(q)
         if np.linalg.matrix_rank(r) < m:
             raise InvalidOptionError("the restrictions to test are linearly dependent: drop the redundant ones")
