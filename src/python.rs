@@ -381,8 +381,9 @@ impl PyPrepared {
     }
 
     /// Gaussian log-likelihood at Omega = S/T of the estimate's residuals (None if singular).
-    fn log_likelihood(&self, est: &PyEstimate) -> Option<f64> {
-        self.inner.log_likelihood(&est.inner.resid_crossprod)
+    fn log_likelihood(&self, py: Python<'_>, est: &PyEstimate) -> Option<f64> {
+        // (S may be formed here, from the residuals a one-pass fit kept)
+        detach_gated(py, || self.inner.log_likelihood(est.inner.resid_crossprod()))
     }
 
     #[getter]
@@ -434,7 +435,8 @@ impl PyEstimate {
     }
     #[getter]
     fn resid_crossprod<'py>(&self, py: Python<'py>) -> Bound<'py, PyArray2<f64>> {
-        self.inner.resid_crossprod.clone().into_pyarray(py)
+        // formed on first use by a one-pass FGLS estimate (a product over the T x N residuals)
+        detach_gated(py, || self.inner.resid_crossprod().clone()).into_pyarray(py)
     }
     #[getter]
     fn n_iter(&self) -> usize {

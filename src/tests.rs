@@ -150,7 +150,7 @@ fn iterated_fit_reaches_the_ml_fixed_point() {
     for i in 0..4 {
         for j in 0..4 {
             assert_relative_eq!(est.omega[[i, j]], s[[i, j]], max_relative = 1e-9, epsilon = 1e-12);
-            assert_relative_eq!(est.resid_crossprod[[i, j]] / 50.0, s[[i, j]], max_relative = 1e-10, epsilon = 1e-13);
+            assert_relative_eq!(est.resid_crossprod()[[i, j]] / 50.0, s[[i, j]], max_relative = 1e-10, epsilon = 1e-13);
         }
     }
     // and it is the GLS estimate for its own Omega
@@ -219,7 +219,7 @@ fn large_means_do_not_cost_digits() {
     let s = e.t().dot(&e);
     for i in 0..2 {
         for j in 0..2 {
-            assert_relative_eq!(est.resid_crossprod[[i, j]], s[[i, j]], max_relative = 1e-7);
+            assert_relative_eq!(est.resid_crossprod()[[i, j]], s[[i, j]], max_relative = 1e-7);
         }
     }
 }
@@ -315,7 +315,7 @@ fn log_likelihood_formula_and_maximum() {
     let d = data(&ys, &xs);
     let prep = Prepared::new(&d).unwrap();
     let est = prep.estimate(&opts(Method::IteratedFgls, Divisor::Ml)).unwrap();
-    let ll = prep.log_likelihood(&est.resid_crossprod).unwrap();
+    let ll = prep.log_likelihood(&est.resid_crossprod()).unwrap();
     let e = d.residuals(est.coef.as_slice().unwrap());
     let s = e.t().dot(&e) / 40.0;
     let det = s[[0, 0]] * s[[1, 1]] - s[[0, 1]] * s[[1, 0]];
