@@ -268,6 +268,11 @@ pub fn triangular_condition(r: &Array2<f64>) -> f64 {
     }
 }
 
+/// The 1-norm (largest column sum of absolute values) of a square matrix.
+pub(crate) fn one_norm(a: &Array2<f64>) -> f64 {
+    a.columns().into_iter().map(|c| c.iter().map(|v| v.abs()).sum::<f64>()).fold(0.0, f64::max)
+}
+
 /// Estimate of the 1-norm condition number of a symmetric positive definite matrix `a`, from its
 /// lower Cholesky factor `l` (LAPACK pocon).
 pub fn spd_condition(a: &Array2<f64>, l: &Array2<f64>) -> f64 {
@@ -275,11 +280,11 @@ pub fn spd_condition(a: &Array2<f64>, l: &Array2<f64>) -> f64 {
     if n == 0 {
         return 1.0;
     }
-    let anorm = a.columns().into_iter().map(|c| c.iter().map(|v| v.abs()).sum::<f64>()).fold(0.0, f64::max);
+    let anorm = one_norm(a);
     if (n as usize) <= SMALL_DENSE {
         // small: the exact 1-norm condition number, from the inverse
         return match chol_inverse(l) {
-            Ok(inv) => anorm * inv.columns().into_iter().map(|c| c.iter().map(|v| v.abs()).sum::<f64>()).fold(0.0, f64::max),
+            Ok(inv) => anorm * one_norm(&inv),
             Err(_) => f64::INFINITY,
         };
     }
@@ -669,34 +674,41 @@ pub fn invert_omega(omega: &Array2<f64>, names: &[String], n_obs: usize, scales:
     }
     // Work on the correlation matrix so the test below does not depend on the units.
     let d: Vec<f64> = diag.iter().map(|v| 1.0 / v.sqrt()).collect();
-    // N x N temporaries on huge pages and two rather than four of them (8 MB each at N = 1000)
-    let mut corr = zeros_advised((n, n).f());
-    corr.zip_mut_with(omega, |c, &o| *c = o);
-    for (j, mut col) in corr.columns_mut().into_iter().enumerate() {
-        for (i, c) in col.iter_mut().enumerate() {
-            *c *= d[i] * d[j];
+    // N x N temporaries on huge pages, one at a time (8 MB each at N = 1000): the factor is
+    // formed in the correlation matrix's own buffer, which is formed again only to diagnose a
+    // failure
+    let correlation = || {
+        let mut corr = zeros_advised((n, n).f());
+        corr.zip_mut_with(omega, |c, &o| *c = o);
+        for (j, mut col) in corr.columns_mut().into_iter().enumerate() {
+            for (i, c) in col.iter_mut().enumerate() {
+                *c *= d[i] * d[j];
+            }
         }
-    }
-    let copy = |a: &Array2<f64>| {
-        let mut c = zeros_advised((n, n).f());
-        c.assign(a);
-        c
+        corr
     };
+    let corr = correlation();
+    let anorm = one_norm(&corr);
     let floor = singular_floor(n);
-    let factor = chol_lower(copy(&corr)).filter(|l| {
+    let factor = chol_lower(corr).filter(|l| {
         let lmin = (0..n).map(|i| l[[i, i]]).fold(f64::INFINITY, f64::min);
         lmin * lmin > floor
     });
     let l = match factor {
         Some(l) => l,
         None => {
+            let corr = correlation();
             diagnose_singular(&corr, names, n_obs, floor)?;
-            chol_lower(copy(&corr)).ok_or_else(|| SurError::numerical("Cholesky of Omega", "not positive definite"))?
+            chol_lower(corr).ok_or_else(|| SurError::numerical("Cholesky of Omega", "not positive definite"))?
         }
     };
-    let cond = spd_condition(&corr, &l);
-    drop(corr);
     let mut out = chol_inverse_owned(l)?;
+    // the exact 1-norm condition number, from the inverse formed anyway (rather than LAPACK's
+    // estimate from further triangular solves)
+    let cond = match anorm * one_norm(&out) {
+        c if c.is_finite() => c,
+        _ => f64::INFINITY,
+    };
     // inv is exactly symmetric and d_i d_j = d_j d_i, so the result is too; column-major like
     // inv, and its columns, which the GLS step reads, are contiguous
     for (j, mut col) in out.columns_mut().into_iter().enumerate() {

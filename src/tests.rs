@@ -932,6 +932,38 @@ fn small_dense_kernels_match_lapack() {
     assert!(chol_lower(to_fortran(&bad)).is_none());
 }
 
+/// Omega^-1 and the condition number of Omega's correlation matrix, on both sides of the small
+/// kernels' order (64): against LAPACK's general inverse through ndarray-linalg and the
+/// definition ||C||_1 ||C^-1||_1 of the 1-norm condition number (C = D^-1/2 Omega D^-1/2).
+#[test]
+fn omega_inverse_and_its_condition_match_lapack() {
+    // on a thread with a large stack: OpenBLAS's threaded LU (the reference's `inv`) keeps
+    // per-thread job arrays on the stack, more than a test thread's 2 MiB at order 150 (the
+    // library itself never calls it)
+    std::thread::Builder::new().stack_size(64 << 20).spawn(omega_inverse_check).unwrap().join().unwrap();
+}
+
+fn omega_inverse_check() {
+    use crate::linalg::invert_omega;
+    let mut rng = Rng(777);
+    for n in [3usize, 64, 65, 150] {
+        let (a, _, _) = spd_with_factors(&mut rng, n + 20, n);
+        // units far apart, so that the correlation form matters
+        let scale: Vec<f64> = (0..n).map(|i| 10f64.powi((i % 7) as i32 - 3)).collect();
+        let omega = Array2::from_shape_fn((n, n), |(i, j)| a[[i, j]] * scale[i] * scale[j]);
+        let names: Vec<String> = (0..n).map(|i| format!("e{i}")).collect();
+        let (inv, cond) = invert_omega(&crate::linalg::to_fortran(&omega), &names, 1000, &scale).unwrap();
+        let want = omega.inv().unwrap();
+        let big = want.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+        for (u, v) in inv.iter().zip(want.iter()) {
+            assert!((u - v).abs() <= 1e-9 * big, "n={n}: {u} against {v}");
+        }
+        let corr = Array2::from_shape_fn((n, n), |(i, j)| a[[i, j]] / (a[[i, i]] * a[[j, j]]).sqrt());
+        let norm1 = |m: &Array2<f64>| m.columns().into_iter().map(|c| c.iter().map(|v| v.abs()).sum::<f64>()).fold(0.0, f64::max);
+        assert_relative_eq!(cond, norm1(&corr) * norm1(&corr.inv().unwrap()), max_relative = 1e-8);
+    }
+}
+
 /// Duplicate names are found for few and for many equations (the scan and the hash-set paths
 /// of the name check), naming the first repeated one.
 #[test]
@@ -1074,3 +1106,4 @@ fn blocked_cholesky_matches_lapack() {
         assert!(chol_lower(to_fortran(&bad)).is_none(), "order {n}: indefinite accepted");
     }
 }
+
