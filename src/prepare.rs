@@ -537,9 +537,11 @@ const MAX_THREADS: usize = 8;
 
 /// Step 0 for one equation: copy X_i into its columns of W (checking it is finite), QR in
 /// place there (leaving Q_i), Q_i'y_i, one step of refinement in doubled precision, and the
-/// residual direction q_i into its column of W. `scratch` (per thread) holds the residual
-/// and, for T K_i up to KEEP_COPY_MAX values of input that is not column-major, a
-/// column-major copy of X_i taken before the QR, from which the refinement reads.
+/// residual direction q_i into its column of W. `scratch` (per thread) holds the residual.
+/// The refinement, when there is one, reads X_i from the data (row-major input in blocks of
+/// rows transposed in cache, `residual_dot2`): a column-major copy kept for it had cost a copy
+/// of X_i per equation even where no refinement follows (most equations, since
+/// `plain_residual`).
 ///
 /// y_i is not part of the QR: the refinement computes the residual from the data anyway,
 /// and leaving it out saves a fifth to a third of the QR's passes over the rows. Columns are
@@ -555,14 +557,10 @@ fn factor_into(
     stop: &dyn Fn() -> bool,
 ) -> Result<EquationFactor> {
     let k = eq.n_regressors();
-    // Keep a column-major copy of X_i for the refinement when it is not too large: the
-    // refinement then reads columns instead of transposing the (usually row-major) input again.
-    let keep_copy = t * k <= KEEP_COPY_MAX && !eq.x.t().is_standard_layout();
-    let need = if keep_copy { t * (k + 1) } else { t };
-    if scratch.len() < need {
-        scratch.resize(need, 0.0);
+    if scratch.len() < t {
+        scratch.resize(t, 0.0);
     }
-    let (ebuf, xcol) = scratch.split_at_mut(t); // ebuf: y_i, then the refined residual
+    let ebuf = &mut scratch[..t]; // y_i, then the refined residual
     // W's columns of Q_i: one contiguous T x k column-major block
     let block = wq.as_slice_memory_order_mut().filter(|b| b.len() == t * k).expect("W is column-major");
     {
@@ -597,13 +595,6 @@ fn factor_into(
     // SAFETY: the loop above wrote every one of the t * k values (it returns before this line
     // when interrupted), and MaybeUninit<f64> has the layout of f64.
     let scratch: &mut [f64] = unsafe { &mut *(block as *mut [MaybeUninit<f64>] as *mut [f64]) };
-    let xcol = if keep_copy {
-        let c = &mut xcol[..t * k];
-        c.copy_from_slice(scratch);
-        Some(&*c)
-    } else {
-        None
-    };
     // Column norms; a column far from unit scale is scaled (by `scale[j]`) against overflow.
     let mut norms = Vec::with_capacity(k);
     let mut scale = Vec::with_capacity(k);
@@ -692,12 +683,8 @@ fn factor_into(
     let rho = match plain {
         Some(rho) => rho,
         None => {
-            let xview = match xcol {
-                Some(c) => ArrayView2::from_shape((t, k).f(), c).expect("t * k values"),
-                None => eq.x,
-            };
             refine_fit(
-                xview,
+                eq.x,
                 eq.y,
                 &scratch[..k * t],
                 t,
@@ -874,9 +861,6 @@ pub(crate) fn refine_fit(
     let ss = dot(e, e);
     Ok(if ss.is_finite() && ss > 1e-290 { ss.sqrt() } else { scaled_norm(e) })
 }
-
-/// Largest T K_i (values) of the column-major copy of X_i kept for the refinement (32 MB).
-const KEEP_COPY_MAX: usize = 1 << 22;
 
 /// The range of the largest |y_i| that step 0 accepts: beyond it the residual variances (squares
 /// of values a little smaller than y) under- or overflow double precision, and the errors that
