@@ -381,14 +381,16 @@ def run_case(name, cfg, blocksur, log, with_dense=True, sysfloor=None):
                                  cfg["min_sample"])
         samples[f"bs_ifgls_{m1}"], samples[f"bs_ifgls_{m2}"] = sa, sb
         samples["bs_ifgls_diff"] = dd
-        # the ratio targets again, from pairs of adjacent samples (see `time_pairs`)
+        # the ratio targets again, from pairs of adjacent samples (see `time_pairs`); at least
+        # 9 pairs (case (d) has 5 repeats: its pairs' ratios spread over 0.8-2.1 in one run)
+        pairs = max(cfg["repeats"], 9)
         if name == "a":
-            sa, sb = time_pairs(methods["bs_fgls_se"], methods["ref_fgls_se"], cfg["repeats"],
+            sa, sb = time_pairs(methods["bs_fgls_se"], methods["ref_fgls_se"], pairs,
                                 cfg["min_sample"])
             samples["pair_bs_fgls_se"], samples["pair_ref_fgls_se"] = sa, sb
         if name in ("c", "d"):
             order = "C" if med(samples["floor_C"]) <= med(samples["floor_F"]) else "F"
-            sa, sb = time_pairs(methods[f"floor_{order}"], methods["bs_fgls"], cfg["repeats"],
+            sa, sb = time_pairs(methods[f"floor_{order}"], methods["bs_fgls"], pairs,
                                 cfg["min_sample"])
             samples["pair_floor"], samples["pair_bs_fgls"] = sa, sb
     r["loadavg_after"] = round(os.getloadavg()[0], 2)
