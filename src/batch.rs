@@ -136,7 +136,7 @@ pub(crate) fn fit_general(data: &SystemData, opts: &FitOptions) -> Result<BatchF
     let prep = Prepared::new(data)?;
     let est = prep.estimate_with(opts, None, Some(data), &|| false)?;
     let se = prep.coef_variances(&est, CovKind::Classical, Some(data))?.mapv(|v| v.max(0.0).sqrt());
-    let loglik = prep.log_likelihood(&est.resid_crossprod()).unwrap_or(f64::NEG_INFINITY);
+    let loglik = prep.log_likelihood(est.resid_crossprod()).unwrap_or(f64::NEG_INFINITY);
     Ok(BatchFit { coef: est.coef, se, omega: est.omega, n_iter: est.n_iter, converged: est.converged, loglik })
 }
 

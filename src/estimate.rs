@@ -845,8 +845,9 @@ impl Prepared {
     /// E = [rho_j q_j] the OLS residuals: T N^2 for E Omega^-1 and T K for the products. Its
     /// final residual cross-products come from the residuals themselves (T N^2 / 2), formed
     /// when first asked for (the estimate keeps the T x N residuals until then). With
-    /// K = 4000, N = 1000, T = 2000 that is 0.68 of the full data pass's multiply-adds, and the GLS matrix is built in the K x K products'
-    /// own buffer: peak memory W + K^2 instead of P^2 + K^2.
+    /// K = 4000, N = 1000, T = 2000 that is 0.68 of the full data pass's multiply-adds, and the
+    /// GLS matrix is built in the K x K products' own buffer: peak memory W + K^2 instead of
+    /// P^2 + K^2.
     ///
     /// Returns the fit and a `Prepared` that keeps only q_i'q_j (`ResidualsOnly`): enough for
     /// the fit's covariances, OLS and the OLS residual cross-products, not for other GLS fits.

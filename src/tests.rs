@@ -315,7 +315,7 @@ fn log_likelihood_formula_and_maximum() {
     let d = data(&ys, &xs);
     let prep = Prepared::new(&d).unwrap();
     let est = prep.estimate(&opts(Method::IteratedFgls, Divisor::Ml)).unwrap();
-    let ll = prep.log_likelihood(&est.resid_crossprod()).unwrap();
+    let ll = prep.log_likelihood(est.resid_crossprod()).unwrap();
     let e = d.residuals(est.coef.as_slice().unwrap());
     let s = e.t().dot(&e) / 40.0;
     let det = s[[0, 0]] * s[[1, 1]] - s[[0, 1]] * s[[1, 0]];
