@@ -1104,10 +1104,7 @@ impl Prepared {
                 row.mapv_inplace(|v| v * inv);
             }
         }
-        let pc = match &middle {
-            None => None,
-            Some(c) => Some(pmat.dot(c)),
-        };
+        let pc = middle.as_ref().map(|c| pmat.dot(c));
         let mut out = Array1::from_iter((0..pmat.nrows()).map(|j| {
             let q = match &pc {
                 None => pmat.row(j).dot(&pmat.row(j)),

@@ -510,9 +510,9 @@ class EquationSystem(SystemLabels):
             # every array is now the system's own (a snapshot copy or a fresh conversion), but
             # for one that shares nothing with anything (an empty array) and is the caller's
             _snapshot(self._ys, self._xs, shared)
-            given = {id(v) for _, pair in items for v in pair}
-            self._ys = [_read_only(a) if id(a) in given else _own_read_only(a) for a in self._ys]
-            self._xs = [_read_only(a) if id(a) in given else _own_read_only(a) for a in self._xs]
+            callers = {id(v) for _, pair in items for v in pair}
+            self._ys = [_read_only(a) if id(a) in callers else _own_read_only(a) for a in self._ys]
+            self._xs = [_read_only(a) if id(a) in callers else _own_read_only(a) for a in self._xs]
         else:
             # read-only views: no step of the library, and no user edit through a view,
             # changes them (the caller's arrays keep their flags)
