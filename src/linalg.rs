@@ -587,14 +587,22 @@ pub fn chol_inverse_owned(l: Array2<f64>) -> Result<Array2<f64>> {
     Ok(a)
 }
 
+/// The error of a triangular solve whose diagonal holds `d` at `i`: a zero (an exactly
+/// singular factor) or a value that is not finite (NaN or inf: the factor was computed from
+/// such values), named as what it is.
+fn diagonal_defect(i: usize, d: f64) -> SurError {
+    let what = if d == 0.0 { "zero".to_string() } else { format!("non-finite value ({d})") };
+    SurError::numerical("triangular solve", format!("{what} on the diagonal, at position {i}"))
+}
+
 /// The inverse of an upper-triangular matrix (column by column back substitution).
 pub fn upper_inverse(r: &Array2<f64>) -> Result<Array2<f64>> {
     let n = r.nrows();
     if r.ncols() != n {
         return Err(SurError::numerical("triangular solve", "shapes do not match"));
     }
-    if (0..n).any(|i| r[[i, i]] == 0.0 || !r[[i, i]].is_finite()) {
-        return Err(SurError::numerical("triangular solve", "zero on the diagonal"));
+    if let Some(i) = (0..n).find(|&i| r[[i, i]] == 0.0 || !r[[i, i]].is_finite()) {
+        return Err(diagonal_defect(i, r[[i, i]]));
     }
     // column j of R^-1 by back substitution on R x = e_j (rows j+1.. of x are zero), the same
     // operations in the same order as `upper_solve`, without a vector per column
@@ -625,7 +633,7 @@ pub fn upper_solve(r: &Array2<f64>, b: &Array1<f64>) -> Result<Array1<f64>> {
         }
         let d = r[[i, i]];
         if d == 0.0 || !d.is_finite() {
-            return Err(SurError::numerical("triangular solve", "zero on the diagonal"));
+            return Err(diagonal_defect(i, d));
         }
         x[i] = acc / d;
     }

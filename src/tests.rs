@@ -1107,3 +1107,28 @@ fn blocked_cholesky_matches_lapack() {
     }
 }
 
+
+/// A triangular solve names the defect it finds on the diagonal: zero, or NaN/inf (common
+/// practice: back substitution divides by each diagonal entry).
+#[test]
+fn triangular_solves_name_the_defect_on_the_diagonal() {
+    use crate::linalg::{upper_inverse, upper_solve};
+    let good = ndarray::array![[2.0, 1.0], [0.0, 4.0]];
+    let inv = upper_inverse(&good).unwrap();
+    assert_relative_eq!(inv, ndarray::array![[0.5, -0.125], [0.0, 0.25]], max_relative = 1e-15);
+    let x = upper_solve(&good, &ndarray::array![3.0, 8.0]).unwrap();
+    assert_relative_eq!(x, ndarray::array![0.5, 2.0], max_relative = 1e-15);
+    for (d, want) in [(0.0, "zero on the diagonal, at position 1"), (f64::NAN, "non-finite value (NaN) on the diagonal, at position 1"), (f64::INFINITY, "non-finite value (inf) on the diagonal, at position 1")] {
+        let mut r = good.clone();
+        r[[1, 1]] = d;
+        for err in [upper_inverse(&r).unwrap_err(), upper_solve(&r, &ndarray::array![1.0, 1.0]).unwrap_err()] {
+            match err {
+                SurError::Numerical { context, detail } => {
+                    assert_eq!(context, "triangular solve");
+                    assert_eq!(detail, want);
+                }
+                other => panic!("expected a numerical error, got {other:?}"),
+            }
+        }
+    }
+}
