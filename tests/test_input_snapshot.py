@@ -264,6 +264,26 @@ def test_identical_indexes_work_and_label_the_rows():
     np.testing.assert_array_equal(fit.coef.to_numpy(), ref.coef.to_numpy())
 
 
+def test_the_same_instants_in_other_time_zones_are_the_same_rows():
+    y1, X1, y2, X2 = _data()
+    hours = pd.date_range("2024-03-30 20:00", periods=T, freq="h", tz="UTC")  # spans a DST change
+    berlin = hours.tz_convert("Europe/Berlin")
+    eqs = {
+        "a": (pd.Series(y1, index=hours), pd.DataFrame(X1, index=berlin, columns=["c", "p"])),
+        "b": (pd.Series(y2, index=hours.tz_convert("America/New_York")), X2),
+    }
+    fit = blocksur.EquationSystem(eqs).fit("fgls")
+    # rows are labelled by the first index seen, in its own zone
+    assert fit.resid.index.equals(hours) and str(fit.resid.index.tz) == "UTC"
+    ref = blocksur.EquationSystem({"a": (y1, X1), "b": (y2, X2)}).fit("fgls")
+    np.testing.assert_array_equal(fit.coef.to_numpy(), ref.coef.to_numpy())
+    # other instants, or naive against aware, still differ
+    for other in (hours + pd.Timedelta(hours=1), hours.tz_localize(None)):
+        with pytest.raises(errors.ShapeMismatchError, match="equation 'b': its row index differs"):
+            blocksur.EquationSystem({"a": (pd.Series(y1, index=hours), X1),
+                                     "b": (pd.Series(y2, index=other), X2)})
+
+
 # ---------------------------------------------------------------------------
 # F3: subnormal regressors
 

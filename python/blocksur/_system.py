@@ -282,6 +282,15 @@ def _own_read_only(arr: np.ndarray) -> np.ndarray:
     return arr
 
 
+def _same_rows(a: pd.Index, b: pd.Index) -> bool:
+    """Whether two row indexes label the same rows: equal, or time-zone-aware datetimes that
+    are the same instants shown in different zones (pandas calls those unequal)."""
+    if a.equals(b):
+        return True
+    aware = [isinstance(i, pd.DatetimeIndex) and i.tz is not None for i in (a, b)]
+    return all(aware) and a.tz_convert("UTC").equals(b.tz_convert("UTC"))
+
+
 def _check_indexes(
     name: str, y: Any, X: Any, first: tuple[pd.Index, str] | None
 ) -> tuple[pd.Index, str] | None:
@@ -296,7 +305,7 @@ def _check_indexes(
     y_idx = y.index if isinstance(y, (pd.Series, pd.DataFrame)) else None
     x_idx = X.index if isinstance(X, (pd.Series, pd.DataFrame)) else None
     if y_idx is not None and x_idx is not None and len(y_idx) == len(x_idx):
-        if not y_idx.equals(x_idx):
+        if not _same_rows(y_idx, x_idx):
             raise ShapeMismatchError(
                 f"equation '{name}': the row indexes of y and X differ; {how}", equation=name
             )
@@ -305,7 +314,7 @@ def _check_indexes(
             continue
         if first is None:
             first = (idx, name)
-        elif len(idx) == len(first[0]) and not idx.equals(first[0]):
+        elif len(idx) == len(first[0]) and not _same_rows(idx, first[0]):
             raise ShapeMismatchError(
                 f"equation '{name}': its row index differs from that of equation '{first[1]}'; "
                 f"{how}",
