@@ -330,3 +330,33 @@ def test_lr_accepts_a_fit_of_an_unpickled_copy_and_refuses_other_data(system):
     other = _system(seed=1).fit("ifgls", restrictions="a.x1 = 0", tol=1e-12)
     with pytest.raises(InvalidOptionError, match="same EquationSystem"):
         unrestricted.lr_against(other)
+
+
+# ---------------------------------------------------------------------------
+# variances beyond double precision
+
+
+@pytest.mark.parametrize("scale, entry", [(1e-170, np.inf), (1e200, 0.0)])
+def test_vcov_names_variances_beyond_double_precision(scale, entry):
+    # rescaling a regressor by s divides its coefficient and standard error by s (a fact of the
+    # trade: least squares is equivariant to the units of a column); at s = 1e-170 the variance
+    # (about 1e338) overflows, at 1e200 (about 1e-402) it underflows
+    rng = np.random.default_rng(11)
+    T = 60
+    X1 = np.column_stack([np.ones(T), rng.normal(size=T)])
+    X2 = np.column_stack([np.ones(T), rng.normal(size=T)])
+    e = rng.normal(size=(T, 2)) @ np.array([[1.0, 0.5], [0.0, 0.8]])
+    y1, y2 = X1 @ [1.0, 2.0] + e[:, 0], X2 @ [0.5, -1.0] + e[:, 1]
+    plain = blocksur.EquationSystem({"a": (y1, X1), "b": (y2, X2)}).fit("fgls")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        plain.vcov  # in range: no warning
+    scaled = blocksur.EquationSystem({"a": (y1, X1 * [1.0, scale]), "b": (y2, X2)}).fit("fgls")
+    with pytest.warns(blocksur.VarianceRangeWarning, match=r"variances of a\.x1 are beyond double"):
+        v = scaled.vcov
+    assert v.loc[("a", "x1"), ("a", "x1")] == entry
+    np.testing.assert_allclose(scaled.se[("a", "x1")], plain.se[("a", "x1")] / scale, rtol=1e-10)
+    np.testing.assert_allclose(scaled.coef[("a", "x1")], plain.coef[("a", "x1")] / scale, rtol=1e-10)
+    # the other coefficients' covariance is unchanged
+    others = [("a", "x0"), ("b", "x0"), ("b", "x1")]
+    np.testing.assert_allclose(v.loc[others, others], plain.vcov.loc[others, others], rtol=1e-10)

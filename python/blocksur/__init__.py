@@ -44,6 +44,7 @@ from .errors import (
     SingularOmegaError,
     TooFewObservationsError,
     UnknownColumnError,
+    VarianceRangeWarning,
 )
 
 __all__ = [
@@ -69,6 +70,7 @@ __all__ = [
     "SingularOmegaError",
     "TooFewObservationsError",
     "UnknownColumnError",
+    "VarianceRangeWarning",
     "FormulaError",
     "MissingDependencyError",
     "DataNotKeptError",

@@ -13,7 +13,13 @@ from . import _core
 from ._restrictions import parse_restrictions
 from ._frame import expand_new
 from ._tests import HypothesisTestResult
-from .errors import InvalidOptionError, NotConvergedWarning, NumericalError, ShapeMismatchError
+from .errors import (
+    InvalidOptionError,
+    NotConvergedWarning,
+    NumericalError,
+    ShapeMismatchError,
+    VarianceRangeWarning,
+)
 
 if TYPE_CHECKING:  # pragma: no cover
     from ._system import EquationSystem
@@ -320,8 +326,33 @@ class SystemFit:
     @cached_property
     def vcov(self) -> pd.DataFrame:
         """Covariance of all coefficients, cross-equation blocks included, of the kind chosen
-        at fit time (:attr:`covariance`: classical, hc0 or hc1)."""
-        return pd.DataFrame(self._vcov_array, index=self._coef_index, columns=self._coef_index)
+        at fit time (:attr:`covariance`: classical, hc0 or hc1). Variances beyond double
+        precision (regressors in extreme units) come out inf or 0 with a
+        :class:`~blocksur.VarianceRangeWarning` naming them; :attr:`se` stays finite."""
+        v = self._vcov_array
+        self._warn_variance_range(v)
+        return pd.DataFrame(v, index=self._coef_index, columns=self._coef_index)
+
+    def _warn_variance_range(self, v: np.ndarray) -> None:
+        """Warns when diagonal entries of ``v`` overflowed to inf or underflowed to 0 although
+        the coefficient's standard error (computed apart, scaled) is positive and finite."""
+        diag = np.diagonal(v)
+        bad = ~np.isfinite(diag)
+        if np.any(diag == 0):
+            se = self.se.to_numpy()
+            bad |= (diag == 0) & (se > 0) & np.isfinite(se)
+        if not np.any(bad):
+            return
+        labels = [f"{e}.{r}" for e, r in self._coef_index[np.flatnonzero(bad)]]
+        shown = ", ".join(labels[:3]) + (f" and {len(labels) - 3} more" if len(labels) > 3 else "")
+        warnings.warn(
+            f"the variances of {shown} are beyond double precision (inf or 0 in vcov): their "
+            "regressors are in extreme units (near 1e+-160 or beyond); rescale those columns "
+            "(express them in larger or smaller units). se, and tests of single coefficients, "
+            "come from scaled quantities and stay finite",
+            VarianceRangeWarning,
+            stacklevel=3,
+        )
 
     @cached_property
     def se(self) -> pd.Series:
@@ -518,7 +549,7 @@ class SystemFit:
                     "imposed at fit time, so R V R' is singular: test it on the unrestricted fit"
                 )
         gap = r @ self.coef.to_numpy() - q
-        vcov = self.vcov.to_numpy()
+        vcov = self._vcov_array  # (the checks below say what is out of range, unwarned)
         used = np.flatnonzero(np.any(r != 0, axis=0))
         sub = vcov[np.ix_(used, used)]
         if not np.all(np.isfinite(sub)) or np.any((np.diag(sub) == 0) & (self.se.to_numpy()[used] > 0)):

@@ -31,6 +31,7 @@ __all__ = [
     "BlocksurWarning",
     "NotConvergedWarning",
     "IllConditionedWarning",
+    "VarianceRangeWarning",
 ]
 
 
@@ -130,6 +131,12 @@ class NotConvergedWarning(BlocksurWarning):
 class IllConditionedWarning(BlocksurWarning):
     """A regressor block or the estimated Omega is ill-conditioned enough to cost digits; the
     message gives the condition number estimate."""
+
+
+class VarianceRangeWarning(BlocksurWarning):
+    """Some coefficient variances in :attr:`SystemFit.vcov` are beyond double precision
+    (overflowed to inf or underflowed to 0: regressors in units near 1e+-160 or beyond). The
+    standard errors are computed apart and stay finite; the message names the coefficients."""
 
 
 class RestrictionError(InputError):
