@@ -352,8 +352,9 @@ def test_vcov_names_variances_beyond_double_precision(scale, entry):
         warnings.simplefilter("error")
         plain.vcov  # in range: no warning
     scaled = blocksur.EquationSystem({"a": (y1, X1 * [1.0, scale]), "b": (y2, X2)}).fit("fgls")
-    with pytest.warns(blocksur.VarianceRangeWarning, match=r"variances of a\.x1 are beyond double"):
+    with pytest.warns(blocksur.VarianceRangeWarning, match=r"variances of a\.x1 are beyond double") as rec:
         v = scaled.vcov
+    assert rec[0].filename == __file__  # attributed to the line that read vcov
     assert v.loc[("a", "x1"), ("a", "x1")] == entry
     np.testing.assert_allclose(scaled.se[("a", "x1")], plain.se[("a", "x1")] / scale, rtol=1e-10)
     np.testing.assert_allclose(scaled.coef[("a", "x1")], plain.coef[("a", "x1")] / scale, rtol=1e-10)

@@ -351,7 +351,7 @@ class SystemFit:
             "(express them in larger or smaller units). se, and tests of single coefficients, "
             "come from scaled quantities and stay finite",
             VarianceRangeWarning,
-            stacklevel=3,
+            stacklevel=4,  # this method, the vcov getter, cached_property's __get__, the caller
         )
 
     @cached_property
