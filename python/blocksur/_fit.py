@@ -333,14 +333,20 @@ class SystemFit:
         self._warn_variance_range(v)
         return pd.DataFrame(v, index=self._coef_index, columns=self._coef_index)
 
-    def _warn_variance_range(self, v: np.ndarray) -> None:
-        """Warns when diagonal entries of ``v`` overflowed to inf or underflowed to 0 although
-        the coefficient's standard error (computed apart, scaled) is positive and finite."""
+    def _variances_out_of_range(self, v: np.ndarray) -> np.ndarray:
+        """Which coefficients' variances (the diagonal of ``v``) overflowed to inf or
+        underflowed to 0 although their standard errors (computed apart, scaled) are positive
+        and finite."""
         diag = np.diagonal(v)
         bad = ~np.isfinite(diag)
         if np.any(diag == 0):
             se = self.se.to_numpy()
             bad |= (diag == 0) & (se > 0) & np.isfinite(se)
+        return bad
+
+    def _warn_variance_range(self, v: np.ndarray) -> None:
+        """Warns, naming them, when coefficients' variances are out of range."""
+        bad = self._variances_out_of_range(v)
         if not np.any(bad):
             return
         labels = [f"{e}.{r}" for e, r in self._coef_index[np.flatnonzero(bad)]]
@@ -552,7 +558,7 @@ class SystemFit:
         vcov = self._vcov_array  # (the checks below say what is out of range, unwarned)
         used = np.flatnonzero(np.any(r != 0, axis=0))
         sub = vcov[np.ix_(used, used)]
-        if not np.all(np.isfinite(sub)) or np.any((np.diag(sub) == 0) & (self.se.to_numpy()[used] > 0)):
+        if not np.all(np.isfinite(sub)) or np.any(self._variances_out_of_range(vcov)[used]):
             raise InvalidOptionError(
                 "the covariance of the coefficients these restrictions involve is beyond double "
                 "precision (their variances over- or underflow: regressors in units near 1e+-200 "
