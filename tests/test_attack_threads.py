@@ -86,21 +86,37 @@ def test_concurrent_fits_are_bit_identical_to_sequential(blas, size):
             body()
 
 
-def test_the_core_releases_the_gil():
+def _sized_for_gil_test(shape: str):
+    """A system whose iterated fit takes at least 0.15 s on this machine, so that a fit holding the
+    GIL would stall the main thread far beyond Python's 5 ms switch interval. "long" spends its
+    time in the data pass (N = 10, T from 600,000), "wide" in the iterations (T = 1,000, N from 300,
+    unequal K_i, so no identical-regressor shortcut). The size grows until the fit is slow enough:
+    a fixed size became too quick on faster machines."""
+    steps = [(10, 600_000), (10, 1_200_000)] if shape == "long" else [(300, 1000), (450, 1000), (600, 1000)]
+    for n_eq, n_obs in steps:
+        eqs = make_system(99, n_eq=n_eq, n_obs=n_obs, unequal=True)
+        blocksur.EquationSystem(eqs).fit("ifgls", max_iter=50)  # first touch of the memory
+        t0 = time.perf_counter()
+        blocksur.EquationSystem(eqs).fit("ifgls", max_iter=50)
+        took = time.perf_counter() - t0
+        if took >= 0.15:
+            break
+    return eqs, took
+
+
+@pytest.mark.parametrize("shape", ["long", "wide"])
+def test_the_core_releases_the_gil(shape):
     """While one thread runs a long fit, the main thread keeps running Python code. With the GIL
     held by the fit, the main thread would stall for the whole fit."""
-    big = make_system(99, n_eq=10, n_obs=300_000, unequal=True)
-    system = blocksur.EquationSystem(big)
-    t0 = time.perf_counter()
-    system.fit("ols")  # the data pass happens once here
-    single = time.perf_counter() - t0
-    assert single > 0.05, f"the fit is too quick ({single:.3f}s) to observe"
-    system = blocksur.EquationSystem(big)
+    eqs, single = _sized_for_gil_test(shape)
     done = threading.Event()
     gaps = []
+    inside = []
 
     def worker():
-        system.fit("ifgls", max_iter=50)
+        t0 = time.perf_counter()
+        blocksur.EquationSystem(eqs).fit("ifgls", max_iter=50)  # data pass and iterations
+        inside.append(time.perf_counter() - t0)
         done.set()
 
     th = threading.Thread(target=worker)
@@ -114,12 +130,17 @@ def test_the_core_releases_the_gil():
         ticks += 1
         sum(range(200))  # a little Python work
     th.join()
+    fit_time = inside[0]
     worst = max(gaps) if gaps else float("inf")
-    print(f"fit {single:.3f}s; main thread ran {ticks} loop turns, longest stall {worst * 1e3:.1f} ms")
+    print(f"{shape}: fit alone {single:.3f}s, beside the main thread {fit_time:.3f}s; "
+          f"main thread ran {ticks} loop turns, longest stall {worst * 1e3:.1f} ms")
+    # the guard: a fit this short could not tell a held GIL from a released one
+    assert fit_time > 0.1, f"the fit is too quick ({fit_time:.3f}s) to observe, even at the largest size"
     # Python's switch interval is 5 ms; the core takes the GIL only briefly (signal checks,
-    # results), so the main thread must never stall for a large part of the fit.
+    # results), so the main thread must never stall for half of the fit. Holding the GIL would
+    # stall it for the whole fit.
     assert ticks > 100
-    assert worst < max(0.25, 0.5 * single), f"main thread stalled {worst:.3f}s during a {single:.3f}s fit"
+    assert worst < 0.5 * fit_time, f"main thread stalled {worst:.3f}s during a {fit_time:.3f}s fit"
 
 
 def _timed(systems, method, workers):
