@@ -84,7 +84,7 @@ print("OK", flush=True)
 """
 
 
-def _child(kind: str, extra: list[str]) -> subprocess.Popen:
+def _child(kind: str, extra: tuple[str, ...] = ()) -> subprocess.Popen:
     env = dict(os.environ, PYTHONPATH=os.path.join(ROOT, "tests"))
     return subprocess.Popen(
         [sys.executable, "-c", CHILD, kind, *extra],
@@ -97,8 +97,8 @@ def _child(kind: str, extra: list[str]) -> subprocess.Popen:
     )
 
 
-def _interrupt(kind: str, delay: float, extra: list[str] = (), ready_timeout: float = 120.0) -> tuple[float, list[str]]:
-    proc = _child(kind, list(extra))
+def _interrupt(kind: str, delay: float, extra: tuple[str, ...] = (), ready_timeout: float = 120.0) -> tuple[float, list[str]]:
+    proc = _child(kind, extra)
     try:
         deadline = time.monotonic() + ready_timeout
         line = proc.stdout.readline()
@@ -137,7 +137,7 @@ def data_pass_size() -> tuple[int, float]:
     faster one)."""
     rows = 4_000_000
     while True:
-        proc = _child("data_pass", [str(rows)])
+        proc = _child("data_pass", (str(rows),))
         out, err = proc.communicate(timeout=240)
         lines = [ln for ln in out.splitlines() if ln]
         assert proc.returncode == 0 and len(lines) >= 2 and lines[1].startswith("FINISHED"), (lines, err[-2000:])
@@ -154,7 +154,7 @@ def test_sigint_stops_a_long_data_pass_within_a_second(fraction, data_pass_size)
     rows, full = data_pass_size
     assert full >= 1.0, f"the data pass of {rows} rows took only {full:.2f}s: too quick to interrupt"
     delay = fraction * full
-    latency, lines = _interrupt("data_pass", delay, [str(rows)])
+    latency, lines = _interrupt("data_pass", delay, (str(rows),))
     print(f"data pass of {rows} rows ({full:.2f}s uninterrupted), SIGINT after {delay:.2f}s: "
           f"KeyboardInterrupt {latency * 1e3:.0f} ms later ({lines[0]})")
     # A core that never looked at signals would raise only when the pass ends, the rest of it
