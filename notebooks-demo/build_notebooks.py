@@ -147,7 +147,7 @@ fit rebuilt from it has the same numbers."""),
 import json
 
 text = json.dumps(ml.to_dict())
-back = blocksur.SystemFit.from_dict(json.loads(text))
+back = blocksur.FittedSystem.from_dict(json.loads(text))
 print(f"{len(text) / 1e3:.0f} kB of JSON; identical coefficients: {back.coef.equals(ml.coef)}, "
       f"identical covariance: {back.vcov.equals(ml.vcov)}")
 ml.long_table().query("pval > 0.05")"""),

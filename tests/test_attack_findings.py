@@ -154,7 +154,7 @@ def test_r2_of_a_constant_dependent_variable_is_not_infinite():
 def test_loglik_of_an_exact_fit_is_plus_infinity():
     """An equation with y = 0 (OLS residuals exactly zero): S/T is singular, so ln det(S/T) = -inf
     and the log-likelihood -(NT/2)(1 + ln 2 pi) - (T/2) ln det(S/T) is +inf. Observed: -inf (and
-    the docstring of SystemFit.loglik says -inf). A nearly exact fit (y = 1 + 2 t exactly, residuals
+    the docstring of FittedSystem.loglik says -inf). A nearly exact fit (y = 1 + 2 t exactly, residuals
     ~1e-16) gives +166: large and positive, as the formula says. Expected: +inf."""
     t = 5
     rng = np.random.default_rng(0)

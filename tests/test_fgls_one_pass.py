@@ -76,7 +76,7 @@ def test_one_pass_fit_offers_what_a_full_fit_offers(monkeypatch, omega):
     assert max_rel(one.prediction_se(new).to_numpy(), gram.prediction_se(new).to_numpy()) <= 1e-12
     assert one.report() == gram.report()  # every printed digit agrees
     # a restored copy answers the same
-    back = blocksur.SystemFit.from_dict(one.to_dict())
+    back = blocksur.FittedSystem.from_dict(one.to_dict())
     assert max_rel(back.se.to_numpy(), one.se.to_numpy()) == 0
 
 

@@ -185,7 +185,7 @@ def test_restricted_fit_with_shared_regressors_is_restricted_gls():
 def test_coefficient_fixed_by_restriction_has_zero_variance(method, covariance):
     # c.x2 = 0.5 fixes a coefficient: b_r = P b + const with row c.x2 of P equal to zero, so
     # its variance is exactly 0 whatever the covariance of b (algebra of the closed form,
-    # Greene from memory), and the documented contract of SystemFit.stat is NaN for it.
+    # Greene from memory), and the documented contract of FittedSystem.stat is NaN for it.
     eqs = _data(seed=14)
     fit = blocksur.EquationSystem(eqs).fit(method, restrictions="c.x2 = 0.5", covariance=covariance)
     key = ("c", "x2")

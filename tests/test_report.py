@@ -191,7 +191,7 @@ def test_fit_methods_have_docstrings_with_examples():
     for name in ("long_table", "wide_table", "equation_stats", "forecast_table", "to_dict", "from_dict",
                  "report", "report_html", "to_markdown", "to_latex", "plot_resid_corr", "plot_coef",
                  "plot_convergence"):
-        doc = inspect.getdoc(getattr(blocksur.SystemFit, name))
+        doc = inspect.getdoc(getattr(blocksur.FittedSystem, name))
         assert doc and "Example" in doc, name
     assert "Example" in inspect.getdoc(blocksur.EquationSystem.from_table)
     assert inspect.getdoc(blocksur.SampleInfo)

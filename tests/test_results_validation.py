@@ -109,7 +109,7 @@ def test_lr_refuses_a_restricted_fit_with_the_higher_likelihood(system):
 def test_lr_against_a_non_fit_is_a_type_error(system):
     fit = system.fit("ifgls")
     for other in (3, None, "fit"):
-        with pytest.raises(TypeError, match="SystemFit of the same EquationSystem"):
+        with pytest.raises(TypeError, match="FittedSystem of the same EquationSystem"):
             fit.lr_against(other)
 
 

@@ -84,7 +84,7 @@ def test_se_of_a_blocked_system_vs_statsmodels(divisor):
 def test_restored_fits_keep_their_standard_errors():
     fit = blocksur.EquationSystem(_general()).fit("fgls", covariance="hc1")
     se = fit.se.to_numpy()
-    again = blocksur.SystemFit.from_dict(json.loads(json.dumps(fit.to_dict())))
+    again = blocksur.FittedSystem.from_dict(json.loads(json.dumps(fit.to_dict())))
     np.testing.assert_allclose(again.se.to_numpy(), se, rtol=1e-15, atol=0)
     unpickled = pickle.loads(pickle.dumps(fit))
     np.testing.assert_allclose(unpickled.se.to_numpy(), se, rtol=1e-15, atol=0)

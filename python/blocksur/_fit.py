@@ -24,7 +24,7 @@ from .errors import (
 if TYPE_CHECKING:  # pragma: no cover
     from ._system import EquationSystem
 
-__all__ = ["SystemFit"]
+__all__ = ["FittedSystem"]
 
 # Largest system whose standard errors the matrix-free path computes without being asked.
 _CG_SE_LIMIT = 5000
@@ -182,7 +182,7 @@ def _check_nested(loose: Any, tight: Any) -> None:
         )
 
 
-class SystemFit:
+class FittedSystem:
     """Estimates of a system of equations, with labels.
 
     Produced by :meth:`EquationSystem.fit`. Coefficient-shaped results are pandas objects indexed
@@ -591,7 +591,7 @@ class SystemFit:
         f = w / m
         return HypothesisTestResult("Wald", null, f, "F", m, dfd, float(_stats().f.sf(f, m, dfd)))
 
-    def lr_against(self, other: "SystemFit") -> HypothesisTestResult:
+    def lr_against(self, other: "FittedSystem") -> HypothesisTestResult:
         """Likelihood-ratio test between this fit and a nested one (both iterated ML fits:
         ``method="ifgls"``, ``omega="ml"``, on the same system). LR = 2 (ll_big - ll_small)
         ~ chi2(difference in free coefficients).
@@ -601,9 +601,9 @@ class SystemFit:
         that are not nested are refused. A restricted fit whose log-likelihood exceeds the
         other's by more than rounding (an iterated fit that stopped short of its maximum) is
         refused too, rather than reported as a statistic of zero."""
-        if not isinstance(other, SystemFit):
+        if not isinstance(other, FittedSystem):
             raise TypeError(
-                "lr_against expects another SystemFit of the same EquationSystem (an iterated ML "
+                "lr_against expects another FittedSystem of the same EquationSystem (an iterated ML "
                 f"fit with or without restrictions), not {type(other).__name__}"
             )
         for f in (self, other):
@@ -934,21 +934,21 @@ class SystemFit:
         -------
         >>> import json
         >>> text = json.dumps(fit.to_dict())           # doctest: +SKIP
-        >>> same = SystemFit.from_dict(json.loads(text))   # doctest: +SKIP
+        >>> same = FittedSystem.from_dict(json.loads(text))  # doctest: +SKIP
         """
         from ._tidy import fit_to_dict
 
         return fit_to_dict(self, keep_data)
 
     @classmethod
-    def from_dict(cls, data: dict[str, Any]) -> "SystemFit":
+    def from_dict(cls, data: dict[str, Any]) -> "FittedSystem":
         """Rebuilds a fit saved by :meth:`to_dict`: identical coefficients, covariance, Omega,
         residuals and fit measures. Methods that go back to the data raise
         :class:`~blocksur.errors.DataNotKeptError` unless the dict kept the regressors.
 
         Example
         -------
-        >>> SystemFit.from_dict(saved).coef            # doctest: +SKIP
+        >>> FittedSystem.from_dict(saved).coef         # doctest: +SKIP
         """
         from ._tidy import fit_from_dict
 
@@ -1067,6 +1067,6 @@ class SystemFit:
         if self.method == "ifgls":
             state = f", {self.n_iter} steps, " + ("converged" if self.converged else "NOT converged")
         return (
-            f"<SystemFit {self.method} (omega divisor {self.omega_divisor}{state}): "
+            f"<FittedSystem {self.method} (omega divisor {self.omega_divisor}{state}): "
             f"N={self.n_eq} equations, T={self.n_obs}, K={self.n_coef} coefficients>"
         )

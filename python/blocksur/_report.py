@@ -28,7 +28,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 if TYPE_CHECKING:  # pragma: no cover
-    from ._fit import SystemFit
+    from ._fit import FittedSystem
 
 __all__ = ["text_report", "html_report", "markdown_table", "latex_table", "format_number"]
 
@@ -124,7 +124,7 @@ def _check_level(level: Any) -> None:
 
 
 # -- the facts a report shows (shared by text and HTML) ----------------------------------------------
-def _header(fit: "SystemFit", level: float) -> list[tuple[str, str]]:
+def _header(fit: "FittedSystem", level: float) -> list[tuple[str, str]]:
     rows = []
     est = _METHOD.get(fit.method, fit.method)
     if fit.method == "ifgls":
@@ -163,14 +163,14 @@ def _header(fit: "SystemFit", level: float) -> list[tuple[str, str]]:
     return rows
 
 
-def _equation_line(fit: "SystemFit", i: int, stats: Any) -> str:
+def _equation_line(fit: "FittedSystem", i: int, stats: Any) -> str:
     name = fit.equation_names[i]
     s = stats.iloc[i]
     return (f"{int(s['n_regressors'])} regressors | R-squared {s['r2']:.4f} (adjusted {s['r2_adj']:.4f}) | "
             f"residual s.e. {format_number(s['resid_se'], 5)}"), name
 
 
-def _system_rows(fit: "SystemFit") -> list[tuple[str, str]]:
+def _system_rows(fit: "FittedSystem") -> list[tuple[str, str]]:
     rows = []
     ll = fit.loglik
     if math.isfinite(ll):
@@ -192,7 +192,7 @@ def _system_rows(fit: "SystemFit") -> list[tuple[str, str]]:
     return rows
 
 
-def _corr_summary(fit: "SystemFit", top: int = 3) -> str:
+def _corr_summary(fit: "FittedSystem", top: int = 3) -> str:
     r = fit.resid_corr.to_numpy()
     names = fit.equation_names
     iu = np.triu_indices(len(names), 1)
@@ -203,7 +203,7 @@ def _corr_summary(fit: "SystemFit", top: int = 3) -> str:
             f"{vals.max():+.2f}], mean |r| {np.mean(np.abs(vals)):.2f}; strongest: {pairs}")
 
 
-def _coef_table(fit: "SystemFit", level: float) -> tuple[Any, str | None]:
+def _coef_table(fit: "FittedSystem", level: float) -> tuple[Any, str | None]:
     """The coefficient table, or the estimates alone (NaN elsewhere) with a note when the
     standard errors are not available (matrix-free path beyond its limit)."""
     from .errors import BlocksurError
@@ -217,13 +217,13 @@ def _coef_table(fit: "SystemFit", level: float) -> tuple[Any, str | None]:
         return t, f"standard errors not computed: {err}"
 
 
-def _caution(fit: "SystemFit") -> str:
+def _caution(fit: "FittedSystem") -> str:
     robust = "" if fit.covariance == "classical" else "; the robust covariance relaxes this for the standard errors"
     return CAUTION.format(robust=robust)
 
 
 # -- plain text ------------------------------------------------------------------------------------
-def text_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None = 12, width: int = 100,
+def text_report(fit: "FittedSystem", level: float = 0.95, max_equations: int | None = 12, width: int = 100,
                 max_corr: int = 8) -> str:
     """The fit as plain text, no line longer than ``width`` (80 to 1000) characters;
     ``max_equations=None`` shows every equation."""
@@ -329,7 +329,7 @@ def _corr_color(v: float) -> str:
     return f"background:rgba({rgb},{a:.2f})"
 
 
-def html_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None = 12,
+def html_report(fit: "FittedSystem", level: float = 0.95, max_equations: int | None = 12,
                 max_corr: int = 15) -> str:
     """The fit as one well-formed HTML fragment (every tag closed, text escaped);
     ``max_equations=None`` shows every equation."""
@@ -398,7 +398,7 @@ def html_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None
 
 
 # -- Markdown and LaTeX -----------------------------------------------------------------------------
-def _rows(fit: "SystemFit", level: float, digits: int) -> list[list[str]]:
+def _rows(fit: "FittedSystem", level: float, digits: int) -> list[list[str]]:
     _check_level(level)
     digits = _whole("digits (significant digits shown)", digits, 1, MAX_DIGITS)
     t = fit.coef_table(level)
@@ -412,7 +412,7 @@ def _rows(fit: "SystemFit", level: float, digits: int) -> list[list[str]]:
     return out
 
 
-def markdown_table(fit: "SystemFit", level: float = 0.95, digits: int = 4) -> str:
+def markdown_table(fit: "FittedSystem", level: float = 0.95, digits: int = 4) -> str:
     """The coefficient table as a Markdown pipe table (one row per coefficient)."""
     rows = _rows(fit, level, digits)
     stat = "z" if fit.inference == "z" else "t"
@@ -437,7 +437,7 @@ def _tex(s: str) -> str:
     return "".join(_TEX.get(ch, ch) for ch in s)
 
 
-def latex_table(fit: "SystemFit", level: float = 0.95, digits: int = 4, caption: str | None = None,
+def latex_table(fit: "FittedSystem", level: float = 0.95, digits: int = 4, caption: str | None = None,
                 label: str | None = None) -> str:
     """The coefficient table as a LaTeX ``table`` (needs ``\\usepackage{booktabs}``)."""
     from .errors import InvalidOptionError

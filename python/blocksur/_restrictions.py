@@ -15,7 +15,7 @@ Examples::
     2 * north.income - south.income = 0.5; north.weekend = 0
 
 Arrays are accepted too: ``(R, q)`` with ``R`` of shape (m, K) over the order of
-``SystemFit.coef`` and ``q`` of length m.
+``FittedSystem.coef`` and ``q`` of length m.
 """
 
 from __future__ import annotations
@@ -227,7 +227,7 @@ def parse_restrictions(
         raise TypeError(
             "restrictions must be a restriction string such as 'north.price = south.price' "
             "(several separated by ';'), a list of such strings, or an (R, q) pair of arrays "
-            f"with R over the order of SystemFit.coef; got {type(spec).__name__}"
+            f"with R over the order of FittedSystem.coef; got {type(spec).__name__}"
         )
     items = _split(spec)  # type: ignore[arg-type]
     if not items:
