@@ -1,5 +1,5 @@
 """System diagnostics against outside references: Breusch-Pagan LM and LR tests of a diagonal
-Omega, the GRS intercept test, McElroy's system R-squared, AIC/BIC, residual correlation.
+Omega, the GRS intercept test, McElroy's R-squared of the system, AIC/BIC, residual correlation.
 
 References (named beside each check):
 * statsmodels' general ``sm.OLS`` per equation (residuals, intercepts) and the dense iterated
@@ -196,9 +196,9 @@ def test_mcelroy_r2_vs_dense_formula(method, divisor):
     D = np.eye(T) - np.ones((T, T)) / T
     # McElroy (1977), from memory, with the dense Kronecker products
     r2 = 1 - (e @ np.kron(Oi, np.eye(T)) @ e) / (y @ np.kron(Oi, D) @ y)
-    err = ref.record("inference: McElroy system R2 vs dense kron formula (abs)", abs(fit.system_r2 - r2))
+    err = ref.record("inference: McElroy system R2 vs dense kron formula (abs)", abs(fit.mcelroy_r2 - r2))
     assert err < 1e-12
-    assert 0 < fit.system_r2 < 1
+    assert 0 < fit.mcelroy_r2 < 1
 
 
 @pytest.mark.parametrize("restrictions", [None, "a.x1 = b.x1; a.x2 + c.x2 = 1"])

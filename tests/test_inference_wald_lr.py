@@ -131,6 +131,7 @@ def test_wald_result_object():
     np.testing.assert_allclose(w.pvalue, fit.pval[("a", "x1")], rtol=1e-9)
     assert w.rejects(0.05) == (w.pvalue < 0.05)
     assert ("not rejected" in w.verdict(0.05)) == (w.pvalue >= 0.05)
+    assert w.h0 == "a.x1 = 0" and w.verdict().endswith("(H0: a.x1 = 0)")
     # the true-null version: a.x1 equal to its own estimate gives W = 0, p = 1
     b = fit.coef[("a", "x1")]
     w0 = fit.wald((np.eye(fit.n_coef)[[1]], np.array([b])))

@@ -120,7 +120,7 @@ def test_text_report_fits_100_columns_and_has_every_part(key):
     lines = text.splitlines()
     assert max(len(ln) for ln in lines) <= 100
     for label in ("estimator", "sample", "Omega", "covariance", "coefficients", "log-likelihood",
-                  "system R-squared", "Omega diagonal?", "Residual correlations"):
+                  "McElroy R-squared", "Omega diagonal?", "Residual correlations"):
         assert label in text, label
     assert "rows dropped" in text and "not causal" in text
     if fit.method == "ifgls":

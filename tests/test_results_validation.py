@@ -82,7 +82,7 @@ def test_lr_of_nested_fits_is_twice_the_loglik_gap(system):
         assert res.df == 1 and res.dist == "chi2"
         assert res.statistic == pytest.approx(expected, rel=1e-9)
         assert res.pvalue == pytest.approx(stats.chi2.sf(expected, 1), rel=1e-7)
-        assert res.null == "a.x1 = 0"
+        assert res.h0 == "a.x1 = 0"
     # a restriction set that implies a.x1 = 0 in another form is nested too:
     # 2 a.x1 = b.x1 and b.x1 = 0 give a.x1 = 0
     both = system.fit("ifgls", restrictions="2*a.x1 = b.x1; b.x1 = 0", tol=1e-12)

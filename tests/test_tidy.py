@@ -21,7 +21,7 @@ from reference import record
 
 MEASURES = ["coef", "se", "vcov", "omega", "resid", "fitted", "r2", "r2_adj", "resid_se", "ssr",
             "stat", "pval", "resid_corr", "df_resid"]
-SCALARS = ["loglik", "aic", "bic", "system_r2", "n_iter", "converged", "method", "omega_divisor",
+SCALARS = ["loglik", "aic", "bic", "mcelroy_r2", "n_iter", "converged", "method", "omega_divisor",
            "covariance", "inference", "n_obs", "n_eq", "n_coef", "n_restrictions"]
 
 

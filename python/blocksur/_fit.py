@@ -584,12 +584,12 @@ class FittedSystem:
             )
         gs = gap / d
         w = float(gs @ np.linalg.solve(corr, gs))
-        null = "; ".join(rset.texts)
+        h0 = "; ".join(rset.texts)
         if form == "chi2":
-            return HypothesisTestResult("Wald", null, w, "chi2", m, None, float(_stats().chi2.sf(w, m)))
+            return HypothesisTestResult("Wald", h0, w, "chi2", m, None, float(_stats().chi2.sf(w, m)))
         dfd = self.n_eq * self.n_obs - self.n_coef + self.n_restrictions
         f = w / m
-        return HypothesisTestResult("Wald", null, f, "F", m, dfd, float(_stats().f.sf(f, m, dfd)))
+        return HypothesisTestResult("Wald", h0, f, "F", m, dfd, float(_stats().f.sf(f, m, dfd)))
 
     def lr_against(self, other: "FittedSystem") -> HypothesisTestResult:
         """Likelihood-ratio test between this fit and a nested one (both iterated ML fits:
@@ -648,8 +648,8 @@ class FittedSystem:
                 )
             lr = 0.0  # rounding of two equal maxima
         df = abs(free_self - free_other)
-        null = "; ".join(small.restrictions.texts) if small.restrictions is not None else "the smaller model"
-        return HypothesisTestResult("LR", null, lr, "chi2", df, None, float(_stats().chi2.sf(lr, df)))
+        h0 = "; ".join(small.restrictions.texts) if small.restrictions is not None else "the smaller model"
+        return HypothesisTestResult("LR", h0, lr, "chi2", df, None, float(_stats().chi2.sf(lr, df)))
 
     def omega_diagonal_lm(self) -> HypothesisTestResult:
         """Breusch-Pagan LM test that Omega is diagonal (no cross-equation correlation):
@@ -735,8 +735,8 @@ class FittedSystem:
         return pd.DataFrame(s / np.outer(d, d), index=self._names, columns=self._names)
 
     @cached_property
-    def system_r2(self) -> float:
-        """McElroy's (1977) system R-squared: 1 - e'(Omega^-1 (x) I)e / y'(Omega^-1 (x) D)y,
+    def mcelroy_r2(self) -> float:
+        """McElroy's (1977) R-squared of the whole system: 1 - e'(Omega^-1 (x) I)e / y'(Omega^-1 (x) D)y,
         D the centring matrix, Omega = :attr:`omega`."""
         oinv = np.linalg.inv(self._est.omega)
         y = np.column_stack(self._system._ys)

@@ -179,9 +179,10 @@ def _system_rows(fit: "FittedSystem") -> list[tuple[str, str]]:
     else:
         rows.append(("log-likelihood", "not finite: the residual covariance is singular"))
     try:
-        rows.append(("system R-squared", f"{fit.system_r2:.4f} (McElroy)"))
+        rows.append(("McElroy R-squared", f"{fit.mcelroy_r2:.4f} (all equations together, weighted by the "
+                                          "inverse of Omega)"))
     except np.linalg.LinAlgError:
-        rows.append(("system R-squared", "not available: Omega is singular"))
+        rows.append(("McElroy R-squared", "not available: Omega is singular"))
     if fit.n_eq >= 2:
         t = fit.omega_diagonal_lm()
         verdict = ("the equations' errors are correlated: a system estimator can gain over OLS"
@@ -297,7 +298,7 @@ def text_report(fit: "FittedSystem", level: float = 0.95, max_equations: int | N
     out.append("")
     out.append("System")
     for label, value in _system_rows(fit):
-        wrap_label = 19
+        wrap_label = 21
         kv(label, value)
     out.append("-" * width)
     out.extend(textwrap.wrap(_caution(fit), width=width))

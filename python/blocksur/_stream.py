@@ -559,8 +559,8 @@ class RowlessFit(FittedSystem):
         raise self._system._not_kept()
 
     @cached_property
-    def system_r2(self) -> float:
-        """McElroy's (1977) system R-squared, from the summaries (see :attr:`FittedSystem.system_r2`)."""
+    def mcelroy_r2(self) -> float:
+        """McElroy's (1977) R-squared of the system, from the summaries (see :attr:`FittedSystem.mcelroy_r2`)."""
         oinv = np.linalg.inv(self._est.omega)
         num = np.sum(oinv * np.asarray(self._est.resid_crossprod))
         den = np.sum(oinv * self._ycross)
