@@ -149,7 +149,8 @@ def test_text_report_stays_narrow_with_long_names_and_many_equations():
 def test_markdown_table_reads_back():
     fit = FITS["ifgls"]
     md = fit.to_markdown(digits=5)
-    lines = md.strip().splitlines()
+    title, blank, *lines = md.strip().splitlines()  # the title is checked below
+    assert blank == "" and fit.to_markdown(digits=5, caption="") == "\n".join(lines) + "\n"
     # reference: a pipe table row is "| cell | cell |"; the second line is the alignment row
     cells = [[c.strip() for c in ln.strip().strip("|").split("|")] for ln in lines]
     assert cells[0][:3] == ["equation", "regressor", "estimate"]
@@ -157,6 +158,56 @@ def test_markdown_table_reads_back():
     assert len(lines) == 2 + fit.n_coef and all(len(c) == 8 for c in cells)
     got = np.array([float(c[2]) for c in cells[2:]])
     np.testing.assert_allclose(got, fit.coef.to_numpy(), rtol=5e-6, atol=0)
+
+
+class _Headings(HTMLParser):
+    """The text of each <h1>..<h6> element."""
+
+    def __init__(self):
+        super().__init__(convert_charrefs=True)
+        self.found: list[str] = []
+        self._open = False
+
+    def handle_starttag(self, tag, attrs):
+        if re.fullmatch(r"h[1-6]", tag):
+            self._open = True
+            self.found.append("")
+
+    def handle_endtag(self, tag):
+        if re.fullmatch(r"h[1-6]", tag):
+            self._open = False
+
+    def handle_data(self, data):
+        if self._open:
+            self.found[-1] += data
+
+
+@pytest.mark.parametrize("key", list(FITS))
+def test_every_report_format_opens_with_a_blocksur_title(key):
+    """The title is blocksur's own: "blocksur", the size of the system and the estimator in
+    words, the same in the text, HTML, Markdown and LaTeX outputs (the last two by default)."""
+    fit = FITS[key]
+    words = {"ols": "OLS", "fgls": "two-step FGLS", "ifgls": "iterated FGLS"}[fit.method]
+    expected = f"blocksur · {fit.n_eq} equations × {fit.n_obs} rows · {words}"
+    text = fit.report()
+    assert text.splitlines()[0] == expected
+    headings = _Headings()  # reference: the standard library's html.parser
+    headings.feed(fit.report_html())
+    assert headings.found[0] == expected
+    assert fit.to_markdown().splitlines()[0] == expected
+    tex = fit.to_latex()
+    caption = next(ln for ln in tex.splitlines() if ln.startswith(r"\caption{"))
+    assert caption == r"\caption{" + expected.replace("·", r"$\cdot$").replace("×", r"$\times$") + "}"
+    # the caption options replace the title; "" drops it
+    assert r"\caption{Load}" in fit.to_latex(caption="Load") and r"\caption" not in fit.to_latex(caption="")
+    for out in (text, fit.report_html(), fit.to_markdown(), tex):
+        assert "SUR system" not in out and "system fit" not in out
+
+
+def test_title_counts_in_words():
+    data = random_system(1, 40, seed=2)
+    fit = blocksur.EquationSystem(data.equations).fit("fgls")
+    assert _report.title(fit) == "blocksur · 1 equation × 40 rows · two-step FGLS"
 
 
 def test_latex_table_is_balanced_and_escaped():

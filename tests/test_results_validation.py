@@ -283,6 +283,8 @@ def fit(system):
         ("to_markdown", {"digits": "a"}, "digits .* must be a whole number from 1 to 15"),
         ("to_markdown", {"digits": None}, "digits"),
         ("to_markdown", {"level": True}, "level"),
+        ("to_markdown", {"caption": ["a"]}, "caption must be a string or None"),
+        ("to_latex", {"label": 1}, "label must be a string or None"),
     ],
 )
 def test_report_options_are_validated(fit, method, kwargs, allowed):

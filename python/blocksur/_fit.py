@@ -965,10 +965,11 @@ class FittedSystem:
         restore_pickle(self, state)
 
     def report(self, level: float = 0.95, max_equations: int | None = 12, width: int = 100) -> str:
-        """A plain-text report for terminals and logs: header (method, sample, iterations,
-        Omega divisor, covariance), one block per equation (the first ``max_equations``, a whole
-        number >= 1, or None for all), the residual correlations and the system-wide
-        statistics, at most ``width`` columns (a whole number from 80 to 1000).
+        """A plain-text report for terminals and logs: a title (``"blocksur · 3 equations ×
+        365 rows · iterated FGLS"``), a header (method, sample, iterations, Omega divisor,
+        covariance), one block per equation (the first ``max_equations``, a whole number >= 1,
+        or None for all), the residual correlations and the system-wide statistics, at most
+        ``width`` columns (a whole number from 80 to 1000).
 
         Example
         -------
@@ -996,9 +997,10 @@ class FittedSystem:
     def _repr_html_(self) -> str:
         return self.report_html()
 
-    def to_markdown(self, level: float = 0.95, digits: int = 4) -> str:
+    def to_markdown(self, level: float = 0.95, digits: int = 4, caption: str | None = None) -> str:
         """The coefficient table as a Markdown (pipe) table, with ``digits`` significant digits
-        (a whole number from 1 to 15).
+        (a whole number from 1 to 15), after a line with ``caption``: by default the report's
+        title (``"blocksur · 3 equations × 365 rows · iterated FGLS"``), ``""`` for none.
 
         Example
         -------
@@ -1006,12 +1008,14 @@ class FittedSystem:
         """
         from ._report import markdown_table
 
-        return markdown_table(self, level=level, digits=digits)
+        return markdown_table(self, level=level, digits=digits, caption=caption)
 
     def to_latex(self, level: float = 0.95, digits: int = 4, caption: str | None = None,
                  label: str | None = None) -> str:
         """The coefficient table as a LaTeX ``table`` with a ``tabular`` (booktabs rules), with
-        ``digits`` significant digits (a whole number from 1 to 15).
+        ``digits`` significant digits (a whole number from 1 to 15), captioned ``caption``: by
+        default the report's title (``"blocksur · 3 equations × 365 rows · iterated FGLS"``),
+        ``""`` for no caption.
 
         Example
         -------

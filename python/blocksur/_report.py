@@ -1,7 +1,8 @@
 """Reports of a fit: plain text for terminals and logs, HTML for Jupyter, and the coefficient
 table as Markdown or LaTeX.
 
-The layout is blocksur's own: a header that says how the estimate was made (estimator and
+The layout is blocksur's own: a title (``blocksur · 3 equations × 365 rows · iterated FGLS``,
+which also opens the HTML report and, by default, the Markdown and LaTeX tables), a header that says how the estimate was made (estimator and
 its convergence, the sample and the rows dropped, how Omega was scaled, the kind of covariance
 and reference distribution, the restrictions), one block per equation (its fit line, then one
 row per regressor with the estimate, its standard error, the test statistic, the p-value and
@@ -30,7 +31,7 @@ import numpy as np
 if TYPE_CHECKING:  # pragma: no cover
     from ._fit import FittedSystem
 
-__all__ = ["text_report", "html_report", "markdown_table", "latex_table", "format_number"]
+__all__ = ["title", "text_report", "html_report", "markdown_table", "latex_table", "format_number"]
 
 CAUTION = (
     "How to read this: the estimates rest on the model's assumptions (linear equations, errors "
@@ -39,6 +40,7 @@ CAUTION = (
     "(residual plots, the correlations above, the tests) before relying on them."
 )
 
+_METHOD_SHORT = {"ols": "OLS", "fgls": "two-step FGLS", "ifgls": "iterated FGLS"}
 _METHOD = {
     "ols": "OLS, each equation on its own",
     "fgls": "two-step FGLS (Omega from OLS residuals, then one GLS step)",
@@ -124,6 +126,17 @@ def _check_level(level: Any) -> None:
 
 
 # -- the facts a report shows (shared by text and HTML) ----------------------------------------------
+def _count(n: int, what: str) -> str:
+    return f"{n} {what}" + ("" if n == 1 else "s")
+
+
+def title(fit: "FittedSystem") -> str:
+    """The title of every report of ``fit``: blocksur, the size of the system and the
+    estimator, e.g. ``"blocksur · 3 equations × 365 rows · iterated FGLS"``."""
+    method = _METHOD_SHORT.get(fit.method, fit.method)
+    return f"blocksur · {_count(fit.n_eq, 'equation')} × {_count(fit.n_obs, 'row')} · {method}"
+
+
 def _header(fit: "FittedSystem", level: float) -> list[tuple[str, str]]:
     rows = []
     est = _METHOD.get(fit.method, fit.method)
@@ -242,9 +255,7 @@ def text_report(fit: "FittedSystem", level: float = 0.95, max_equations: int | N
         out.append(f"  {label:<{wrap_label - 2}}{lines[0]}")
         out.extend(" " * wrap_label + ln for ln in lines[1:])
 
-    title = "SUR system fit, by blocksur"
-    out.append("=" * width)
-    out.append(f"  {title}  ::  {fit.n_eq} equations, {fit.n_obs} rows, {fit.method}")
+    out.append(title(fit))
     out.append("=" * width)
     for label, value in _header(fit, level):
         kv(label, value)
@@ -340,7 +351,7 @@ def html_report(fit: "FittedSystem", level: float = 0.95, max_equations: int | N
     if max_equations is None:
         max_equations = fit.n_eq
     h: list[str] = [f'<div class="bsr"><style>{_STYLE}</style>']
-    h.append(f"<h4>SUR system fit <small>({fit.n_eq} equations, {fit.n_obs} rows, {_e(fit.method)})</small></h4>")
+    h.append(f"<h4>{_e(title(fit))}</h4>")
     h.append('<table class="head"><tbody>')
     for label, value in _header(fit, level):
         h.append(f"<tr><th>{_e(label)}</th><td>{_e(value)}</td></tr>")
@@ -413,8 +424,17 @@ def _rows(fit: "FittedSystem", level: float, digits: int) -> list[list[str]]:
     return out
 
 
-def markdown_table(fit: "FittedSystem", level: float = 0.95, digits: int = 4) -> str:
-    """The coefficient table as a Markdown pipe table (one row per coefficient)."""
+def _caption(caption: Any) -> None:
+    from .errors import InvalidOptionError
+
+    if caption is not None and not isinstance(caption, str):
+        raise InvalidOptionError(f"caption must be a string or None, got {type(caption).__name__}")
+
+
+def markdown_table(fit: "FittedSystem", level: float = 0.95, digits: int = 4, caption: str | None = None) -> str:
+    """The coefficient table as a Markdown pipe table (one row per coefficient), after a line
+    with ``caption``: by default the report's :func:`title`; ``""`` for the table alone."""
+    _caption(caption)
     rows = _rows(fit, level, digits)
     stat = "z" if fit.inference == "z" else "t"
     lv = _level(level)
@@ -426,12 +446,15 @@ def markdown_table(fit: "FittedSystem", level: float = 0.95, digits: int = 4) ->
     lines = ["| " + " | ".join(head) + " |", "|" + "|".join([":---", ":---"] + ["---:"] * 6) + "|"]
     for row in rows:
         lines.append("| " + " | ".join(cell(c) for c in row) + " |")
+    caption = title(fit) if caption is None else caption
+    if caption:
+        lines = [caption, ""] + lines
     return "\n".join(lines) + "\n"
 
 
 _TEX = {"\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#", "_": r"\_",
         "{": r"\{", "}": r"\}", "~": r"\textasciitilde{}", "^": r"\textasciicircum{}",
-        "<": r"\textless{}", ">": r"\textgreater{}"}
+        "<": r"\textless{}", ">": r"\textgreater{}", "·": r"$\cdot$", "×": r"$\times$"}
 
 
 def _tex(s: str) -> str:
@@ -440,13 +463,15 @@ def _tex(s: str) -> str:
 
 def latex_table(fit: "FittedSystem", level: float = 0.95, digits: int = 4, caption: str | None = None,
                 label: str | None = None) -> str:
-    """The coefficient table as a LaTeX ``table`` (needs ``\\usepackage{booktabs}``)."""
+    """The coefficient table as a LaTeX ``table`` (needs ``\\usepackage{booktabs}``), captioned
+    ``caption``: by default the report's :func:`title`; ``""`` for no caption."""
     from .errors import InvalidOptionError
 
-    for name, value in (("caption", caption), ("label", label)):
-        if value is not None and not isinstance(value, str):
-            raise InvalidOptionError(f"{name} must be a string or None, got {type(value).__name__}")
+    _caption(caption)
+    if label is not None and not isinstance(label, str):
+        raise InvalidOptionError(f"label must be a string or None, got {type(label).__name__}")
     rows = _rows(fit, level, digits)
+    caption = title(fit) if caption is None else caption
     stat = "$z$" if fit.inference == "z" else "$t$"
     lv = _tex(_level(level))
     out = [r"\begin{table}[htbp]", r"\centering"]
