@@ -204,12 +204,12 @@ except blocksur.SingularOmegaError as err:
 
 With three equations left, homogeneity is one restriction per equation and symmetry one per
 pair of retained goods; together with adding-up they give symmetry for the whole system. The
-restrictions are written as text, `equation.regressor` for a coefficient."""),
+restrictions are written as text, `equation::regressor` for a coefficient."""),
         code("""\
 goods = ["food", "housing", "transport"]
 prices = ["lp_food", "lp_housing", "lp_transport", "lp_leisure"]
-homogeneity = [" + ".join(f"{g}.{p}" for p in prices) + " = 0" for g in goods]
-symmetry = [f"{a}.lp_{b} = {b}.lp_{a}" for i, a in enumerate(goods) for b in goods[i + 1:]]
+homogeneity = [" + ".join(f"{g}::{p}" for p in prices) + " = 0" for g in goods]
+symmetry = [f"{a}::lp_{b} = {b}::lp_{a}" for i, a in enumerate(goods) for b in goods[i + 1:]]
 print("\\n".join(homogeneity + symmetry))
 
 system = blocksur.EquationSystem.from_table(data.frame, {g: data.equations[g] for g in goods})
@@ -265,8 +265,8 @@ is dropped. Dropping food instead and recovering it gives the same numbers, up t
 convergence tolerance."""),
         code("""\
 goods_b = ["housing", "transport", "leisure"]
-homog_b = [" + ".join(f"{g}.{p}" for p in prices) + " = 0" for g in goods_b]
-symm_b = [f"{a}.lp_{b} = {b}.lp_{a}" for i, a in enumerate(goods_b) for b in goods_b[i + 1:]]
+homog_b = [" + ".join(f"{g}::{p}" for p in prices) + " = 0" for g in goods_b]
+symm_b = [f"{a}::lp_{b} = {b}::lp_{a}" for i, a in enumerate(goods_b) for b in goods_b[i + 1:]]
 system_b = blocksur.EquationSystem.from_table(data.frame, {g: data.equations[g] for g in goods_b})
 restricted_b = system_b.fit("ifgls", restrictions=homog_b + symm_b)
 food_b = recover(restricted_b, goods_b, "food")

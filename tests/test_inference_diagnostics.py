@@ -86,7 +86,7 @@ def test_omega_diagonal_lr_vs_formula():
     lr = T * (np.sum(np.log(ssr / T)) - np.linalg.slogdet(omega_ml)[1])
     # whatever fit it is called on (non-ML fits refit the unrestricted ML internally)
     for fit in (s.fit("ifgls", tol=1e-13), s.fit("fgls"), s.fit("ols", omega="dof"),
-                s.fit("ifgls", restrictions="a.x1 = b.x1")):
+                s.fit("ifgls", restrictions="a::x1 = b::x1")):
         res = fit.omega_diagonal_lr()
         err = ref.record("inference: LR diagonal Omega vs formula (rel)", abs(res.statistic - lr) / lr)
         assert err < 1e-8
@@ -201,7 +201,7 @@ def test_mcelroy_r2_vs_dense_formula(method, divisor):
     assert 0 < fit.mcelroy_r2 < 1
 
 
-@pytest.mark.parametrize("restrictions", [None, "a.x1 = b.x1; a.x2 + c.x2 = 1"])
+@pytest.mark.parametrize("restrictions", [None, "a::x1 = b::x1; a::x2 + c::x2 = 1"])
 def test_aic_bic_vs_formula(restrictions):
     eqs = _data(seed=64)
     fit = blocksur.EquationSystem(eqs).fit("ifgls", restrictions=restrictions)

@@ -69,7 +69,7 @@ def _fits():
     data = grid_load_table(n_districts=4, n_days=400, seed=8)
     system = blocksur.EquationSystem.from_table(data.frame, data.equations)
     return {
-        "ifgls": system.fit("ifgls", restrictions="harbour.hdd_harbour = hillside.hdd_hillside"),
+        "ifgls": system.fit("ifgls", restrictions="harbour::hdd_harbour = hillside::hdd_hillside"),
         "ols-t-hc1": system.fit("ols", covariance="hc1", inference="t"),
     }
 
@@ -125,7 +125,7 @@ def test_text_report_fits_100_columns_and_has_every_part(key):
     assert "rows dropped" in text and "not causal" in text
     if fit.method == "ifgls":
         assert f"converged after {fit.n_iter} GLS steps" in " ".join(text.split())
-        assert "harbour.hdd_harbour = hillside.hdd_hillside" in text
+        assert "harbour::hdd_harbour = hillside::hdd_hillside" in text
     # every coefficient's estimate printed on its regressor's line (read back with float)
     for (eq, reg), value in fit.coef.items():
         block = text.split(f"] {eq}  --", 1)[1]

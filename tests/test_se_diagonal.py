@@ -24,7 +24,7 @@ from reference import dense_gls, identical_regressor_data, make_sur_data, max_re
 
 RTOL_DIAG = 1e-13  # diagonal path vs the full covariance's diagonal (same numbers, other order)
 
-RESTRICT = "a.x1 = b.x1; c.x0 = 0.5"
+RESTRICT = "a::x1 = b::x1; c::x0 = 0.5"
 
 
 def _general():
@@ -61,7 +61,7 @@ def test_se_is_the_root_of_the_full_covariance_diagonal(data, method, covariance
     err = record(f"se diagonal path vs sqrt(diag(vcov)) (rel), {data}", _compare(one, two))
     assert err <= RTOL_DIAG
     if restricted:
-        assert (one.se.to_numpy() == 0.0).sum() == 1  # c.x0 fixed
+        assert (one.se.to_numpy() == 0.0).sum() == 1  # c::x0 fixed
     else:
         assert np.all(one.se.to_numpy() > 0.0)
 

@@ -123,14 +123,14 @@ def test_forecast_table_matches_statsmodels_prediction_intervals():
 @pytest.mark.parametrize("method,covariance", [("ols", "classical"), ("fgls", "hc1"), ("ifgls", "classical")])
 def test_json_round_trip_is_exact(method, covariance):
     _, system = _system()
-    fit = system.fit(method, covariance=covariance, restrictions="eq0.x1 = eq1.x1")
+    fit = system.fit(method, covariance=covariance, restrictions="eq0::x1 = eq1::x1")
     text = json.dumps(fit.to_dict(), allow_nan=False)  # reference: strict JSON of the stdlib
     back = blocksur.FittedSystem.from_dict(json.loads(text))
     _same(fit, back)
-    assert back.restrictions.texts == ("eq0.x1 = eq1.x1",)
+    assert back.restrictions.texts == ("eq0::x1 = eq1::x1",)
     np.testing.assert_array_equal(back.restrictions.r, fit.restrictions.r)
     # what needs only the stored numbers still works
-    assert back.wald("eq0.x2 = 0").statistic == fit.wald("eq0.x2 = 0").statistic
+    assert back.wald("eq0::x2 = 0").statistic == fit.wald("eq0::x2 = 0").statistic
     assert back.omega_diagonal_lm().statistic == fit.omega_diagonal_lm().statistic
     new = {n: np.ones((2, len(r))) for n, r in system.regressor_names.items()}
     assert back.predict(new).equals(fit.predict(new))
@@ -144,7 +144,7 @@ def test_json_round_trip_is_exact(method, covariance):
 def test_json_round_trip_keeps_nan_and_labels():
     data = grid_load_table(n_districts=3, n_days=400, seed=2)
     fit = blocksur.EquationSystem.from_table(data.frame, data.equations).fit(
-        "fgls", restrictions="harbour.hdd_harbour = 3.5")
+        "fgls", restrictions="harbour::hdd_harbour = 3.5")
     # a coefficient fixed by a restriction has no sampling variance: its statistic is NaN
     assert np.isnan(fit.stat[("harbour", "hdd_harbour")])
     d = json.loads(json.dumps(fit.to_dict(), allow_nan=False))
@@ -213,7 +213,7 @@ def test_pickle_round_trip_is_exact(method):
     assert back.predict(data.future).equals(fit.predict(data.future))
     assert back.omega_diagonal_lr().statistic == pytest.approx(fit.omega_diagonal_lr().statistic, rel=1e-12)
     # two fits pickled together keep sharing one system (the LR test needs that)
-    small, big = system.fit("ifgls", restrictions="harbour.hdd_harbour = hillside.hdd_hillside"), system.fit("ifgls")
+    small, big = system.fit("ifgls", restrictions="harbour::hdd_harbour = hillside::hdd_hillside"), system.fit("ifgls")
     a, b = pickle.loads(pickle.dumps([small, big]))
     assert a.lr_against(b).statistic == pytest.approx(small.lr_against(big).statistic, rel=1e-12)
     # a restored fit pickles again

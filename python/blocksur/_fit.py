@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 
 from . import _core
-from ._restrictions import parse_restrictions
+from ._restrictions import coefficient_text, parse_restrictions
 from ._frame import expand_new
 from ._tests import HypothesisTestResult
 from .errors import (
@@ -349,7 +349,7 @@ class FittedSystem:
         bad = self._variances_out_of_range(v)
         if not np.any(bad):
             return
-        labels = [f"{e}.{r}" for e, r in self._coef_index[np.flatnonzero(bad)]]
+        labels = [coefficient_text(e, r) for e, r in self._coef_index[np.flatnonzero(bad)]]
         shown = ", ".join(labels[:3]) + (f" and {len(labels) - 3} more" if len(labels) > 3 else "")
         warnings.warn(
             f"the variances of {shown} are beyond double precision (inf or 0 in vcov): their "

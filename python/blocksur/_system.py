@@ -694,8 +694,10 @@ class EquationSystem(SystemLabels):
             and a :class:`NotConvergedWarning` is issued.
         restrictions
             Linear restrictions imposed at estimation, across equations if wanted: a string such
-            as ``"north.price = south.price; north.income + south.income = 1"`` (see
-            :mod:`blocksur._restrictions` for the syntax), a list of such strings, or an
+            as ``"north::price = south::price; north::income + south::income = 1"``
+            (``equation::regressor``; names other than letters, digits and underscores between
+            backticks, as in ```north zone`::`log(price)```: see :mod:`blocksur._restrictions`
+            for the syntax), a list of such strings, or an
             ``(R, q)`` pair of arrays over the order of :attr:`FittedSystem.coef`. Omega is estimated
             from residuals that satisfy the restrictions (restricted OLS for the first step).
         covariance
