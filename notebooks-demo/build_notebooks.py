@@ -85,17 +85,17 @@ ml  # the HTML report"""),
         md("""\
 ## What the system estimator gains
 
-The ratio of standard errors, OLS over iterated FGLS, measures the gain in precision for each
-coefficient. The gain comes from regressors that differ across districts (each district's own
+The precision gain of a coefficient, its OLS standard error over its iterated-FGLS one, measures
+what estimating the districts together buys. The gain comes from regressors that differ across districts (each district's own
 weather and driver); for regressors that every equation shares (the intercept and the
 day-type indicators) GLS gains little, and with identical regressors in all equations it would
 give OLS exactly."""),
         code("""\
 both = ols.long_table().merge(ml.long_table(), on=["equation", "regressor"], suffixes=("_ols", "_ifgls"))
-both["se_ratio"] = both["se_ols"] / both["se_ifgls"]
+both["precision_gain"] = both["se_ols"] / both["se_ifgls"]
 shared = both["regressor"].str.startswith(("Intercept", "C(day_type)"))
 both["regressors"] = np.where(shared, "shared by all districts", "the district's own")
-both.groupby("regressors")["se_ratio"].describe()[["count", "min", "50%", "max"]]"""),
+both.groupby("regressors")["precision_gain"].describe()[["count", "min", "50%", "max"]]"""),
         code("""\
 own = lambda eq, reg: reg.removesuffix("_" + eq)  # one panel for hdd_harbour, hdd_hillside, ...
 fig = ml.plot_coef(regressors=["hdd", "cdd", "industry", "visitors"], rename=own,
@@ -107,7 +107,7 @@ errors[~shared.to_numpy()].groupby(level="equation").mean().round(3)"""),
         md("""\
 The table above compares each estimate with the coefficient that generated the data (known
 here because the data are simulated): one sample only, so it illustrates rather than proves;
-the standard-error ratios are the formal measure of the gain.
+the precision gains are the formal measure.
 
 ## Is the cross-district correlation real?
 
@@ -364,26 +364,26 @@ print(fgls.report(max_equations=2))"""),
         md("""\
 ## Gains, and how far to trust the intervals
 
-The standard-error ratio OLS / FGLS shows the gain from estimating the stores together. The
+The precision gain, se(OLS) / se(FGLS), shows what estimating the stores together buys. The
 generating coefficients are known here, so we can also count how often the 95% intervals
 cover them: a check of the standard errors themselves."""),
         code("""\
-ratio = ols.se / fgls.se  # both indexed by (equation, regressor)
-kind = ratio.index.get_level_values("regressor").str.replace(r"_s\\d+$", "", regex=True)
+gain = ols.se / fgls.se  # precision gain; both indexed by (equation, regressor)
+kind = gain.index.get_level_values("regressor").str.replace(r"_s\\d+$", "", regex=True)
 truth = pd.concat(data.true_coef, names=["equation", "regressor"]).reindex(fgls.coef.index)
 
 def coverage(fit):
     ci = fit.interval(0.95)
     return ((ci["lower"] <= truth) & (truth <= ci["upper"])).groupby(kind).mean()
 
-summary = pd.DataFrame({"median se(OLS) / se(FGLS)": ratio.groupby(kind).median(),
+summary = pd.DataFrame({"median precision gain": gain.groupby(kind).median(),
                         "OLS coverage": coverage(ols), "FGLS coverage": coverage(fgls),
                         "iterated FGLS coverage": coverage(ml)})
 display(summary.round(3))
 
 fig, ax = plt.subplots(figsize=(6, 3), layout="constrained")
-ax.hist(ratio[kind == "price"], bins=30, color="C0")
-ax.set_xlabel("se(OLS) / se(FGLS), price coefficients"); ax.set_ylabel("stores");"""),
+ax.hist(gain[kind == "price"], bins=30, color="C0")
+ax.set_xlabel("precision gain se(OLS) / se(FGLS), price coefficients"); ax.set_ylabel("stores");"""),
         md("""\
 The system estimators are far more precise than OLS here, because regional shocks make the
 stores' errors strongly correlated. Their intervals cover the truth somewhat less often than
