@@ -9,16 +9,16 @@ number. Several restrictions are separated by ``;`` or new lines, or given as a 
 
 Quoting: a name made of letters, digits and underscores (not starting with a digit) is written
 as it is. Any other name (with spaces, brackets, dots, colons, signs...) goes between backticks,
-and a backtick inside such a name is written twice: the regressor ``log(price)`` of the
-equation ``north zone`` is ```north zone`::`log(price)```, and a regressor named ``a`b`` is
-```a``b```.
+and a backtick inside such a name is written twice.
 
 Examples::
 
     north::price = south::price                 # equal price effects in two regions
     food::income + fuel::income + other::income = 0
     2 * north::income - south::income = 0.5; north::weekend = 0
-    `north zone`::`log(price)` = 2 * south::`log(price)`
+    `north zone`::`log(price)` = 2 * south::`log(price)`    # equation "north zone"
+    harbour::`C(day_type)[T.sunday]` = 0        # a term of a formula
+    south::`a``b` = 1                           # the regressor named a`b
 
 A coefficient written ``equation.regressor`` raises a
 :class:`~blocksur.errors.RestrictionSyntaxError` whose message shows the restriction rewritten

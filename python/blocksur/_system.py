@@ -695,9 +695,9 @@ class EquationSystem(SystemLabels):
         restrictions
             Linear restrictions imposed at estimation, across equations if wanted: a string such
             as ``"north::price = south::price; north::income + south::income = 1"``
-            (``equation::regressor``; names other than letters, digits and underscores between
-            backticks, as in ```north zone`::`log(price)```: see :mod:`blocksur._restrictions`
-            for the syntax), a list of such strings, or an
+            (``equation::regressor``; a name that is not made of letters, digits and
+            underscores goes between backticks: see :mod:`blocksur._restrictions` for the
+            syntax), a list of such strings, or an
             ``(R, q)`` pair of arrays over the order of :attr:`FittedSystem.coef`. Omega is estimated
             from residuals that satisfy the restrictions (restricted OLS for the first step).
         covariance
