@@ -85,17 +85,17 @@ ml  # the HTML report"""),
         md("""\
 ## What the system estimator gains
 
-The ratio of standard errors, OLS over iterated FGLS, measures the gain in precision for each
-coefficient. The gain comes from regressors that differ across districts (each district's own
+The precision gain of a coefficient, its OLS standard error over its iterated-FGLS one, measures
+what estimating the districts together buys. The gain comes from regressors that differ across districts (each district's own
 weather and driver); for regressors that every equation shares (the intercept and the
 day-type indicators) GLS gains little, and with identical regressors in all equations it would
 give OLS exactly."""),
         code("""\
 both = ols.long_table().merge(ml.long_table(), on=["equation", "regressor"], suffixes=("_ols", "_ifgls"))
-both["se_ratio"] = both["se_ols"] / both["se_ifgls"]
+both["precision_gain"] = both["se_ols"] / both["se_ifgls"]
 shared = both["regressor"].str.startswith(("Intercept", "C(day_type)"))
 both["regressors"] = np.where(shared, "shared by all districts", "the district's own")
-both.groupby("regressors")["se_ratio"].describe()[["count", "min", "50%", "max"]]"""),
+both.groupby("regressors")["precision_gain"].describe()[["count", "min", "50%", "max"]]"""),
         code("""\
 own = lambda eq, reg: reg.removesuffix("_" + eq)  # one panel for hdd_harbour, hdd_hillside, ...
 fig = ml.plot_coef(regressors=["hdd", "cdd", "industry", "visitors"], rename=own,
@@ -107,7 +107,7 @@ errors[~shared.to_numpy()].groupby(level="equation").mean().round(3)"""),
         md("""\
 The table above compares each estimate with the coefficient that generated the data (known
 here because the data are simulated): one sample only, so it illustrates rather than proves;
-the standard-error ratios are the formal measure of the gain.
+the precision gains are the formal measure.
 
 ## Is the cross-district correlation real?
 
@@ -147,7 +147,7 @@ fit rebuilt from it has the same numbers."""),
 import json
 
 text = json.dumps(ml.to_dict())
-back = blocksur.SystemFit.from_dict(json.loads(text))
+back = blocksur.FittedSystem.from_dict(json.loads(text))
 print(f"{len(text) / 1e3:.0f} kB of JSON; identical coefficients: {back.coef.equals(ml.coef)}, "
       f"identical covariance: {back.vcov.equals(ml.vcov)}")
 ml.long_table().query("pval > 0.05")"""),
@@ -204,12 +204,12 @@ except blocksur.SingularOmegaError as err:
 
 With three equations left, homogeneity is one restriction per equation and symmetry one per
 pair of retained goods; together with adding-up they give symmetry for the whole system. The
-restrictions are written as text, `equation.regressor` for a coefficient."""),
+restrictions are written as text, `equation::regressor` for a coefficient."""),
         code("""\
 goods = ["food", "housing", "transport"]
 prices = ["lp_food", "lp_housing", "lp_transport", "lp_leisure"]
-homogeneity = [" + ".join(f"{g}.{p}" for p in prices) + " = 0" for g in goods]
-symmetry = [f"{a}.lp_{b} = {b}.lp_{a}" for i, a in enumerate(goods) for b in goods[i + 1:]]
+homogeneity = [" + ".join(f"{g}::{p}" for p in prices) + " = 0" for g in goods]
+symmetry = [f"{a}::lp_{b} = {b}::lp_{a}" for i, a in enumerate(goods) for b in goods[i + 1:]]
 print("\\n".join(homogeneity + symmetry))
 
 system = blocksur.EquationSystem.from_table(data.frame, {g: data.equations[g] for g in goods})
@@ -265,8 +265,8 @@ is dropped. Dropping food instead and recovering it gives the same numbers, up t
 convergence tolerance."""),
         code("""\
 goods_b = ["housing", "transport", "leisure"]
-homog_b = [" + ".join(f"{g}.{p}" for p in prices) + " = 0" for g in goods_b]
-symm_b = [f"{a}.lp_{b} = {b}.lp_{a}" for i, a in enumerate(goods_b) for b in goods_b[i + 1:]]
+homog_b = [" + ".join(f"{g}::{p}" for p in prices) + " = 0" for g in goods_b]
+symm_b = [f"{a}::lp_{b} = {b}::lp_{a}" for i, a in enumerate(goods_b) for b in goods_b[i + 1:]]
 system_b = blocksur.EquationSystem.from_table(data.frame, {g: data.equations[g] for g in goods_b})
 restricted_b = system_b.fit("ifgls", restrictions=homog_b + symm_b)
 food_b = recover(restricted_b, goods_b, "food")
@@ -364,26 +364,26 @@ print(fgls.report(max_equations=2))"""),
         md("""\
 ## Gains, and how far to trust the intervals
 
-The standard-error ratio OLS / FGLS shows the gain from estimating the stores together. The
+The precision gain, se(OLS) / se(FGLS), shows what estimating the stores together buys. The
 generating coefficients are known here, so we can also count how often the 95% intervals
 cover them: a check of the standard errors themselves."""),
         code("""\
-ratio = ols.se / fgls.se  # both indexed by (equation, regressor)
-kind = ratio.index.get_level_values("regressor").str.replace(r"_s\\d+$", "", regex=True)
+gain = ols.se / fgls.se  # precision gain; both indexed by (equation, regressor)
+kind = gain.index.get_level_values("regressor").str.replace(r"_s\\d+$", "", regex=True)
 truth = pd.concat(data.true_coef, names=["equation", "regressor"]).reindex(fgls.coef.index)
 
 def coverage(fit):
     ci = fit.interval(0.95)
     return ((ci["lower"] <= truth) & (truth <= ci["upper"])).groupby(kind).mean()
 
-summary = pd.DataFrame({"median se(OLS) / se(FGLS)": ratio.groupby(kind).median(),
+summary = pd.DataFrame({"median precision gain": gain.groupby(kind).median(),
                         "OLS coverage": coverage(ols), "FGLS coverage": coverage(fgls),
                         "iterated FGLS coverage": coverage(ml)})
 display(summary.round(3))
 
 fig, ax = plt.subplots(figsize=(6, 3), layout="constrained")
-ax.hist(ratio[kind == "price"], bins=30, color="C0")
-ax.set_xlabel("se(OLS) / se(FGLS), price coefficients"); ax.set_ylabel("stores");"""),
+ax.hist(gain[kind == "price"], bins=30, color="C0")
+ax.set_xlabel("precision gain se(OLS) / se(FGLS), price coefficients"); ax.set_ylabel("stores");"""),
         md("""\
 The system estimators are far more precise than OLS here, because regional shocks make the
 stores' errors strongly correlated. Their intervals cover the truth somewhat less often than

@@ -15,7 +15,7 @@ from reference import record
 
 # Quantities of a fit compared between a streamed fit and its in-memory reference.
 VECTORS = ("coef", "se", "omega", "ssr", "r2", "r2_adj", "resid_se", "stat", "pval")
-SCALARS = ("loglik", "system_r2", "n_iter")
+SCALARS = ("loglik", "mcelroy_r2", "n_iter")
 
 
 def wide_frame(n_eq: int = 4, n_obs: int = 157, ks=(3, 2, 4, 3), seed: int = 5, rho: float = 0.6):

@@ -38,7 +38,7 @@ FITS = [
     ("fgls", {}),
     ("ifgls", {"max_iter": 200}),
     ("fgls", {"omega": "dof", "covariance": "hc0"}),
-    ("ifgls", {"restrictions": "eq0.x1 = eq2.x1; eq1.x0 + eq3.x0 = 1", "max_iter": 200}),
+    ("ifgls", {"restrictions": "eq0::x1 = eq2::x1; eq1::x0 + eq3::x0 = 1", "max_iter": 200}),
 ]
 
 

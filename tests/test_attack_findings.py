@@ -83,17 +83,17 @@ def _income_system():
 
 @pytest.mark.parametrize("method", ["ols", "fgls", "ifgls"])
 def test_restrictions_hold_when_their_rows_have_different_scales(method):
-    """"a.x0 = 0; a.x0 + b.x0 = 0" (an intercept, and a coefficient of a regressor in units of
-    1e6) means a.x0 = 0 and b.x0 = 0. Observed: OLS gives a.x0 = 1.3e-2 (FGLS -7.6e-3), so
-    R b - q = 1.3e-2: the restriction is silently violated (the equivalent "a.x0 = 0; b.x0 = 0"
+    """"a::x0 = 0; a::x0 + b::x0 = 0" (an intercept, and a coefficient of a regressor in units of
+    1e6) means a::x0 = 0 and b::x0 = 0. Observed: OLS gives a::x0 = 1.3e-2 (FGLS -7.6e-3), so
+    R b - q = 1.3e-2: the restriction is silently violated (the equivalent "a::x0 = 0; b::x0 = 0"
     gives 2.5e-16). With income in units of 1e8 the same restrictions raise RestrictionError "the
     restrictions are linearly dependent", which they are not.
     Expected: R b = q to rounding, and the same estimates as the equivalent restrictions."""
     eqs = _income_system()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", blocksur.BlocksurWarning)
-        fit = blocksur.EquationSystem(eqs).fit(method, restrictions="a.x0 = 0; a.x0 + b.x0 = 0")
-        same = blocksur.EquationSystem(eqs).fit(method, restrictions="a.x0 = 0; b.x0 = 0")
+        fit = blocksur.EquationSystem(eqs).fit(method, restrictions="a::x0 = 0; a::x0 + b::x0 = 0")
+        same = blocksur.EquationSystem(eqs).fit(method, restrictions="a::x0 = 0; b::x0 = 0")
     b = fit.coef.to_numpy()
     gap = fit.restrictions.r @ b - fit.restrictions.q
     assert np.max(np.abs(gap)) <= 1e-12, f"R b - q = {gap}"
@@ -101,10 +101,10 @@ def test_restrictions_hold_when_their_rows_have_different_scales(method):
 
 
 def test_restrictions_in_very_different_units_are_not_called_dependent():
-    """The same restrictions with the regressor in units of 1e8. Observed: a.x0 = 0.305 (the
-    restriction a.x0 = 0 silently violated); with other draws of the same design,
+    """The same restrictions with the regressor in units of 1e8. Observed: a::x0 = 0.305 (the
+    restriction a::x0 = 0 silently violated); with other draws of the same design,
     RestrictionError "the restrictions are linearly dependent", which they are not.
-    Expected: a fit with a.x0 = 0 and b.x0 = 0."""
+    Expected: a fit with a::x0 = 0 and b::x0 = 0."""
     rng = np.random.default_rng(0)
     t = 50
     income = 1e8 * (1 + 0.1 * rng.standard_normal(t))
@@ -113,7 +113,7 @@ def test_restrictions_in_very_different_units_are_not_called_dependent():
     xc = np.column_stack([np.ones(t), rng.standard_normal(t)])
     eqs = {"a": (xa @ [1, 1e-8] + rng.standard_normal(t), xa), "b": (xb @ [2e-8] + rng.standard_normal(t), xb),
            "c": (xc @ [1, 1] + rng.standard_normal(t), xc)}
-    fit = blocksur.EquationSystem(eqs).fit("ols", restrictions="a.x0 = 0; a.x0 + b.x0 = 0")
+    fit = blocksur.EquationSystem(eqs).fit("ols", restrictions="a::x0 = 0; a::x0 + b::x0 = 0")
     assert abs(fit.coef["a", "x0"]) <= 1e-12 and abs(fit.coef["b", "x0"]) <= 1e-20
 
 
@@ -154,7 +154,7 @@ def test_r2_of_a_constant_dependent_variable_is_not_infinite():
 def test_loglik_of_an_exact_fit_is_plus_infinity():
     """An equation with y = 0 (OLS residuals exactly zero): S/T is singular, so ln det(S/T) = -inf
     and the log-likelihood -(NT/2)(1 + ln 2 pi) - (T/2) ln det(S/T) is +inf. Observed: -inf (and
-    the docstring of SystemFit.loglik says -inf). A nearly exact fit (y = 1 + 2 t exactly, residuals
+    the docstring of FittedSystem.loglik says -inf). A nearly exact fit (y = 1 + 2 t exactly, residuals
     ~1e-16) gives +166: large and positive, as the formula says. Expected: +inf."""
     t = 5
     rng = np.random.default_rng(0)

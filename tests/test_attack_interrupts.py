@@ -51,7 +51,7 @@ if kind == "iterated":
         eqs.append((x @ rng.uniform(-1, 1, k) + shock @ rng.uniform(-1, 1, 3) + rng.standard_normal(t), x))
     system = blocksur.EquationSystem(eqs)
     system.fit("ols")  # the data pass, outside the timed part
-    call = lambda: system.fit("ifgls", tol=0.0, max_iter=10**8, restrictions="eq0.x1 = eq1.x1")
+    call = lambda: system.fit("ifgls", tol=0.0, max_iter=10**8, restrictions="eq0::x1 = eq1::x1")
 elif kind == "data_pass":
     # T rows (4,000,000 unless the test asks for more), 6 equations of 5 regressors (1.1 GB at
     # 4,000,000): the QR and Gram pass of a fresh process took 2.6 s on 2 cores when measured.

@@ -128,7 +128,7 @@ bad_omega = dict(eqs); bad_omega["copy"] = eqs["eq2"]
 def one_round():
     system = blocksur.EquationSystem(eqs)
     for method, kw in [("ols", {}), ("fgls", {"covariance": "hc1"}), ("ifgls", {"max_iter": 30}),
-                       ("fgls", {"restrictions": "eq0.x1 = eq1.x1"})]:
+                       ("fgls", {"restrictions": "eq0::x1 = eq1::x1"})]:
         fit = system.fit(method, **kw)
         fit.coef, fit.se, fit.vcov, fit.omega, fit.resid, fit.fitted, fit.r2, fit.loglik
     for bad, exc in [(bad_nan, blocksur.NonFiniteError), (bad_col, blocksur.CollinearityError),
@@ -138,7 +138,7 @@ def one_round():
         except exc:
             pass
     try:
-        system.fit("fgls", restrictions="eq0.x1 = = 2")
+        system.fit("fgls", restrictions="eq0::x1 = = 2")
     except blocksur.RestrictionSyntaxError:
         pass
 

@@ -65,7 +65,7 @@ def test_one_pass_fit_offers_what_a_full_fit_offers(monkeypatch, omega):
     # tests: Wald, the Breusch-Pagan LM (OLS residual cross-products, kept) and the LR test
     # of a diagonal Omega (an iterated fit, which prepares the system in full)
     names = list(eqs)
-    hyp = f"{names[0]}.x1 = 0"
+    hyp = f"{names[0]}::x1 = 0"
     assert abs(one.wald(hyp).statistic - gram.wald(hyp).statistic) <= 1e-9 * abs(gram.wald(hyp).statistic)
     for test in ("omega_diagonal_lm", "omega_diagonal_lr"):
         a, b = getattr(one, test)().statistic, getattr(gram, test)().statistic
@@ -76,7 +76,7 @@ def test_one_pass_fit_offers_what_a_full_fit_offers(monkeypatch, omega):
     assert max_rel(one.prediction_se(new).to_numpy(), gram.prediction_se(new).to_numpy()) <= 1e-12
     assert one.report() == gram.report()  # every printed digit agrees
     # a restored copy answers the same
-    back = blocksur.SystemFit.from_dict(one.to_dict())
+    back = blocksur.FittedSystem.from_dict(one.to_dict())
     assert max_rel(back.se.to_numpy(), one.se.to_numpy()) == 0
 
 
@@ -111,7 +111,7 @@ def test_routing_rules(monkeypatch):
     assert not route(method="ifgls", max_iter=2, tol=0)
     assert not route(method="fgls", omega="ledoit-wolf")
     names = list(eqs)
-    assert not route(method="fgls", restrictions=f"{names[0]}.x1 = {names[1]}.x1")
+    assert not route(method="fgls", restrictions=f"{names[0]}::x1 = {names[1]}::x1")
     # the size threshold: K = 18 here
     monkeypatch.setattr(system_mod, "_DIRECT_FGLS_MIN_K", sum(KS) + 1)
     assert not route(method="fgls")
@@ -250,5 +250,5 @@ def test_the_auto_solver_counts_what_the_one_pass_route_needs(monkeypatch):
     # restrictions take the full preparation, so its need counts: over the limit, the fit is
     # matrix-free, which refuses restrictions and says to raise the limit
     with pytest.raises(InvalidOptionError, match="memory limit"):
-        system.fit("fgls", memory_limit=limit, restrictions="a.x1 = b.x1")
-    assert system.fit("fgls", memory_limit=full + 1, restrictions="a.x1 = b.x1").solver == "direct"
+        system.fit("fgls", memory_limit=limit, restrictions="a::x1 = b::x1")
+    assert system.fit("fgls", memory_limit=full + 1, restrictions="a::x1 = b::x1").solver == "direct"

@@ -116,7 +116,7 @@ def test_prediction_se_restricted_gls_vs_statsmodels_substitution():
     # For a restricted FGLS fit, prediction variances follow from the covariance of the
     # statsmodels GLS on the substituted design (inference_reference.dense_restricted_gls).
     eqs = _data(seed=85)
-    text = "a.x1 = b.x1; a.x2 + c.x2 = 1"
+    text = "a::x1 = b::x1; a::x2 + c::x2 = 1"
     pos = ir.coef_positions(eqs)
     R = np.zeros((2, sum(KS)))
     R[0, pos["a", "x1"]], R[0, pos["b", "x1"]] = 1.0, -1.0
@@ -207,7 +207,7 @@ def test_prediction_se_along_a_nearly_collinear_direction_is_exact_to_rounding()
 @pytest.mark.parametrize("identical", [True, False])
 @pytest.mark.parametrize("method", ["ols", "fgls", "ifgls"])
 @pytest.mark.parametrize("covariance", ["classical", "hc0", "hc1"])
-@pytest.mark.parametrize("restrictions", [None, "e0.x1 = e1.x1"])
+@pytest.mark.parametrize("restrictions", [None, "e0::x1 = e1::x1"])
 def test_prediction_se_from_factors_is_the_quadratic_form_of_vcov(identical, method, covariance, restrictions):
     """On well-conditioned data every route of the factor-based prediction variances (OLS,
     shared regressors, Cholesky GLS, robust kinds, restricted fits) equals the definition

@@ -1,5 +1,5 @@
 """System diagnostics against outside references: Breusch-Pagan LM and LR tests of a diagonal
-Omega, the GRS intercept test, McElroy's system R-squared, AIC/BIC, residual correlation.
+Omega, the GRS intercept test, McElroy's R-squared of the system, AIC/BIC, residual correlation.
 
 References (named beside each check):
 * statsmodels' general ``sm.OLS`` per equation (residuals, intercepts) and the dense iterated
@@ -86,7 +86,7 @@ def test_omega_diagonal_lr_vs_formula():
     lr = T * (np.sum(np.log(ssr / T)) - np.linalg.slogdet(omega_ml)[1])
     # whatever fit it is called on (non-ML fits refit the unrestricted ML internally)
     for fit in (s.fit("ifgls", tol=1e-13), s.fit("fgls"), s.fit("ols", omega="dof"),
-                s.fit("ifgls", restrictions="a.x1 = b.x1")):
+                s.fit("ifgls", restrictions="a::x1 = b::x1")):
         res = fit.omega_diagonal_lr()
         err = ref.record("inference: LR diagonal Omega vs formula (rel)", abs(res.statistic - lr) / lr)
         assert err < 1e-8
@@ -196,12 +196,12 @@ def test_mcelroy_r2_vs_dense_formula(method, divisor):
     D = np.eye(T) - np.ones((T, T)) / T
     # McElroy (1977), from memory, with the dense Kronecker products
     r2 = 1 - (e @ np.kron(Oi, np.eye(T)) @ e) / (y @ np.kron(Oi, D) @ y)
-    err = ref.record("inference: McElroy system R2 vs dense kron formula (abs)", abs(fit.system_r2 - r2))
+    err = ref.record("inference: McElroy system R2 vs dense kron formula (abs)", abs(fit.mcelroy_r2 - r2))
     assert err < 1e-12
-    assert 0 < fit.system_r2 < 1
+    assert 0 < fit.mcelroy_r2 < 1
 
 
-@pytest.mark.parametrize("restrictions", [None, "a.x1 = b.x1; a.x2 + c.x2 = 1"])
+@pytest.mark.parametrize("restrictions", [None, "a::x1 = b::x1; a::x2 + c::x2 = 1"])
 def test_aic_bic_vs_formula(restrictions):
     eqs = _data(seed=64)
     fit = blocksur.EquationSystem(eqs).fit("ifgls", restrictions=restrictions)

@@ -15,7 +15,7 @@ import inference_reference as ir
 import reference as ref
 
 KS = (3, 2, 3)
-TEXT = "a.x1 = b.x1; a.x2 + c.x2 = 1"
+TEXT = "a::x1 = b::x1; a::x2 + c::x2 = 1"
 
 
 def _data(seed=11, T=30):
@@ -34,14 +34,14 @@ def _rq(eqs):
 def _explicit_substitution_design(eqs):
     """The substitution written out by hand for TEXT (no generic algebra): b_b.x1 := b_a.x1
     merges the two columns; b_c.x2 := 1 - b_a.x2 moves X_c[:, 2] to the left-hand side and
-    subtracts it from the column of a.x2. Returns (y*, Z, labels of the free coefficients)."""
+    subtracts it from the column of a::x2. Returns (y*, Z, labels of the free coefficients)."""
     T = len(eqs["a"][0])
     (ya, Xa), (yb, Xb), (yc, Xc) = eqs["a"], eqs["b"], eqs["c"]
     zero = np.zeros(T)
     cols = {
         ("a", "x0"): np.concatenate([Xa[:, 0], zero, zero]),
-        ("a", "x1"): np.concatenate([Xa[:, 1], Xb[:, 1], zero]),  # merged with b.x1
-        ("a", "x2"): np.concatenate([Xa[:, 2], zero, -Xc[:, 2]]),  # c.x2 = 1 - a.x2
+        ("a", "x1"): np.concatenate([Xa[:, 1], Xb[:, 1], zero]),  # merged with b::x1
+        ("a", "x2"): np.concatenate([Xa[:, 2], zero, -Xc[:, 2]]),  # c::x2 = 1 - a::x2
         ("b", "x0"): np.concatenate([zero, Xb[:, 0], zero]),
         ("c", "x0"): np.concatenate([zero, zero, Xc[:, 0]]),
         ("c", "x1"): np.concatenate([zero, zero, Xc[:, 1]]),
@@ -165,7 +165,7 @@ def test_restricted_fit_with_shared_regressors_is_restricted_gls():
     # substituted design (not restricted OLS).
     eqs = ref.identical_regressor_data(21, T=40, k=3, n=3)
     pos = ir.coef_positions(eqs)
-    text = "a.x1 = b.x1; c.x1 + c.x2 = 0.5"
+    text = "a::x1 = b::x1; c::x1 + c::x2 = 0.5"
     R = np.zeros((2, 9))
     R[0, pos["a", "x1"]], R[0, pos["b", "x1"]] = 1.0, -1.0
     R[1, pos["c", "x1"]], R[1, pos["c", "x2"]] = 1.0, 1.0
@@ -183,11 +183,11 @@ def test_restricted_fit_with_shared_regressors_is_restricted_gls():
 @pytest.mark.parametrize("covariance", ["classical", "hc0"])
 @pytest.mark.parametrize("method", ["ols", "fgls", "ifgls"])
 def test_coefficient_fixed_by_restriction_has_zero_variance(method, covariance):
-    # c.x2 = 0.5 fixes a coefficient: b_r = P b + const with row c.x2 of P equal to zero, so
+    # c::x2 = 0.5 fixes a coefficient: b_r = P b + const with row c::x2 of P equal to zero, so
     # its variance is exactly 0 whatever the covariance of b (algebra of the closed form,
-    # Greene from memory), and the documented contract of SystemFit.stat is NaN for it.
+    # Greene from memory), and the documented contract of FittedSystem.stat is NaN for it.
     eqs = _data(seed=14)
-    fit = blocksur.EquationSystem(eqs).fit(method, restrictions="c.x2 = 0.5", covariance=covariance)
+    fit = blocksur.EquationSystem(eqs).fit(method, restrictions="c::x2 = 0.5", covariance=covariance)
     key = ("c", "x2")
     assert fit.coef[key] == pytest.approx(0.5, rel=1e-14)
     se_scale = fit.se.drop(key).max()
@@ -203,7 +203,7 @@ def test_restricted_standard_errors_of_nearly_collinear_regressors(delta):
     """Restrictions on an equation whose two regressors are nearly collinear (condition number
     about 2e5 and 7e6): the standard errors of every coefficient, classical and HC0, against
     statsmodels GLS on the exact reparametrisation (b2 = 1 - b1, one shared coefficient s for
-    eq0.x3 = eq1.x2), whose design is well conditioned. Forming A^-1 G'BG A^-1 had squared the
+    eq0::x3 = eq1::x2), whose design is well conditioned. Forming A^-1 G'BG A^-1 had squared the
     conditioning: at delta = 3e-7 the shared coefficient's se was 20% off (classical) and 100%
     (HC0). The HC0 reference is the sandwich on the same design, A^-1 (S'S) A^-1 with the score
     rows S_t = sum_i Z_it w_ti and w = E Omega^-1 (the definition the fit documents)."""
@@ -218,7 +218,7 @@ def test_restricted_standard_errors_of_nearly_collinear_regressors(delta):
     y0 = X0 @ [1, 2, -1, 0.5] + u[:, 0]
     y1 = X1 @ [0, 1, 0.5] + u[:, 1]
     system = blocksur.EquationSystem([(y0, X0), (y1, X1)])
-    text = "eq0.x1 + eq0.x2 = 1; eq0.x3 = eq1.x2"
+    text = "eq0::x1 + eq0::x2 = 1; eq0::x3 = eq1::x2"
     # theta = (b00, b01, s, b10, b11); the columns of b01 scaled by 1/delta so the design is
     # well conditioned (the scale is undone on the standard errors)
     sc = np.array([1.0, 1.0 / delta, 1.0, 1.0, 1.0])

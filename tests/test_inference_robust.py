@@ -66,7 +66,7 @@ def test_hc0_hc1_vs_brute_force_sandwich(method):
 @pytest.mark.parametrize("method", ["ols", "fgls"])
 def test_hc0_restricted_vs_projected_sandwich(method):
     eqs = _hetero_data(52)
-    text = "a.x1 = b.x1; a.x2 + c.x2 = 1"
+    text = "a::x1 = b::x1; a::x2 + c::x2 = 1"
     pos = ir.coef_positions(eqs)
     R = np.zeros((2, sum(KS)))
     R[0, pos["a", "x1"]], R[0, pos["b", "x1"]] = 1.0, -1.0
@@ -135,7 +135,7 @@ def test_robust_wald_vs_statsmodels_with_sandwich():
     R[1, pos["c", "x0"]] = 1.0
     q = np.array([0.0, 0.0])
     sm_w = res.wald_test((R, q), cov_p=V1, use_f=False, scalar=True)  # statsmodels wald_test
-    w = fit.wald("a.x1 = b.x1; c.x0 = 0")
+    w = fit.wald("a::x1 = b::x1; c::x0 = 0")
     err = ref.record("inference: robust Wald vs statsmodels wald_test(cov_p=sandwich) (rel)",
                      abs(w.statistic - sm_w.statistic) / sm_w.statistic)
     assert err < 1e-9
@@ -161,12 +161,12 @@ def _coverage_replication(seed, T=100):
 def test_monte_carlo_robust_coverage():
     # 300 seeded replications, T = 100, two equations, error variance 0.2 + x^2 in the slope's
     # regressor. Band for the robust 95% intervals of the two heteroskedasticity-affected slopes
-    # (a.x1, b.x1): [0.91, 0.99] = 0.95 -/+ ~3.2 binomial standard errors
+    # (a::x1, b::x1): [0.91, 0.99] = 0.95 -/+ ~3.2 binomial standard errors
     # (sqrt(0.95 * 0.05 / 300) = 0.0126), slightly widened downwards for HC0's known
     # small-sample undercoverage. The classical intervals must clearly under-cover those slopes:
     # below 0.86 (7 binomial se under 0.95; the design gives about 0.77).
     reps = [_coverage_replication(10_000 + r) for r in range(300)]
-    slopes = [1, 3]  # a.x1 and b.x1 in fit.coef order
+    slopes = [1, 3]  # a::x1 and b::x1 in fit.coef order
     rates = {cov: np.mean([r[cov] for r in reps], axis=0) for cov in ("classical", "hc0", "hc1")}
     for cov in ("hc0", "hc1"):
         for j in slopes:
@@ -175,7 +175,7 @@ def test_monte_carlo_robust_coverage():
     for j in slopes:
         ref.record(f"inference: MC classical coverage shortfall slope {j}", 0.95 - rates["classical"][j])
         assert rates["classical"][j] < 0.86, rates["classical"][j]
-    # the coefficients not touched by the heteroskedasticity (intercepts, b.x2 on z) are covered
+    # the coefficients not touched by the heteroskedasticity (intercepts, b::x2 on z) are covered
     # near 0.95 by every kind
     for cov in ("classical", "hc0", "hc1"):
         for j in (0, 2, 4):

@@ -37,7 +37,7 @@ def _rows(eqs, spec):
     return R, np.array([rhs for _, rhs in spec], float)
 
 
-TEST_TEXT = "a.x1 = b.x1; c.x1 - 2*c.x2 = 0.5; b.x0 = 0"
+TEST_TEXT = "a::x1 = b::x1; c::x1 - 2*c::x2 = 0.5; b::x0 = 0"
 TEST_SPEC = [
     ({("a", "x1"): 1.0, ("b", "x1"): -1.0}, 0.0),
     ({("c", "x1"): 1.0, ("c", "x2"): -2.0}, 0.5),
@@ -99,16 +99,16 @@ def test_wald_ols_fit_uses_sur_covariance_vs_statsmodels():
 
 @pytest.mark.parametrize("method", ["fgls", "ifgls"])
 def test_wald_after_restricted_fit_vs_statsmodels(method):
-    # A fit restricted by a.x1 = b.x1 (rank 1), then a Wald test of two further restrictions.
+    # A fit restricted by a::x1 = b::x1 (rank 1), then a Wald test of two further restrictions.
     # Reference: statsmodels GLS on the substituted design b = J theta + c, where the tested
     # restrictions R2 b = q2 become (R2 J) theta = q2 - R2 c; F denominator df = NT - (K - r).
     eqs = _data(seed=33)
     R1, q1 = _rows(eqs, TEST_SPEC[:1])
-    fit = blocksur.EquationSystem(eqs).fit(method, restrictions="a.x1 = b.x1", tol=1e-12)
+    fit = blocksur.EquationSystem(eqs).fit(method, restrictions="a::x1 = b::x1", tol=1e-12)
     assert fit.n_restrictions == 1
     b, V, res, J, c = ir.dense_restricted_gls(eqs, fit.omega.to_numpy(), R1, q1)
     R2, q2 = _rows(eqs, TEST_SPEC[1:])
-    text2 = "c.x1 - 2*c.x2 = 0.5; b.x0 = 0"
+    text2 = "c::x1 - 2*c::x2 = 0.5; b::x0 = 0"
     sm_w = res.wald_test((R2 @ J, q2 - R2 @ c), cov_p=res.normalized_cov_params, use_f=False, scalar=True)
     w = fit.wald(text2)
     err = ref.record("inference: Wald chi2 after restricted fit vs statsmodels (rel)",
@@ -124,14 +124,15 @@ def test_wald_after_restricted_fit_vs_statsmodels(method):
 def test_wald_result_object():
     eqs = _data(seed=34)
     fit = blocksur.EquationSystem(eqs).fit("fgls")
-    w = fit.wald("a.x1 = 0")  # a coefficient drawn away from zero: a large statistic
+    w = fit.wald("a::x1 = 0")  # a coefficient drawn away from zero: a large statistic
     # chi2(1) Wald of a single coefficient = (b/se)^2 (algebra), p from scipy.stats.chi2
     np.testing.assert_allclose(w.statistic, fit.stat[("a", "x1")] ** 2, rtol=1e-12)
     np.testing.assert_allclose(w.pvalue, stats.chi2.sf(w.statistic, 1), rtol=1e-12)
     np.testing.assert_allclose(w.pvalue, fit.pval[("a", "x1")], rtol=1e-9)
     assert w.rejects(0.05) == (w.pvalue < 0.05)
     assert ("not rejected" in w.verdict(0.05)) == (w.pvalue >= 0.05)
-    # the true-null version: a.x1 equal to its own estimate gives W = 0, p = 1
+    assert w.h0 == "a::x1 = 0" and w.verdict().endswith("(H0: a::x1 = 0)")
+    # the true-null version: a::x1 equal to its own estimate gives W = 0, p = 1
     b = fit.coef[("a", "x1")]
     w0 = fit.wald((np.eye(fit.n_coef)[[1]], np.array([b])))
     assert w0.statistic == pytest.approx(0.0, abs=1e-18)
@@ -140,19 +141,19 @@ def test_wald_result_object():
 
 @pytest.mark.parametrize("method", ["ols", "fgls", "ifgls"])
 def test_wald_of_a_restriction_already_imposed_is_refused(method):
-    # After imposing a.x1 = b.x1 at fit time, R V R' = 0 for R = e_a.x1 - e_b.x1 exactly (the
+    # After imposing a::x1 = b::x1 at fit time, R V R' = 0 for R = e_a.x1 - e_b.x1 exactly (the
     # restricted estimator satisfies R b_r = q for every sample: Greene's closed form gives
     # R P = 0). A Wald test of that restriction, or of one contradicting it, is undefined; the
     # library documents an InvalidOptionError for it ("R V R' is singular ... coefficients
     # already fixed by the restrictions imposed at fit time"). It must never report a
     # statistic (in particular not a negative one with p = 1).
     eqs = _data(seed=37)
-    fit = blocksur.EquationSystem(eqs).fit(method, restrictions="a.x1 = b.x1; a.x2 + c.x2 = 1")
+    fit = blocksur.EquationSystem(eqs).fit(method, restrictions="a::x1 = b::x1; a::x2 + c::x2 = 1")
     R, _ = _rows(eqs, TEST_SPEC[:1])
     rvr = float((R @ fit.vcov.to_numpy() @ R.T)[0, 0])
     assert abs(rvr) <= 1e-12 * fit.vcov.to_numpy().diagonal().max()
     wrong = []
-    for text in ("a.x1 = b.x1", "a.x1 - b.x1 = 1"):
+    for text in ("a::x1 = b::x1", "a::x1 - b::x1 = 1"):
         try:
             res = fit.wald(text)
         except blocksur.InvalidOptionError:
@@ -218,9 +219,9 @@ def test_lr_close_to_wald_under_true_restrictions():
     omega = np.array([[1.0, 0.6], [0.6, 1.5]])
     e = rng.standard_normal((T, 2)) @ np.linalg.cholesky(omega).T
     ya = Xa @ [1.0, 0.7, -0.3] + e[:, 0]
-    yb = Xb @ [-2.0, 0.7] + e[:, 1]  # true: a.x1 = b.x1 and a.x2 = -0.3
+    yb = Xb @ [-2.0, 0.7] + e[:, 1]  # true: a::x1 = b::x1 and a::x2 = -0.3
     s = blocksur.EquationSystem({"a": (ya, Xa), "b": (yb, Xb)})
-    text = "a.x1 = b.x1; a.x2 = -0.3"
+    text = "a::x1 = b::x1; a::x2 = -0.3"
     big = s.fit("ifgls", tol=1e-12)
     small = s.fit("ifgls", tol=1e-12, restrictions=text)
     lr = big.lr_against(small).statistic
@@ -250,7 +251,7 @@ def test_joint_wald_is_invariant_to_the_units_of_the_regressors():
         X1 = np.column_stack([np.ones(T), income * scale, share])
         fit = blocksur.EquationSystem({"a": (y1, X1), "b": (y2, X2)},
                                       regressor_names={"a": ["const", "income", "share"], "b": ["const", "x"]}).fit("fgls")
-        w = fit.wald("a.income = 0; a.share = 0")
+        w = fit.wald("a::income = 0; a::share = 0")
         R = np.zeros((2, 5))
         R[0, 1] = R[1, 2] = 1
         b, V = fit.coef.to_numpy(), fit.vcov.to_numpy()
@@ -289,8 +290,8 @@ def test_wald_names_an_overflowing_covariance_and_tests_the_other_coefficients()
     c = np.array([1.0, 1e-200, 1.0])
     fit = blocksur.EquationSystem({**eqs, "a": (ya, Xa * c)}).fit("fgls")
     with pytest.raises(blocksur.errors.InvalidOptionError, match="beyond double precision"):
-        fit.wald("a.x1 = 0")
-    others = "b.x1 = c.x1; a.x2 = 0"
+        fit.wald("a::x1 = 0")
+    others = "b::x1 = c::x1; a::x2 = 0"
     assert fit.wald(others).statistic == pytest.approx(base.wald(others).statistic, rel=1e-9)
     # the single coefficient's z statistic is still there, from its standard error
     assert fit.stat[("a", "x1")] == pytest.approx(base.stat[("a", "x1")], rel=1e-9)

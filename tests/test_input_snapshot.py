@@ -190,7 +190,7 @@ def test_pickled_and_copied_systems_stay_read_only():
     for other in (pickle.loads(pickle.dumps(system)), copy.deepcopy(system)):
         assert not any(a.flags.writeable for a in other._ys + other._xs)
         np.testing.assert_array_equal(other.fit("ifgls").coef, fit.coef)
-    restored = blocksur.SystemFit.from_dict(fit.to_dict(keep_data=True))
+    restored = blocksur.FittedSystem.from_dict(fit.to_dict(keep_data=True))
     np.testing.assert_array_equal(restored.coef, fit.coef)
 
 

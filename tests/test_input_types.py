@@ -198,7 +198,7 @@ def test_multiindex_columns_name_regressors_by_their_joined_levels(fit):
     ref = sm.OLS(y2, X2).fit()  # reference: statsmodels OLS on the flat array
     np.testing.assert_allclose(got.coef["south"].to_numpy(), ref.params, rtol=1e-10)
     # the names work in restrictions and a new frame with the same columns predicts
-    assert got.wald("south.price_mean = 0").statistic > 0
+    assert got.wald("south::price_mean = 0").statistic > 0
     new = pd.DataFrame(X2[:3], columns=columns)
     np.testing.assert_allclose(got.predict({"north": X1[:3], "south": new})["south"].to_numpy(),
                                got.fitted["south"].to_numpy()[:3], rtol=1e-12)

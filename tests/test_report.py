@@ -69,7 +69,7 @@ def _fits():
     data = grid_load_table(n_districts=4, n_days=400, seed=8)
     system = blocksur.EquationSystem.from_table(data.frame, data.equations)
     return {
-        "ifgls": system.fit("ifgls", restrictions="harbour.hdd_harbour = hillside.hdd_hillside"),
+        "ifgls": system.fit("ifgls", restrictions="harbour::hdd_harbour = hillside::hdd_hillside"),
         "ols-t-hc1": system.fit("ols", covariance="hc1", inference="t"),
     }
 
@@ -120,12 +120,12 @@ def test_text_report_fits_100_columns_and_has_every_part(key):
     lines = text.splitlines()
     assert max(len(ln) for ln in lines) <= 100
     for label in ("estimator", "sample", "Omega", "covariance", "coefficients", "log-likelihood",
-                  "system R-squared", "Omega diagonal?", "Residual correlations"):
+                  "McElroy R-squared", "Omega diagonal?", "Residual correlations"):
         assert label in text, label
     assert "rows dropped" in text and "not causal" in text
     if fit.method == "ifgls":
         assert f"converged after {fit.n_iter} GLS steps" in " ".join(text.split())
-        assert "harbour.hdd_harbour = hillside.hdd_hillside" in text
+        assert "harbour::hdd_harbour = hillside::hdd_hillside" in text
     # every coefficient's estimate printed on its regressor's line (read back with float)
     for (eq, reg), value in fit.coef.items():
         block = text.split(f"] {eq}  --", 1)[1]
@@ -149,7 +149,8 @@ def test_text_report_stays_narrow_with_long_names_and_many_equations():
 def test_markdown_table_reads_back():
     fit = FITS["ifgls"]
     md = fit.to_markdown(digits=5)
-    lines = md.strip().splitlines()
+    title, blank, *lines = md.strip().splitlines()  # the title is checked below
+    assert blank == "" and fit.to_markdown(digits=5, caption="") == "\n".join(lines) + "\n"
     # reference: a pipe table row is "| cell | cell |"; the second line is the alignment row
     cells = [[c.strip() for c in ln.strip().strip("|").split("|")] for ln in lines]
     assert cells[0][:3] == ["equation", "regressor", "estimate"]
@@ -157,6 +158,56 @@ def test_markdown_table_reads_back():
     assert len(lines) == 2 + fit.n_coef and all(len(c) == 8 for c in cells)
     got = np.array([float(c[2]) for c in cells[2:]])
     np.testing.assert_allclose(got, fit.coef.to_numpy(), rtol=5e-6, atol=0)
+
+
+class _Headings(HTMLParser):
+    """The text of each <h1>..<h6> element."""
+
+    def __init__(self):
+        super().__init__(convert_charrefs=True)
+        self.found: list[str] = []
+        self._open = False
+
+    def handle_starttag(self, tag, attrs):
+        if re.fullmatch(r"h[1-6]", tag):
+            self._open = True
+            self.found.append("")
+
+    def handle_endtag(self, tag):
+        if re.fullmatch(r"h[1-6]", tag):
+            self._open = False
+
+    def handle_data(self, data):
+        if self._open:
+            self.found[-1] += data
+
+
+@pytest.mark.parametrize("key", list(FITS))
+def test_every_report_format_opens_with_a_blocksur_title(key):
+    """The title is blocksur's own: "blocksur", the size of the system and the estimator in
+    words, the same in the text, HTML, Markdown and LaTeX outputs (the last two by default)."""
+    fit = FITS[key]
+    words = {"ols": "OLS", "fgls": "two-step FGLS", "ifgls": "iterated FGLS"}[fit.method]
+    expected = f"blocksur · {fit.n_eq} equations × {fit.n_obs} rows · {words}"
+    text = fit.report()
+    assert text.splitlines()[0] == expected
+    headings = _Headings()  # reference: the standard library's html.parser
+    headings.feed(fit.report_html())
+    assert headings.found[0] == expected
+    assert fit.to_markdown().splitlines()[0] == expected
+    tex = fit.to_latex()
+    caption = next(ln for ln in tex.splitlines() if ln.startswith(r"\caption{"))
+    assert caption == r"\caption{" + expected.replace("·", r"$\cdot$").replace("×", r"$\times$") + "}"
+    # the caption options replace the title; "" drops it
+    assert r"\caption{Load}" in fit.to_latex(caption="Load") and r"\caption" not in fit.to_latex(caption="")
+    for out in (text, fit.report_html(), fit.to_markdown(), tex):
+        assert "SUR system" not in out and "system fit" not in out
+
+
+def test_title_counts_in_words():
+    data = random_system(1, 40, seed=2)
+    fit = blocksur.EquationSystem(data.equations).fit("fgls")
+    assert _report.title(fit) == "blocksur · 1 equation × 40 rows · two-step FGLS"
 
 
 def test_latex_table_is_balanced_and_escaped():
@@ -191,7 +242,7 @@ def test_fit_methods_have_docstrings_with_examples():
     for name in ("long_table", "wide_table", "equation_stats", "forecast_table", "to_dict", "from_dict",
                  "report", "report_html", "to_markdown", "to_latex", "plot_resid_corr", "plot_coef",
                  "plot_convergence"):
-        doc = inspect.getdoc(getattr(blocksur.SystemFit, name))
+        doc = inspect.getdoc(getattr(blocksur.FittedSystem, name))
         assert doc and "Example" in doc, name
     assert "Example" in inspect.getdoc(blocksur.EquationSystem.from_table)
     assert inspect.getdoc(blocksur.SampleInfo)

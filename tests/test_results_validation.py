@@ -55,37 +55,37 @@ def system():
 # -- F5: lr_against --------------------------------------------------------------------------------
 def test_lr_refuses_fits_that_are_not_nested(system):
     # the QA example: neither restriction set implies the other
-    a = system.fit("ifgls", restrictions="a.x1 = 0")
-    b = system.fit("ifgls", restrictions="b.x1 = 0; b.x2 = 0")
+    a = system.fit("ifgls", restrictions="a::x1 = 0")
+    b = system.fit("ifgls", restrictions="b::x1 = 0; b::x2 = 0")
     for first, second in ((a, b), (b, a)):
         with pytest.raises(InvalidOptionError, match="not nested") as info:
             first.lr_against(second)
-        assert "a.x1 = 0" in str(info.value) and "follow from" in str(info.value)
+        assert "a::x1 = 0" in str(info.value) and "follow from" in str(info.value)
 
 
 def test_lr_refuses_a_restriction_with_another_right_hand_side(system):
-    # a.x1 + b.x1 = 1 and a.x1 - b.x1 = 1 imply a.x1 = 1 exactly, not a.x1 = 1.0000001
-    tight = system.fit("ifgls", restrictions="a.x1 + b.x1 = 1; a.x1 - b.x1 = 1")
-    near = system.fit("ifgls", restrictions="a.x1 = 1.0000001")
+    # a::x1 + b::x1 = 1 and a::x1 - b::x1 = 1 imply a::x1 = 1 exactly, not a::x1 = 1.0000001
+    tight = system.fit("ifgls", restrictions="a::x1 + b::x1 = 1; a::x1 - b::x1 = 1")
+    near = system.fit("ifgls", restrictions="a::x1 = 1.0000001")
     with pytest.raises(InvalidOptionError, match="not nested"):
         tight.lr_against(near)
-    same = system.fit("ifgls", restrictions="a.x1 = 1")
+    same = system.fit("ifgls", restrictions="a::x1 = 1")
     assert tight.lr_against(same).df == 1
 
 
 def test_lr_of_nested_fits_is_twice_the_loglik_gap(system):
     unrestricted = system.fit("ifgls", tol=1e-12)
-    restricted = system.fit("ifgls", restrictions="a.x1 = 0", tol=1e-12)
+    restricted = system.fit("ifgls", restrictions="a::x1 = 0", tol=1e-12)
     # expected: the standard LR definition from log-likelihoods written out from the residuals
     expected = 2 * (_loglik_by_hand(unrestricted) - _loglik_by_hand(restricted))
     for res in (unrestricted.lr_against(restricted), restricted.lr_against(unrestricted)):
         assert res.df == 1 and res.dist == "chi2"
         assert res.statistic == pytest.approx(expected, rel=1e-9)
         assert res.pvalue == pytest.approx(stats.chi2.sf(expected, 1), rel=1e-7)
-        assert res.null == "a.x1 = 0"
-    # a restriction set that implies a.x1 = 0 in another form is nested too:
-    # 2 a.x1 = b.x1 and b.x1 = 0 give a.x1 = 0
-    both = system.fit("ifgls", restrictions="2*a.x1 = b.x1; b.x1 = 0", tol=1e-12)
+        assert res.h0 == "a::x1 = 0"
+    # a restriction set that implies a::x1 = 0 in another form is nested too:
+    # 2 a::x1 = b::x1 and b::x1 = 0 give a::x1 = 0
+    both = system.fit("ifgls", restrictions="2*a::x1 = b::x1; b::x1 = 0", tol=1e-12)
     res = both.lr_against(restricted)
     assert res.df == 1
     assert res.statistic == pytest.approx(2 * (_loglik_by_hand(restricted) - _loglik_by_hand(both)), rel=1e-9)
@@ -95,7 +95,7 @@ def test_lr_refuses_a_restricted_fit_with_the_higher_likelihood(system):
     unrestricted = system.fit("ifgls", tol=1e-13)
     # a restriction at the ML estimate itself costs nothing: its fit reaches the maximum
     value = float(unrestricted.coef[("a", "x1")])
-    at_max = system.fit("ifgls", restrictions=f"a.x1 = {value!r}", tol=1e-13)
+    at_max = system.fit("ifgls", restrictions=f"a::x1 = {value!r}", tol=1e-13)
     res = unrestricted.lr_against(at_max)
     assert 0.0 <= res.statistic < 1e-6  # rounding of two equal maxima, clipped at 0
     with pytest.warns(NotConvergedWarning):
@@ -109,7 +109,7 @@ def test_lr_refuses_a_restricted_fit_with_the_higher_likelihood(system):
 def test_lr_against_a_non_fit_is_a_type_error(system):
     fit = system.fit("ifgls")
     for other in (3, None, "fit"):
-        with pytest.raises(TypeError, match="SystemFit of the same EquationSystem"):
+        with pytest.raises(TypeError, match="FittedSystem of the same EquationSystem"):
             fit.lr_against(other)
 
 
@@ -143,10 +143,10 @@ def test_wald_names_a_zero_row_as_mentioning_no_coefficient(system):
     with pytest.raises(RestrictionError, match="mentions no coefficient"):
         system.fit("fgls", restrictions=(r, [0.0, 0.0]))
     # a finite, non-zero pair still works, as does the same test written as text
-    assert fit.wald((r[:1], [0.0])).statistic == pytest.approx(fit.wald("a.x1 = 0").statistic, rel=1e-12)
+    assert fit.wald((r[:1], [0.0])).statistic == pytest.approx(fit.wald("a::x1 = 0").statistic, rel=1e-12)
 
 
-@pytest.mark.parametrize("spec", [None, 5, 2.5, b"a.x1 = 0"])
+@pytest.mark.parametrize("spec", [None, 5, 2.5, b"a::x1 = 0"])
 def test_wald_without_restrictions_says_what_to_pass(system, spec):
     fit = system.fit("fgls")
     with pytest.raises(TypeError, match=r"restriction string .* \(R, q\) pair"):
@@ -283,6 +283,8 @@ def fit(system):
         ("to_markdown", {"digits": "a"}, "digits .* must be a whole number from 1 to 15"),
         ("to_markdown", {"digits": None}, "digits"),
         ("to_markdown", {"level": True}, "level"),
+        ("to_markdown", {"caption": ["a"]}, "caption must be a string or None"),
+        ("to_latex", {"label": 1}, "label must be a string or None"),
     ],
 )
 def test_report_options_are_validated(fit, method, kwargs, allowed):
@@ -299,7 +301,7 @@ def test_report_options_at_their_limits_work(fit):
     one = fit.to_markdown(digits=1)
     fifteen = fit.to_latex(digits=15)
     # the estimate column shows digits + 1 significant digits, in fixed point at most 9
-    # decimals (format_number's rule); a.x1 is about 0.54, so 2 and 9 decimals
+    # decimals (format_number's rule); a::x1 is about 0.54, so 2 and 9 decimals
     est = float(fit.coef[("a", "x1")])
     assert 0.1 < est < 1
     assert f"| a | x1 | {est:.2f} |" in one
@@ -314,9 +316,9 @@ def test_lr_accepts_a_fit_of_an_unpickled_copy_and_refuses_other_data(system):
     import pickle
 
     unrestricted = system.fit("ifgls", tol=1e-12)
-    restricted = system.fit("ifgls", restrictions="a.x1 = 0", tol=1e-12)
+    restricted = system.fit("ifgls", restrictions="a::x1 = 0", tol=1e-12)
     copy = pickle.loads(pickle.dumps(system))
-    restricted_copy = copy.fit("ifgls", restrictions="a.x1 = 0", tol=1e-12)
+    restricted_copy = copy.fit("ifgls", restrictions="a::x1 = 0", tol=1e-12)
     want = unrestricted.lr_against(restricted).statistic
     assert unrestricted.lr_against(restricted_copy).statistic == pytest.approx(want, rel=1e-12)
     pos = list(unrestricted.coef.index).index(("a", "x1"))
@@ -324,10 +326,10 @@ def test_lr_accepts_a_fit_of_an_unpickled_copy_and_refuses_other_data(system):
     r[0, pos] = 1e-200  # its square underflows
     scaled = system.fit("ifgls", restrictions=(r, np.zeros(1)), tol=1e-12)
     assert unrestricted.lr_against(scaled).statistic == pytest.approx(want, rel=1e-9)
-    both = system.fit("ifgls", restrictions="a.x1 = 0; b.x1 = 0", tol=1e-12)
+    both = system.fit("ifgls", restrictions="a::x1 = 0; b::x1 = 0", tol=1e-12)
     plain = both.lr_against(restricted).statistic
     assert both.lr_against(scaled).statistic == pytest.approx(plain, rel=1e-9)
-    other = _system(seed=1).fit("ifgls", restrictions="a.x1 = 0", tol=1e-12)
+    other = _system(seed=1).fit("ifgls", restrictions="a::x1 = 0", tol=1e-12)
     with pytest.raises(InvalidOptionError, match="same EquationSystem"):
         unrestricted.lr_against(other)
 
@@ -352,7 +354,7 @@ def test_vcov_names_variances_beyond_double_precision(scale, entry):
         warnings.simplefilter("error")
         plain.vcov  # in range: no warning
     scaled = blocksur.EquationSystem({"a": (y1, X1 * [1.0, scale]), "b": (y2, X2)}).fit("fgls")
-    with pytest.warns(blocksur.VarianceRangeWarning, match=r"variances of a\.x1 are beyond double") as rec:
+    with pytest.warns(blocksur.VarianceRangeWarning, match=r"variances of a::x1 are beyond double") as rec:
         v = scaled.vcov
     assert rec[0].filename == __file__  # attributed to the line that read vcov
     assert v.loc[("a", "x1"), ("a", "x1")] == entry

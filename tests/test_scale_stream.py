@@ -66,7 +66,7 @@ def test_table_chunks_equal_in_memory(chunking, method, omega):
 def test_callable_of_record_batches_and_restrictions():
     frame, eqs = wide_frame(seed=8)
     table = pa.Table.from_pandas(frame, preserve_index=False)
-    restr = "eq0.eq0_x1 = eq1.eq1_x1"
+    restr = "eq0::eq0_x1 = eq1::eq1_x1"
     ref = blocksur.EquationSystem.from_table(frame, eqs, constant=True).fit(
         "ifgls", restrictions=restr, inference="t")
 
@@ -143,7 +143,7 @@ def test_rowless_fit_what_works_and_what_says_why():
     ref = system.fit("ifgls")
     fit = blocksur.fit_chunks([frame.iloc[:80], frame.iloc[80:]], eqs, constant=True, method="ifgls")
     # computed from the summaries: tests, predictions, reports
-    w_ref, w = ref.wald("eq0.eq0_x1 = 0"), fit.wald("eq0.eq0_x1 = 0")
+    w_ref, w = ref.wald("eq0::eq0_x1 = 0"), fit.wald("eq0::eq0_x1 = 0")
     assert abs(w.statistic - w_ref.statistic) <= 1e-9 * w_ref.statistic
     new = {n: frame[r].iloc[:5].assign(Intercept=1.0)[["Intercept", *r]] for n, (_, r) in eqs.items()}
     np.testing.assert_allclose(fit.predict(new), ref.predict(new), rtol=1e-10, atol=1e-12)
@@ -153,8 +153,8 @@ def test_rowless_fit_what_works_and_what_says_why():
     # re-estimation from the same summaries (reference: the in-memory fit with the same options)
     ols = fit.refit("ols")
     assert_same_fit(ols, system.fit("ols"), "refit")
-    lr = fit.refit("ifgls", restrictions="eq0.eq0_x1 = 0").lr_against(fit)
-    lr_ref = system.fit("ifgls", restrictions="eq0.eq0_x1 = 0").lr_against(ref)
+    lr = fit.refit("ifgls", restrictions="eq0::eq0_x1 = 0").lr_against(fit)
+    lr_ref = system.fit("ifgls", restrictions="eq0::eq0_x1 = 0").lr_against(ref)
     assert abs(lr.statistic - lr_ref.statistic) <= 1e-8 * max(lr_ref.statistic, 1.0)
     # row-level results: a typed error saying why
     for what in (lambda: fit.resid, lambda: fit.fitted, lambda: fit.to_dict(), lambda: pickle.dumps(fit)):

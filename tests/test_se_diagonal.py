@@ -24,7 +24,7 @@ from reference import dense_gls, identical_regressor_data, make_sur_data, max_re
 
 RTOL_DIAG = 1e-13  # diagonal path vs the full covariance's diagonal (same numbers, other order)
 
-RESTRICT = "a.x1 = b.x1; c.x0 = 0.5"
+RESTRICT = "a::x1 = b::x1; c::x0 = 0.5"
 
 
 def _general():
@@ -61,7 +61,7 @@ def test_se_is_the_root_of_the_full_covariance_diagonal(data, method, covariance
     err = record(f"se diagonal path vs sqrt(diag(vcov)) (rel), {data}", _compare(one, two))
     assert err <= RTOL_DIAG
     if restricted:
-        assert (one.se.to_numpy() == 0.0).sum() == 1  # c.x0 fixed
+        assert (one.se.to_numpy() == 0.0).sum() == 1  # c::x0 fixed
     else:
         assert np.all(one.se.to_numpy() > 0.0)
 
@@ -84,7 +84,7 @@ def test_se_of_a_blocked_system_vs_statsmodels(divisor):
 def test_restored_fits_keep_their_standard_errors():
     fit = blocksur.EquationSystem(_general()).fit("fgls", covariance="hc1")
     se = fit.se.to_numpy()
-    again = blocksur.SystemFit.from_dict(json.loads(json.dumps(fit.to_dict())))
+    again = blocksur.FittedSystem.from_dict(json.loads(json.dumps(fit.to_dict())))
     np.testing.assert_allclose(again.se.to_numpy(), se, rtol=1e-15, atol=0)
     unpickled = pickle.loads(pickle.dumps(fit))
     np.testing.assert_allclose(unpickled.se.to_numpy(), se, rtol=1e-15, atol=0)

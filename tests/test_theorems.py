@@ -257,7 +257,7 @@ def test_rescaled_regressor_rescales_its_se_in_a_restricted_fit(scale, covarianc
     e = rng.multivariate_normal([0, 0], [[1.0, 0.5], [0.5, 1.0]], size=T)
     y1 = X @ [1.0, 2.0, -0.5] + e[:, 0]
     y2 = X2 @ [0.0, -0.5, 1.0] + e[:, 1]
-    rules = "a.x2 = b.x1; b.x0 = 0"
+    rules = "a::x2 = b::x1; b::x0 = 0"
     base = blocksur.EquationSystem({"a": (y1, X), "b": (y2, X2)}).fit(
         "fgls", restrictions=rules, covariance=covariance
     )

@@ -17,7 +17,7 @@ from ._loader import load_core as _load_core
 
 _load_core()
 from ._core import __version__, blas_threads  # noqa: E402
-from ._fit import SystemFit
+from ._fit import FittedSystem
 from ._tests import HypothesisTestResult
 from ._system import EquationSystem
 from ._frame import SampleInfo
@@ -51,7 +51,7 @@ __all__ = [
     "__version__",
     "blas_threads",
     "EquationSystem",
-    "SystemFit",
+    "FittedSystem",
     "SampleInfo",
     "BlocksurError",
     "BlocksurWarning",

@@ -199,7 +199,7 @@ def fit_dask(
     Returns
     -------
     RowlessFit
-        A :class:`SystemFit` without row-level results; ``stream_info.n_chunks`` counts the
+        A :class:`FittedSystem` without row-level results; ``stream_info.n_chunks`` counts the
         partitions. Errors in a partition (a missing column, a non-number) name it.
     """
     dask = _dask()

@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 
 from . import _core
-from ._restrictions import parse_restrictions
+from ._restrictions import coefficient_text, parse_restrictions
 from ._frame import expand_new
 from ._tests import HypothesisTestResult
 from .errors import (
@@ -24,7 +24,7 @@ from .errors import (
 if TYPE_CHECKING:  # pragma: no cover
     from ._system import EquationSystem
 
-__all__ = ["SystemFit"]
+__all__ = ["FittedSystem"]
 
 # Largest system whose standard errors the matrix-free path computes without being asked.
 _CG_SE_LIMIT = 5000
@@ -182,7 +182,7 @@ def _check_nested(loose: Any, tight: Any) -> None:
         )
 
 
-class SystemFit:
+class FittedSystem:
     """Estimates of a system of equations, with labels.
 
     Produced by :meth:`EquationSystem.fit`. Coefficient-shaped results are pandas objects indexed
@@ -349,7 +349,7 @@ class SystemFit:
         bad = self._variances_out_of_range(v)
         if not np.any(bad):
             return
-        labels = [f"{e}.{r}" for e, r in self._coef_index[np.flatnonzero(bad)]]
+        labels = [coefficient_text(e, r) for e, r in self._coef_index[np.flatnonzero(bad)]]
         shown = ", ".join(labels[:3]) + (f" and {len(labels) - 3} more" if len(labels) > 3 else "")
         warnings.warn(
             f"the variances of {shown} are beyond double precision (inf or 0 in vcov): their "
@@ -584,14 +584,14 @@ class SystemFit:
             )
         gs = gap / d
         w = float(gs @ np.linalg.solve(corr, gs))
-        null = "; ".join(rset.texts)
+        h0 = "; ".join(rset.texts)
         if form == "chi2":
-            return HypothesisTestResult("Wald", null, w, "chi2", m, None, float(_stats().chi2.sf(w, m)))
+            return HypothesisTestResult("Wald", h0, w, "chi2", m, None, float(_stats().chi2.sf(w, m)))
         dfd = self.n_eq * self.n_obs - self.n_coef + self.n_restrictions
         f = w / m
-        return HypothesisTestResult("Wald", null, f, "F", m, dfd, float(_stats().f.sf(f, m, dfd)))
+        return HypothesisTestResult("Wald", h0, f, "F", m, dfd, float(_stats().f.sf(f, m, dfd)))
 
-    def lr_against(self, other: "SystemFit") -> HypothesisTestResult:
+    def lr_against(self, other: "FittedSystem") -> HypothesisTestResult:
         """Likelihood-ratio test between this fit and a nested one (both iterated ML fits:
         ``method="ifgls"``, ``omega="ml"``, on the same system). LR = 2 (ll_big - ll_small)
         ~ chi2(difference in free coefficients).
@@ -601,9 +601,9 @@ class SystemFit:
         that are not nested are refused. A restricted fit whose log-likelihood exceeds the
         other's by more than rounding (an iterated fit that stopped short of its maximum) is
         refused too, rather than reported as a statistic of zero."""
-        if not isinstance(other, SystemFit):
+        if not isinstance(other, FittedSystem):
             raise TypeError(
-                "lr_against expects another SystemFit of the same EquationSystem (an iterated ML "
+                "lr_against expects another FittedSystem of the same EquationSystem (an iterated ML "
                 f"fit with or without restrictions), not {type(other).__name__}"
             )
         for f in (self, other):
@@ -648,8 +648,8 @@ class SystemFit:
                 )
             lr = 0.0  # rounding of two equal maxima
         df = abs(free_self - free_other)
-        null = "; ".join(small.restrictions.texts) if small.restrictions is not None else "the smaller model"
-        return HypothesisTestResult("LR", null, lr, "chi2", df, None, float(_stats().chi2.sf(lr, df)))
+        h0 = "; ".join(small.restrictions.texts) if small.restrictions is not None else "the smaller model"
+        return HypothesisTestResult("LR", h0, lr, "chi2", df, None, float(_stats().chi2.sf(lr, df)))
 
     def omega_diagonal_lm(self) -> HypothesisTestResult:
         """Breusch-Pagan LM test that Omega is diagonal (no cross-equation correlation):
@@ -735,8 +735,8 @@ class SystemFit:
         return pd.DataFrame(s / np.outer(d, d), index=self._names, columns=self._names)
 
     @cached_property
-    def system_r2(self) -> float:
-        """McElroy's (1977) system R-squared: 1 - e'(Omega^-1 (x) I)e / y'(Omega^-1 (x) D)y,
+    def mcelroy_r2(self) -> float:
+        """McElroy's (1977) R-squared of the whole system: 1 - e'(Omega^-1 (x) I)e / y'(Omega^-1 (x) D)y,
         D the centring matrix, Omega = :attr:`omega`."""
         oinv = np.linalg.inv(self._est.omega)
         y = np.column_stack(self._system._ys)
@@ -934,21 +934,21 @@ class SystemFit:
         -------
         >>> import json
         >>> text = json.dumps(fit.to_dict())           # doctest: +SKIP
-        >>> same = SystemFit.from_dict(json.loads(text))   # doctest: +SKIP
+        >>> same = FittedSystem.from_dict(json.loads(text))  # doctest: +SKIP
         """
         from ._tidy import fit_to_dict
 
         return fit_to_dict(self, keep_data)
 
     @classmethod
-    def from_dict(cls, data: dict[str, Any]) -> "SystemFit":
+    def from_dict(cls, data: dict[str, Any]) -> "FittedSystem":
         """Rebuilds a fit saved by :meth:`to_dict`: identical coefficients, covariance, Omega,
         residuals and fit measures. Methods that go back to the data raise
         :class:`~blocksur.errors.DataNotKeptError` unless the dict kept the regressors.
 
         Example
         -------
-        >>> SystemFit.from_dict(saved).coef            # doctest: +SKIP
+        >>> FittedSystem.from_dict(saved).coef         # doctest: +SKIP
         """
         from ._tidy import fit_from_dict
 
@@ -965,10 +965,11 @@ class SystemFit:
         restore_pickle(self, state)
 
     def report(self, level: float = 0.95, max_equations: int | None = 12, width: int = 100) -> str:
-        """A plain-text report for terminals and logs: header (method, sample, iterations,
-        Omega divisor, covariance), one block per equation (the first ``max_equations``, a whole
-        number >= 1, or None for all), the residual correlations and the system-wide
-        statistics, at most ``width`` columns (a whole number from 80 to 1000).
+        """A plain-text report for terminals and logs: a title (``"blocksur · 3 equations ×
+        365 rows · iterated FGLS"``), a header (method, sample, iterations, Omega divisor,
+        covariance), one block per equation (the first ``max_equations``, a whole number >= 1,
+        or None for all), the residual correlations and the system-wide statistics, at most
+        ``width`` columns (a whole number from 80 to 1000).
 
         Example
         -------
@@ -996,9 +997,10 @@ class SystemFit:
     def _repr_html_(self) -> str:
         return self.report_html()
 
-    def to_markdown(self, level: float = 0.95, digits: int = 4) -> str:
+    def to_markdown(self, level: float = 0.95, digits: int = 4, caption: str | None = None) -> str:
         """The coefficient table as a Markdown (pipe) table, with ``digits`` significant digits
-        (a whole number from 1 to 15).
+        (a whole number from 1 to 15), after a line with ``caption``: by default the report's
+        title (``"blocksur · 3 equations × 365 rows · iterated FGLS"``), ``""`` for none.
 
         Example
         -------
@@ -1006,12 +1008,14 @@ class SystemFit:
         """
         from ._report import markdown_table
 
-        return markdown_table(self, level=level, digits=digits)
+        return markdown_table(self, level=level, digits=digits, caption=caption)
 
     def to_latex(self, level: float = 0.95, digits: int = 4, caption: str | None = None,
                  label: str | None = None) -> str:
         """The coefficient table as a LaTeX ``table`` with a ``tabular`` (booktabs rules), with
-        ``digits`` significant digits (a whole number from 1 to 15).
+        ``digits`` significant digits (a whole number from 1 to 15), captioned ``caption``: by
+        default the report's title (``"blocksur · 3 equations × 365 rows · iterated FGLS"``),
+        ``""`` for no caption.
 
         Example
         -------
@@ -1067,6 +1071,6 @@ class SystemFit:
         if self.method == "ifgls":
             state = f", {self.n_iter} steps, " + ("converged" if self.converged else "NOT converged")
         return (
-            f"<SystemFit {self.method} (omega divisor {self.omega_divisor}{state}): "
+            f"<FittedSystem {self.method} (omega divisor {self.omega_divisor}{state}): "
             f"N={self.n_eq} equations, T={self.n_obs}, K={self.n_coef} coefficients>"
         )

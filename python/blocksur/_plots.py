@@ -23,7 +23,7 @@ import numpy as np
 from .errors import InvalidOptionError, MissingDependencyError
 
 if TYPE_CHECKING:  # pragma: no cover
-    from ._fit import SystemFit
+    from ._fit import FittedSystem
 
 __all__ = ["plot_resid_corr", "plot_coef", "plot_convergence"]
 
@@ -46,7 +46,7 @@ def _figure(ax: Any, size: tuple[float, float]) -> tuple[Any, Any]:
     return fig, ax
 
 
-def plot_resid_corr(fit: "SystemFit", ax: Any = None, annotate: bool | None = None,
+def plot_resid_corr(fit: "FittedSystem", ax: Any = None, annotate: bool | None = None,
                     equations: Sequence[str] | None = None, cmap: str = "RdBu_r") -> Any:
     """Heatmap of the residual correlation matrix, colours from -1 to 1; values written in the
     cells when ``annotate`` (default: N <= 12); labels dropped beyond 40 equations.
@@ -82,13 +82,13 @@ def plot_resid_corr(fit: "SystemFit", ax: Any = None, annotate: bool | None = No
 
 
 def plot_coef(
-    fit: "SystemFit",
+    fit: "FittedSystem",
     by: str = "regressor",
     *,
     regressors: Sequence[str] | None = None,
     equations: Sequence[str] | None = None,
     level: float = 0.95,
-    compare: Mapping[str, "SystemFit"] | None = None,
+    compare: Mapping[str, "FittedSystem"] | None = None,
     ncols: int = 3,
     rename: Callable[[str, str], str] | None = None,
     label: str | None = None,
@@ -160,7 +160,7 @@ def plot_coef(
     return fig
 
 
-def plot_convergence(fit: "SystemFit", ax: Any = None) -> Any:
+def plot_convergence(fit: "FittedSystem", ax: Any = None) -> Any:
     """The iterated fit's convergence criterion (largest relative change of an equation's
     fitted values) after each GLS step, on a log scale, with the tolerance as a line."""
     path = fit.criterion_path

@@ -1,7 +1,8 @@
 """Reports of a fit: plain text for terminals and logs, HTML for Jupyter, and the coefficient
 table as Markdown or LaTeX.
 
-The layout is blocksur's own: a header that says how the estimate was made (estimator and
+The layout is blocksur's own: a title (``blocksur · 3 equations × 365 rows · iterated FGLS``,
+which also opens the HTML report and, by default, the Markdown and LaTeX tables), a header that says how the estimate was made (estimator and
 its convergence, the sample and the rows dropped, how Omega was scaled, the kind of covariance
 and reference distribution, the restrictions), one block per equation (its fit line, then one
 row per regressor with the estimate, its standard error, the test statistic, the p-value and
@@ -28,9 +29,9 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 if TYPE_CHECKING:  # pragma: no cover
-    from ._fit import SystemFit
+    from ._fit import FittedSystem
 
-__all__ = ["text_report", "html_report", "markdown_table", "latex_table", "format_number"]
+__all__ = ["title", "text_report", "html_report", "markdown_table", "latex_table", "format_number"]
 
 CAUTION = (
     "How to read this: the estimates rest on the model's assumptions (linear equations, errors "
@@ -39,6 +40,7 @@ CAUTION = (
     "(residual plots, the correlations above, the tests) before relying on them."
 )
 
+_METHOD_SHORT = {"ols": "OLS", "fgls": "two-step FGLS", "ifgls": "iterated FGLS"}
 _METHOD = {
     "ols": "OLS, each equation on its own",
     "fgls": "two-step FGLS (Omega from OLS residuals, then one GLS step)",
@@ -124,7 +126,18 @@ def _check_level(level: Any) -> None:
 
 
 # -- the facts a report shows (shared by text and HTML) ----------------------------------------------
-def _header(fit: "SystemFit", level: float) -> list[tuple[str, str]]:
+def _count(n: int, what: str) -> str:
+    return f"{n} {what}" + ("" if n == 1 else "s")
+
+
+def title(fit: "FittedSystem") -> str:
+    """The title of every report of ``fit``: blocksur, the size of the system and the
+    estimator, e.g. ``"blocksur · 3 equations × 365 rows · iterated FGLS"``."""
+    method = _METHOD_SHORT.get(fit.method, fit.method)
+    return f"blocksur · {_count(fit.n_eq, 'equation')} × {_count(fit.n_obs, 'row')} · {method}"
+
+
+def _header(fit: "FittedSystem", level: float) -> list[tuple[str, str]]:
     rows = []
     est = _METHOD.get(fit.method, fit.method)
     if fit.method == "ifgls":
@@ -163,14 +176,14 @@ def _header(fit: "SystemFit", level: float) -> list[tuple[str, str]]:
     return rows
 
 
-def _equation_line(fit: "SystemFit", i: int, stats: Any) -> str:
+def _equation_line(fit: "FittedSystem", i: int, stats: Any) -> str:
     name = fit.equation_names[i]
     s = stats.iloc[i]
     return (f"{int(s['n_regressors'])} regressors | R-squared {s['r2']:.4f} (adjusted {s['r2_adj']:.4f}) | "
             f"residual s.e. {format_number(s['resid_se'], 5)}"), name
 
 
-def _system_rows(fit: "SystemFit") -> list[tuple[str, str]]:
+def _system_rows(fit: "FittedSystem") -> list[tuple[str, str]]:
     rows = []
     ll = fit.loglik
     if math.isfinite(ll):
@@ -179,9 +192,10 @@ def _system_rows(fit: "SystemFit") -> list[tuple[str, str]]:
     else:
         rows.append(("log-likelihood", "not finite: the residual covariance is singular"))
     try:
-        rows.append(("system R-squared", f"{fit.system_r2:.4f} (McElroy)"))
+        rows.append(("McElroy R-squared", f"{fit.mcelroy_r2:.4f} (all equations together, weighted by the "
+                                          "inverse of Omega)"))
     except np.linalg.LinAlgError:
-        rows.append(("system R-squared", "not available: Omega is singular"))
+        rows.append(("McElroy R-squared", "not available: Omega is singular"))
     if fit.n_eq >= 2:
         t = fit.omega_diagonal_lm()
         verdict = ("the equations' errors are correlated: a system estimator can gain over OLS"
@@ -192,7 +206,7 @@ def _system_rows(fit: "SystemFit") -> list[tuple[str, str]]:
     return rows
 
 
-def _corr_summary(fit: "SystemFit", top: int = 3) -> str:
+def _corr_summary(fit: "FittedSystem", top: int = 3) -> str:
     r = fit.resid_corr.to_numpy()
     names = fit.equation_names
     iu = np.triu_indices(len(names), 1)
@@ -203,7 +217,7 @@ def _corr_summary(fit: "SystemFit", top: int = 3) -> str:
             f"{vals.max():+.2f}], mean |r| {np.mean(np.abs(vals)):.2f}; strongest: {pairs}")
 
 
-def _coef_table(fit: "SystemFit", level: float) -> tuple[Any, str | None]:
+def _coef_table(fit: "FittedSystem", level: float) -> tuple[Any, str | None]:
     """The coefficient table, or the estimates alone (NaN elsewhere) with a note when the
     standard errors are not available (matrix-free path beyond its limit)."""
     from .errors import BlocksurError
@@ -217,13 +231,13 @@ def _coef_table(fit: "SystemFit", level: float) -> tuple[Any, str | None]:
         return t, f"standard errors not computed: {err}"
 
 
-def _caution(fit: "SystemFit") -> str:
+def _caution(fit: "FittedSystem") -> str:
     robust = "" if fit.covariance == "classical" else "; the robust covariance relaxes this for the standard errors"
     return CAUTION.format(robust=robust)
 
 
 # -- plain text ------------------------------------------------------------------------------------
-def text_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None = 12, width: int = 100,
+def text_report(fit: "FittedSystem", level: float = 0.95, max_equations: int | None = 12, width: int = 100,
                 max_corr: int = 8) -> str:
     """The fit as plain text, no line longer than ``width`` (80 to 1000) characters;
     ``max_equations=None`` shows every equation."""
@@ -241,9 +255,7 @@ def text_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None
         out.append(f"  {label:<{wrap_label - 2}}{lines[0]}")
         out.extend(" " * wrap_label + ln for ln in lines[1:])
 
-    title = "SUR system fit, by blocksur"
-    out.append("=" * width)
-    out.append(f"  {title}  ::  {fit.n_eq} equations, {fit.n_obs} rows, {fit.method}")
+    out.append(title(fit))
     out.append("=" * width)
     for label, value in _header(fit, level):
         kv(label, value)
@@ -297,7 +309,7 @@ def text_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None
     out.append("")
     out.append("System")
     for label, value in _system_rows(fit):
-        wrap_label = 19
+        wrap_label = 21
         kv(label, value)
     out.append("-" * width)
     out.extend(textwrap.wrap(_caution(fit), width=width))
@@ -329,7 +341,7 @@ def _corr_color(v: float) -> str:
     return f"background:rgba({rgb},{a:.2f})"
 
 
-def html_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None = 12,
+def html_report(fit: "FittedSystem", level: float = 0.95, max_equations: int | None = 12,
                 max_corr: int = 15) -> str:
     """The fit as one well-formed HTML fragment (every tag closed, text escaped);
     ``max_equations=None`` shows every equation."""
@@ -339,7 +351,7 @@ def html_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None
     if max_equations is None:
         max_equations = fit.n_eq
     h: list[str] = [f'<div class="bsr"><style>{_STYLE}</style>']
-    h.append(f"<h4>SUR system fit <small>({fit.n_eq} equations, {fit.n_obs} rows, {_e(fit.method)})</small></h4>")
+    h.append(f"<h4>{_e(title(fit))}</h4>")
     h.append('<table class="head"><tbody>')
     for label, value in _header(fit, level):
         h.append(f"<tr><th>{_e(label)}</th><td>{_e(value)}</td></tr>")
@@ -398,7 +410,7 @@ def html_report(fit: "SystemFit", level: float = 0.95, max_equations: int | None
 
 
 # -- Markdown and LaTeX -----------------------------------------------------------------------------
-def _rows(fit: "SystemFit", level: float, digits: int) -> list[list[str]]:
+def _rows(fit: "FittedSystem", level: float, digits: int) -> list[list[str]]:
     _check_level(level)
     digits = _whole("digits (significant digits shown)", digits, 1, MAX_DIGITS)
     t = fit.coef_table(level)
@@ -412,8 +424,17 @@ def _rows(fit: "SystemFit", level: float, digits: int) -> list[list[str]]:
     return out
 
 
-def markdown_table(fit: "SystemFit", level: float = 0.95, digits: int = 4) -> str:
-    """The coefficient table as a Markdown pipe table (one row per coefficient)."""
+def _caption(caption: Any) -> None:
+    from .errors import InvalidOptionError
+
+    if caption is not None and not isinstance(caption, str):
+        raise InvalidOptionError(f"caption must be a string or None, got {type(caption).__name__}")
+
+
+def markdown_table(fit: "FittedSystem", level: float = 0.95, digits: int = 4, caption: str | None = None) -> str:
+    """The coefficient table as a Markdown pipe table (one row per coefficient), after a line
+    with ``caption``: by default the report's :func:`title`; ``""`` for the table alone."""
+    _caption(caption)
     rows = _rows(fit, level, digits)
     stat = "z" if fit.inference == "z" else "t"
     lv = _level(level)
@@ -425,27 +446,32 @@ def markdown_table(fit: "SystemFit", level: float = 0.95, digits: int = 4) -> st
     lines = ["| " + " | ".join(head) + " |", "|" + "|".join([":---", ":---"] + ["---:"] * 6) + "|"]
     for row in rows:
         lines.append("| " + " | ".join(cell(c) for c in row) + " |")
+    caption = title(fit) if caption is None else caption
+    if caption:
+        lines = [caption, ""] + lines
     return "\n".join(lines) + "\n"
 
 
 _TEX = {"\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#", "_": r"\_",
         "{": r"\{", "}": r"\}", "~": r"\textasciitilde{}", "^": r"\textasciicircum{}",
-        "<": r"\textless{}", ">": r"\textgreater{}"}
+        "<": r"\textless{}", ">": r"\textgreater{}", "·": r"$\cdot$", "×": r"$\times$"}
 
 
 def _tex(s: str) -> str:
     return "".join(_TEX.get(ch, ch) for ch in s)
 
 
-def latex_table(fit: "SystemFit", level: float = 0.95, digits: int = 4, caption: str | None = None,
+def latex_table(fit: "FittedSystem", level: float = 0.95, digits: int = 4, caption: str | None = None,
                 label: str | None = None) -> str:
-    """The coefficient table as a LaTeX ``table`` (needs ``\\usepackage{booktabs}``)."""
+    """The coefficient table as a LaTeX ``table`` (needs ``\\usepackage{booktabs}``), captioned
+    ``caption``: by default the report's :func:`title`; ``""`` for no caption."""
     from .errors import InvalidOptionError
 
-    for name, value in (("caption", caption), ("label", label)):
-        if value is not None and not isinstance(value, str):
-            raise InvalidOptionError(f"{name} must be a string or None, got {type(value).__name__}")
+    _caption(caption)
+    if label is not None and not isinstance(label, str):
+        raise InvalidOptionError(f"label must be a string or None, got {type(label).__name__}")
     rows = _rows(fit, level, digits)
+    caption = title(fit) if caption is None else caption
     stat = "$z$" if fit.inference == "z" else "$t$"
     lv = _tex(_level(level))
     out = [r"\begin{table}[htbp]", r"\centering"]

@@ -2,20 +2,30 @@
 
 Syntax
 ------
-A coefficient is written ``equation.regressor``. Names made of letters, digits and underscores
-are written as they are; any other name goes between backticks: ``north.`log(price)```.
-A restriction is ``expression = expression``, each side a sum of terms ``[number [*]] coefficient``,
-``coefficient [* number]``, ``coefficient / number`` or a plain number. Several restrictions are
-separated by ``;`` or new lines, or given as a list of strings.
+A coefficient is written ``equation::regressor``: the equation's name, two colons, the
+regressor's name. A restriction is ``expression = expression``, each side a sum of terms
+``[number [*]] coefficient``, ``coefficient [* number]``, ``coefficient / number`` or a plain
+number. Several restrictions are separated by ``;`` or new lines, or given as a list of strings.
+
+Quoting: a name made of letters, digits and underscores (not starting with a digit) is written
+as it is. Any other name (with spaces, brackets, dots, colons, signs...) goes between backticks,
+and a backtick inside such a name is written twice.
 
 Examples::
 
-    north.price = south.price                 # equal price effects in two regions
-    food.income + fuel.income + other.income = 0
-    2 * north.income - south.income = 0.5; north.weekend = 0
+    north::price = south::price                 # equal price effects in two regions
+    food::income + fuel::income + other::income = 0
+    2 * north::income - south::income = 0.5; north::weekend = 0
+    `north zone`::`log(price)` = 2 * south::`log(price)`    # equation "north zone"
+    harbour::`C(day_type)[T.sunday]` = 0        # a term of a formula
+    south::`a``b` = 1                           # the regressor named a`b
+
+A coefficient written ``equation.regressor`` raises a
+:class:`~blocksur.errors.RestrictionSyntaxError` whose message shows the restriction rewritten
+with ``::``.
 
 Arrays are accepted too: ``(R, q)`` with ``R`` of shape (m, K) over the order of
-``SystemFit.coef`` and ``q`` of length m.
+``FittedSystem.coef`` and ``q`` of length m.
 """
 
 from __future__ import annotations
@@ -28,18 +38,63 @@ import numpy as np
 
 from .errors import RestrictionError, RestrictionSyntaxError
 
-__all__ = ["parse_restrictions", "RestrictionSet"]
+__all__ = ["parse_restrictions", "RestrictionSet", "coefficient_text"]
 
+SEPARATOR = "::"
+
+# '.' is an operator only to recognise the earlier form equation.regressor and say how to
+# write it now; a quoted name is `...`, with `` for a backtick inside it
 _TOKEN = re.compile(
     r"""
     (?P<space>[ \t\r]+)
   | (?P<number>(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)
   | (?P<name>[A-Za-z_][A-Za-z0-9_]*)
-  | (?P<quoted>`[^`]*`)
-  | (?P<op>[-+*/=.])
+  | (?P<quoted>`(?:[^`]|``)*`)
+  | (?P<op>::|[-+*/=.])
   """,
     re.VERBOSE,
 )
+_BARE = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
+
+
+def quote_name(name: str) -> str:
+    """A name as a restriction writes it: bare if it is made of letters, digits and
+    underscores (not starting with a digit), else between backticks with each backtick doubled."""
+    return name if _BARE.fullmatch(name) else "`" + name.replace("`", "``") + "`"
+
+
+def coefficient_text(equation: str, regressor: str) -> str:
+    """How a restriction names a coefficient: ``equation::regressor``, quoted where needed.
+
+    Example
+    -------
+    >>> coefficient_text("north", "log(price)")
+    'north::`log(price)`'
+    """
+    return quote_name(equation) + SEPARATOR + quote_name(regressor)
+
+
+def with_separator(text: str) -> str:
+    """``text`` with each '.' that follows a name (the earlier form equation.regressor)
+    replaced by '::'; everything else, unreadable characters included, left as it is."""
+    out: list[str] = []
+    last = None  # kind of the last token that is not a space
+    pos = 0
+    while pos < len(text):
+        m = _TOKEN.match(text, pos)
+        if m is None:
+            out.append(text[pos])
+            last = "other"
+            pos += 1
+            continue
+        kind, val = m.lastgroup, m.group()
+        if kind == "op" and val == "." and last in ("name", "quoted"):
+            val = SEPARATOR
+        out.append(val)
+        if kind != "space":
+            last = kind
+        pos = m.end()
+    return "".join(out)
 
 
 @dataclass(frozen=True)
@@ -59,19 +114,22 @@ class RestrictionSet:
         return f"restriction {index} ({self.texts[index]!r})"
 
 
-def _split(spec: str | Sequence[str]) -> list[str]:
+def _split(spec: str | Sequence[str]) -> list[tuple[str, str]]:
+    """The restrictions, each with the string the user gave it in (for messages)."""
     items = [spec] if isinstance(spec, str) else list(spec)
-    out: list[str] = []
+    out: list[tuple[str, str]] = []
     for item in items:
         if not isinstance(item, str):
             raise RestrictionError(f"a restriction must be a string, not {type(item).__name__}")
-        out.extend(part for part in re.split(r"[;\n]", item) if part.strip())
+        out.extend((part, item) for part in re.split(r"[;\n]", item) if part.strip())
     return out
 
 
 class _Parser:
-    def __init__(self, text: str, coef_pos: dict[tuple[str, str], int], regressors: dict[str, list[str]]):
+    def __init__(self, text: str, coef_pos: dict[tuple[str, str], int], regressors: dict[str, list[str]],
+                 source: str | None = None):
         self.text = text
+        self.source = text if source is None else source.strip()
         self.coef_pos = coef_pos
         self.regressors = regressors
         self.tokens: list[tuple[str, str, int]] = []
@@ -79,7 +137,15 @@ class _Parser:
         while pos < len(text):
             m = _TOKEN.match(text, pos)
             if m is None:
-                self.fail(pos, f"unexpected character {text[pos]!r}")
+                ch = text[pos]
+                if ch == "`":
+                    self.fail(pos, "a backtick opens a quoted name that is not closed (a quoted name ends "
+                                   "with a second backtick; a backtick inside it is written twice)")
+                if ch == ":":
+                    if text[pos + 2 : pos + 3] == ":":  # something between the two colons
+                        self.fail(pos + 1, f"unexpected character {text[pos + 1]!r} inside '::'")
+                    self.fail(pos, "a single ':' (a coefficient is written equation::regressor, with two colons)")
+                self.fail(pos, f"unexpected character {ch!r}")
             kind = m.lastgroup
             if kind != "space":
                 self.tokens.append((kind, m.group(), pos))
@@ -106,15 +172,19 @@ class _Parser:
         if kind == "name":
             return val, pos
         if kind == "quoted":
-            return val[1:-1], pos
+            return val[1:-1].replace("``", "`"), pos
         self.fail(pos, f"expected a name, found {val!r}" if val else "expected a name, found the end")
         raise AssertionError  # unreachable
 
     def coefficient(self) -> int:
         eq, pos = self.name()
         kind, val, dpos = self.peek()
-        if val != ".":
-            self.fail(dpos, f"expected '.' after equation name {eq!r} (write equation.regressor)")
+        if kind == "op" and val == ".":
+            self.fail(dpos, "a coefficient is written equation::regressor, not equation.regressor: "
+                            f"write {with_separator(self.source)!r}; found '.'")
+        if val != SEPARATOR:
+            self.fail(dpos, f"expected '::' after equation name {eq!r} (a coefficient is written "
+                            "equation::regressor)")
         self.take()
         reg, rpos = self.name()
         if eq not in self.regressors:
@@ -225,9 +295,9 @@ def parse_restrictions(
         return rset
     if not isinstance(spec, (str, Sequence)) or isinstance(spec, (bytes, bytearray)):
         raise TypeError(
-            "restrictions must be a restriction string such as 'north.price = south.price' "
+            "restrictions must be a restriction string such as 'north::price = south::price' "
             "(several separated by ';'), a list of such strings, or an (R, q) pair of arrays "
-            f"with R over the order of SystemFit.coef; got {type(spec).__name__}"
+            f"with R over the order of FittedSystem.coef; got {type(spec).__name__}"
         )
     items = _split(spec)  # type: ignore[arg-type]
     if not items:
@@ -240,13 +310,13 @@ def parse_restrictions(
             c += 1
     reg_map = dict(zip(names, regressors))
     rows, rhs = [], []
-    for text in items:
+    for text, source in items:
         with np.errstate(all="ignore"):
-            row, q = _Parser(text.strip(), pos, reg_map).parse(k)
+            row, q = _Parser(text.strip(), pos, reg_map, source).parse(k)
         if not (np.all(np.isfinite(row)) and np.isfinite(q)):
             raise RestrictionSyntaxError(
                 f"the numbers in this restriction overflow: {text.strip()!r}", text=text.strip(), position=0
             )
         rows.append(row)
         rhs.append(q)
-    return RestrictionSet(np.array(rows), np.array(rhs), tuple(t.strip() for t in items))
+    return RestrictionSet(np.array(rows), np.array(rhs), tuple(t.strip() for t, _ in items))

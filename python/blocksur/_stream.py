@@ -47,7 +47,7 @@ import numpy as np
 import pandas as pd
 
 from . import _core
-from ._fit import SystemFit
+from ._fit import FittedSystem
 from ._frame import CONSTANT_NAME, _numeric, _parse_specs, _Table, _unknown
 from ._progress import _wanted as progress_wanted
 from ._estimation import COND_WARN as _COND_WARN
@@ -527,8 +527,8 @@ class _RowlessSystem(SystemLabels):
         return None
 
 
-class RowlessFit(SystemFit):
-    """A :class:`SystemFit` computed from summaries of the rows (chunks, Parquet batches, Dask
+class RowlessFit(FittedSystem):
+    """A :class:`FittedSystem` computed from summaries of the rows (chunks, Parquet batches, Dask
     partitions) rather than the rows themselves.
 
     Everything computed from the cross-products is available and equals the in-memory fit:
@@ -559,8 +559,8 @@ class RowlessFit(SystemFit):
         raise self._system._not_kept()
 
     @cached_property
-    def system_r2(self) -> float:
-        """McElroy's (1977) system R-squared, from the summaries (see :attr:`SystemFit.system_r2`)."""
+    def mcelroy_r2(self) -> float:
+        """McElroy's (1977) R-squared of the system, from the summaries (see :attr:`FittedSystem.mcelroy_r2`)."""
         oinv = np.linalg.inv(self._est.omega)
         num = np.sum(oinv * np.asarray(self._est.resid_crossprod))
         den = np.sum(oinv * self._ycross)
@@ -701,7 +701,7 @@ def fit_chunks(
     Returns
     -------
     RowlessFit
-        A :class:`SystemFit` without row-level results (see :class:`RowlessFit`).
+        A :class:`FittedSystem` without row-level results (see :class:`RowlessFit`).
 
     Example
     -------

@@ -15,7 +15,7 @@ import pandas as pd
 
 from . import _core
 from .errors import IllConditionedWarning, InputError, InvalidOptionError, ShapeMismatchError
-from ._fit import SystemFit
+from ._fit import FittedSystem
 from ._progress import close as close_hook
 from ._progress import progress_hook
 from ._estimation import COND_WARN as _COND_WARN
@@ -670,7 +670,7 @@ class EquationSystem(SystemLabels):
         cg_tol: float = 1e-10,
         cg_max_iter: int = 5000,
         progress: bool | None = None,
-    ) -> SystemFit:
+    ) -> FittedSystem:
         """Estimate the system.
 
         Parameters
@@ -684,7 +684,7 @@ class EquationSystem(SystemLabels):
             How Omega is estimated from the residual cross-products S: ``"ml"`` divides by T,
             ``"dof"`` divides S_ij by sqrt((T - K_i)(T - K_j)), ``"ledoit-wolf"`` shrinks S/T
             towards ``shrink_target`` with the Ledoit & Wolf (2004) intensity (reported as
-            :attr:`SystemFit.shrinkage`): for systems with about as many equations as
+            :attr:`FittedSystem.shrinkage`): for systems with about as many equations as
             observations, or more, where S/T is singular.
         tol
             Iterated FGLS stops when the largest relative change of an equation's fitted values
@@ -694,9 +694,11 @@ class EquationSystem(SystemLabels):
             and a :class:`NotConvergedWarning` is issued.
         restrictions
             Linear restrictions imposed at estimation, across equations if wanted: a string such
-            as ``"north.price = south.price; north.income + south.income = 1"`` (see
-            :mod:`blocksur._restrictions` for the syntax), a list of such strings, or an
-            ``(R, q)`` pair of arrays over the order of :attr:`SystemFit.coef`. Omega is estimated
+            as ``"north::price = south::price; north::income + south::income = 1"``
+            (``equation::regressor``; a name that is not made of letters, digits and
+            underscores goes between backticks: see :mod:`blocksur._restrictions` for the
+            syntax), a list of such strings, or an
+            ``(R, q)`` pair of arrays over the order of :attr:`FittedSystem.coef`. Omega is estimated
             from residuals that satisfy the restrictions (restricted OLS for the first step).
         covariance
             ``"classical"`` (model-based), ``"hc0"`` (heteroskedasticity-robust system sandwich,
@@ -711,7 +713,7 @@ class EquationSystem(SystemLabels):
         solver
             ``"direct"`` (Cholesky of the K x K GLS matrix), ``"cg"`` (matrix-free conjugate
             gradients: memory O(T (K + N)), no K x K matrix; standard errors per equation on
-            request, see :meth:`SystemFit.se_of`) or ``"auto"``: direct unless
+            request, see :meth:`FittedSystem.se_of`) or ``"auto"``: direct unless
             the memory the direct route needs exceeds ``memory_limit``: :meth:`direct_memory`,
             or for a two-step fit on the one-pass route (K >= 1000, omega "ml" or "dof", no
             restrictions: one pass over the data without the (K + N)^2 cross-products) the larger
@@ -788,7 +790,7 @@ class EquationSystem(SystemLabels):
                 close_hook(hook)
             self._warn_conditions(prepared, stacklevel=3)
             warn_about(est, int(max_iter), tol, stacklevel=3)
-            return SystemFit(
+            return FittedSystem(
                 self, prepared, est, None, tol=tol, max_iter=int(max_iter), restrictions=None,
                 covariance=covariance, inference=inference,
             )
@@ -809,7 +811,7 @@ class EquationSystem(SystemLabels):
             cg_tol=cg_tol,
             cg_max_iter=cg_max_iter,
         )
-        return SystemFit(
+        return FittedSystem(
             self,
             prepared,
             est,

@@ -14,7 +14,7 @@ class HypothesisTestResult:
     Attributes
     ----------
     name : what was tested with which statistic (e.g. ``"Wald"``, ``"Breusch-Pagan LM"``)
-    null : the null hypothesis, in words
+    h0 : the null hypothesis H0, in words
     statistic : the test statistic
     dist : its reference distribution under the null: ``"chi2"`` or ``"F"``
     df : degrees of freedom (numerator for F)
@@ -29,7 +29,7 @@ class HypothesisTestResult:
     """
 
     name: str
-    null: str
+    h0: str
     statistic: float
     dist: str
     df: float
@@ -42,7 +42,7 @@ class HypothesisTestResult:
         decision = "rejected" if self.pvalue < level else "not rejected"
         return (
             f"{self.name}: {d} = {self.statistic:.3f}, p = {self.pvalue:.4g}; "
-            f"{decision} at the {100 * level:g}% level (H0: {self.null})"
+            f"{decision} at the {100 * level:g}% level (H0: {self.h0})"
         )
 
     def rejects(self, level: float = 0.05) -> bool:

@@ -8,7 +8,7 @@ Example
 >>> fit = blocksur.EquationSystem(random_system(3, 80, seed=2).equations).fit("fgls")
 >>> list(fit.long_table().columns)
 ['equation', 'regressor', 'estimate', 'se', 'stat', 'pval', 'lower', 'upper']
->>> back = blocksur.SystemFit.from_dict(json.loads(json.dumps(fit.to_dict())))
+>>> back = blocksur.FittedSystem.from_dict(json.loads(json.dumps(fit.to_dict())))
 >>> bool((back.coef == fit.coef).all())
 True
 """
@@ -26,7 +26,7 @@ from ._fit import check_level
 from .errors import DataNotKeptError, InputError, InvalidOptionError
 
 if TYPE_CHECKING:  # pragma: no cover
-    from ._fit import SystemFit
+    from ._fit import FittedSystem
 
 __all__ = [
     "long_table",
@@ -39,13 +39,13 @@ __all__ = [
     "restore_pickle",
 ]
 
-FORMAT = "blocksur.SystemFit"
+FORMAT = "blocksur.FittedSystem"
 VERSION = 1
 _QUANTITIES = ("estimate", "se", "stat", "pval", "lower", "upper")
 
 
 # -- tables ----------------------------------------------------------------------------------------
-def long_table(fit: "SystemFit", level: float = 0.95) -> pd.DataFrame:
+def long_table(fit: "FittedSystem", level: float = 0.95) -> pd.DataFrame:
     """One row per coefficient: equation, regressor, estimate, se, stat, pval, lower, upper."""
     t = fit.coef_table(level)
     out = t.reset_index()
@@ -53,7 +53,7 @@ def long_table(fit: "SystemFit", level: float = 0.95) -> pd.DataFrame:
     return out
 
 
-def wide_table(fit: "SystemFit", quantity: str = "estimate", level: float = 0.95) -> pd.DataFrame:
+def wide_table(fit: "FittedSystem", quantity: str = "estimate", level: float = 0.95) -> pd.DataFrame:
     """Regressors down, equations across, for one quantity; NaN where an equation lacks the
     regressor. Rows follow the order in which regressors first appear."""
     if quantity not in _QUANTITIES:
@@ -71,7 +71,7 @@ def wide_table(fit: "SystemFit", quantity: str = "estimate", level: float = 0.95
     )
 
 
-def equation_stats(fit: "SystemFit") -> pd.DataFrame:
+def equation_stats(fit: "FittedSystem") -> pd.DataFrame:
     """One row per equation: regressors, residual degrees of freedom, R-squared, adjusted
     R-squared, residual standard error, sum of squared residuals."""
     k = fit.coef.groupby(level="equation", sort=False).size().reindex(fit.equation_names)
@@ -88,7 +88,7 @@ def equation_stats(fit: "SystemFit") -> pd.DataFrame:
     )
 
 
-def forecast_table(fit: "SystemFit", new: Any, level: float = 0.95, interval: str = "mean") -> pd.DataFrame:
+def forecast_table(fit: "FittedSystem", new: Any, level: float = 0.95, interval: str = "mean") -> pd.DataFrame:
     """Predictions in long form, indexed by (new row label, equation): predicted value, its
     standard error and interval bounds. ``interval="mean"`` bounds the expected value;
     ``"observation"`` adds the error variance omega_ii to bound a new observation (normal
@@ -248,7 +248,7 @@ class _FrozenEstimate:
 
 
 class _RestoredCore:
-    """Answers what SystemFit asks of the compiled ``Prepared`` from stored numbers; anything
+    """Answers what FittedSystem asks of the compiled ``Prepared`` from stored numbers; anything
     that needs a new pass over the data goes to the system's own data when it was kept."""
 
     def __init__(self, d: dict[str, Any], system: Any, est: _FrozenEstimate, vcov: np.ndarray | None) -> None:
@@ -340,7 +340,7 @@ class _RestoredSystem(SystemLabels):
 
 
 # -- saving ------------------------------------------------------------------------------------------
-def _numbers(fit: "SystemFit") -> dict[str, Any]:
+def _numbers(fit: "FittedSystem") -> dict[str, Any]:
     """Everything a restored fit needs, as numpy arrays and plain Python values."""
     from .errors import BlocksurError
 
@@ -434,13 +434,13 @@ def _jsonify(obj: Any) -> Any:
     return obj
 
 
-def fit_to_dict(fit: "SystemFit", keep_data: bool = False) -> dict[str, Any]:
+def fit_to_dict(fit: "FittedSystem", keep_data: bool = False) -> dict[str, Any]:
     """A dict of plain JSON types (str, int, float, bool, None, lists, dicts) holding the fit:
     options, coefficients, covariance, Omega, residuals, the dependent variables, fit measures'
     ingredients, restrictions, row labels and how the sample was formed. Arrays are stored as
     ``{"shape": [...], "data": [row-major values]}``; NaN and infinities as the strings
     ``"NaN"``, ``"Infinity"``, ``"-Infinity"``. ``keep_data=True`` adds the regressor matrices
-    (needed by methods that go back to the data, such as :meth:`SystemFit.grs_test`)."""
+    (needed by methods that go back to the data, such as :meth:`FittedSystem.grs_test`)."""
     d = _numbers(fit)
     d["rows"] = _index_to_json(fit._row_index)
     d["sample"] = _sample_to_json(getattr(fit._system, "_sample", None))
@@ -451,7 +451,7 @@ def fit_to_dict(fit: "SystemFit", keep_data: bool = False) -> dict[str, Any]:
     return _jsonify(d)
 
 
-def _build(cls: type, d: dict[str, Any], system: Any) -> "SystemFit":
+def _build(cls: type, d: dict[str, Any], system: Any) -> "FittedSystem":
     from ._restrictions import RestrictionSet
 
     est = _FrozenEstimate(d["estimate"])
@@ -480,9 +480,18 @@ def _build(cls: type, d: dict[str, Any], system: Any) -> "SystemFit":
     return fit
 
 
-def fit_from_dict(cls: type, d: dict[str, Any]) -> "SystemFit":
+def fit_from_dict(cls: type, d: dict[str, Any]) -> "FittedSystem":
     """Rebuilds a fit from :func:`fit_to_dict`'s output (also after a JSON round trip)."""
-    if not isinstance(d, dict) or d.get("format") != FORMAT:
+    tag = d.get("format") if isinstance(d, dict) else None
+    if isinstance(tag, str) and tag.startswith("blocksur.") and tag != FORMAT:
+        # a dict of a development build (whose results class had another name, carried in
+        # its tag): its layout may differ too, so it is refused rather than read
+        raise InputError(
+            f"this dict was saved by a development build of blocksur: its format tag is {tag!r}, "
+            f"and this blocksur reads only {FORMAT!r} (the results class is now FittedSystem); "
+            "refit the system and save the fit again with to_dict()"
+        )
+    if tag != FORMAT:
         raise InputError("not a blocksur fit dict: the 'format' entry is missing or different")
     if int(d.get("version", -1)) > VERSION:
         raise InputError(
@@ -502,7 +511,7 @@ def fit_from_dict(cls: type, d: dict[str, Any]) -> "SystemFit":
 
 
 # -- pickling --------------------------------------------------------------------------------------
-def pickle_state(fit: "SystemFit") -> dict[str, Any]:
+def pickle_state(fit: "FittedSystem") -> dict[str, Any]:
     """The state pickled for a fit: its numbers (numpy arrays) and the system itself (its data
     and labels; the compiled objects are rebuilt on demand)."""
     d = _numbers(fit)
@@ -510,7 +519,7 @@ def pickle_state(fit: "SystemFit") -> dict[str, Any]:
     return d
 
 
-def restore_pickle(fit: "SystemFit", state: dict[str, Any]) -> None:
+def restore_pickle(fit: "FittedSystem", state: dict[str, Any]) -> None:
     """Fills ``fit`` (created empty by pickle) from :func:`pickle_state`'s output."""
     if state.get("format") != FORMAT:
         raise InputError("not a pickled blocksur fit")

@@ -55,7 +55,7 @@ def main(argv: list[str] | None = None) -> None:
         print(table.to_string(), "\n")
 
     gain = (ols.se / ml.se).groupby(level="equation", sort=False).median()
-    print("Median ratio of standard errors, OLS / IFGLS (above 1 = the system estimate is sharper):")
+    print("Median precision gain, se(OLS) / se(IFGLS) (above 1 = the system estimate is sharper):")
     print(gain.round(2).to_string(), "\n")
 
     sd = np.sqrt(np.diag(ml.omega.to_numpy()))

@@ -134,7 +134,7 @@ class IllConditionedWarning(BlocksurWarning):
 
 
 class VarianceRangeWarning(BlocksurWarning):
-    """Some coefficient variances in :attr:`SystemFit.vcov` are beyond double precision
+    """Some coefficient variances in :attr:`FittedSystem.vcov` are beyond double precision
     (overflowed to inf or underflowed to 0: regressors in units near 1e+-160 or beyond). The
     standard errors are computed apart and stay finite; the message names the coefficients."""
 
