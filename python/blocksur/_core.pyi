@@ -251,7 +251,16 @@ class Estimate:
     def divisor(self) -> str: ...
 
 
-def blas_threads(n: int | None = None) -> int:
-    """Threads of the system OpenBLAS the extension links (not numpy's): set them when ``n`` is
-    given; returns the number in force."""
-    ...
+def set_threads(n: int) -> None:
+    """Sets the number of threads blocksur's parallel steps may use (1 to 1024); the pool is
+    rebuilt at the next parallel step. Raises InvalidOptionError outside that range."""
+
+def get_threads() -> int:
+    """The thread limit in force: set by :func:`set_threads`, else ``RAYON_NUM_THREADS`` as
+    read at first use, else the cores this process may use."""
+
+def build_info() -> dict[str, object]:
+    """How this extension computes: ``backend`` ("faer" or "lapack"), ``isa`` (the instruction
+    set the backend's kernels chose on this CPU, e.g. "avx512", "avx2+fma", "neon"),
+    ``kernels_isa`` (that of blocksur's own vector kernels), ``threads`` (the limit in force)
+    and ``version`` (the crate's)."""
