@@ -81,6 +81,21 @@ fn main() {
         Prepared::new_matrix_free(&data, &|| false).unwrap();
     });
     println!("step 0 (the matrix-free preparation) {step0_ms:.3} ms");
+    if std::env::var("ONLY").as_deref() == Ok("onepass") {
+        for _ in 0..reps {
+            let t0 = Instant::now();
+            let (p, e) = fgls_from_data(&data, Divisor::Ml, &|| false).unwrap();
+            let t1 = Instant::now();
+            p.coef_standard_errors(&e, CovKind::Classical, None)
+                .unwrap();
+            println!(
+                "one-pass fgls {:.1} ms, se {:.1} ms",
+                (t1 - t0).as_secs_f64() * 1e3,
+                t1.elapsed().as_secs_f64() * 1e3
+            );
+        }
+        return;
+    }
     if std::env::var("ONLY").as_deref() == Ok("step0") {
         for _ in 0..reps * 20 {
             Prepared::new_matrix_free(&data, &|| false).unwrap();

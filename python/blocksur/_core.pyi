@@ -27,11 +27,13 @@ def prepare(
     names: Sequence[str],
     regressors: Sequence[Sequence[str]],
     matrix_free: bool = False,
+    progress: object | None = None,
 ) -> Prepared:
     """Validates the system and runs the data pass (QR per equation, and one Gram matrix
-    unless ``matrix_free``), with the interpreter lock released. Raises the blocksur error
+    unless ``matrix_free``), with the interpreter lock released (the calling thread polls for
+    Ctrl-C and calls ``progress`` with the checkpoints passed). Raises the blocksur error
     classes (ShapeMismatchError, NonFiniteError, TooFewObservationsError, CollinearityError,
-    ...)."""
+    ...), and MemoryError when the process cannot get the memory the pass needs."""
 
 def fgls_from_data(
     ys: Sequence[_F64_1D],
@@ -140,6 +142,7 @@ class Prepared:
         xs: Sequence[_F64_2D] | None = None,
         cg_tol: float = 1e-10,
         cg_max_iter: int = 5000,
+        progress: object | None = None,
     ) -> Estimate:
         """One estimation: method "ols", "fgls" or "ifgls"; divisor "ml", "dof",
         "lw-diagonal" or "lw-identity" (Ledoit-Wolf shrinkage, which on the direct path needs

@@ -94,7 +94,7 @@ impl Dense for Faer {
         }
     }
 
-    fn qr_thin(mut a: ArrayViewMut2<f64>) -> Array2<f64> {
+    fn qr_thin(mut a: ArrayViewMut2<f64>) -> Option<Array2<f64>> {
         let (rows, m) = a.dim();
         let bs = faer::linalg::qr::no_pivoting::factor::recommended_block_size::<f64>(rows, m);
         let mut h = faer::Mat::<f64>::zeros(bs, m.min(rows));
@@ -103,15 +103,15 @@ impl Dense for Faer {
             faer::linalg::householder::apply_block_householder_sequence_on_the_left_in_place_scratch::<f64>(rows, bs, m),
         );
         let mut mem = workspace(req);
-        {
-            let fa = faer_mut(a.view_mut());
-            faer::linalg::qr::no_pivoting::factor::qr_in_place(
-                fa,
-                h.as_mut(),
-                par,
-                MemStack::new(&mut mem),
-                Default::default(),
-            );
+        let info = faer::linalg::qr::no_pivoting::factor::qr_in_place(
+            faer_mut(a.view_mut()),
+            h.as_mut(),
+            par,
+            MemStack::new(&mut mem),
+            Default::default(),
+        );
+        if info.rank < m.min(rows) {
+            return None;
         }
         let r = Array2::from_shape_fn(
             (m, m),
@@ -131,14 +131,14 @@ impl Dense for Faer {
             MemStack::new(&mut mem),
         );
         a.assign(&q);
-        r
+        Some(r)
     }
 
-    fn qr_r(a: ArrayViewMut2<f64>) -> Array2<f64> {
+    fn qr_r(a: ArrayViewMut2<f64>) -> Option<Array2<f64>> {
         let (rows, m) = a.dim();
         let k = rows.min(m);
         if k == 0 {
-            return Array2::zeros((m, m));
+            return Some(Array2::zeros((m, m)));
         }
         let bs = faer::linalg::qr::no_pivoting::factor::recommended_block_size::<f64>(rows, m);
         let mut h = faer::Mat::<f64>::zeros(bs, k);
@@ -152,17 +152,19 @@ impl Dense for Faer {
         );
         let mut mem = workspace(req);
         let mut a = a;
-        faer::linalg::qr::no_pivoting::factor::qr_in_place(
+        let info = faer::linalg::qr::no_pivoting::factor::qr_in_place(
             faer_mut(a.view_mut()),
             h.as_mut(),
             par,
             MemStack::new(&mut mem),
             Default::default(),
         );
-        Array2::from_shape_fn(
-            (m, m),
-            |(i, j)| if i <= j && i < rows { a[[i, j]] } else { 0.0 },
-        )
+        (info.rank == k).then(|| {
+            Array2::from_shape_fn(
+                (m, m),
+                |(i, j)| if i <= j && i < rows { a[[i, j]] } else { 0.0 },
+            )
+        })
     }
 
     fn sym_eigen(a: ArrayView2<f64>) -> Result<(Array1<f64>, Array2<f64>)> {

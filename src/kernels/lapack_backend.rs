@@ -154,7 +154,7 @@ impl Dense for Lapack {
         });
     }
 
-    fn qr_thin(a: ArrayViewMut2<f64>) -> Array2<f64> {
+    fn qr_thin(a: ArrayViewMut2<f64>) -> Option<Array2<f64>> {
         let (t, m) = a.dim();
         with_fortran(a, |buf, ld| {
             let (ti, mi, ldi) = (t as i32, m as i32, ld as i32);
@@ -216,10 +216,10 @@ impl Dense for Lapack {
         })
     }
 
-    fn qr_r(a: ArrayViewMut2<f64>) -> Array2<f64> {
+    fn qr_r(a: ArrayViewMut2<f64>) -> Option<Array2<f64>> {
         let (rows, m) = a.dim();
         if rows == 0 || m == 0 {
-            return Array2::zeros((m, m));
+            return Some(Array2::zeros((m, m)));
         }
         with_fortran(a, |buf, ld| {
             let (ri, mi, ldi) = (rows as i32, m as i32, ld as i32);

@@ -42,15 +42,18 @@ pub(crate) trait Dense {
         par: Par,
     );
     /// The lower Cholesky factor in place (the lower triangle is read); false when a pivot is
-    /// not positive. The strict upper triangle is not written.
+    /// not positive. Entries near the diagonal in the strict upper triangle may be overwritten.
     fn cholesky(a: ArrayViewMut2<f64>, par: Par) -> bool;
     /// Solves op(T) X = B in place for a triangular T (lower or upper; op: transposed or not).
     fn trsm(t: ArrayView2<f64>, lower: bool, transpose: bool, b: ArrayViewMut2<f64>, par: Par);
-    /// Thin QR of a rows x m matrix (rows >= m): `a` becomes Q; returns R (m x m).
-    fn qr_thin(a: ArrayViewMut2<f64>) -> Array2<f64>;
+    /// Thin QR of a rows x m matrix (rows >= m): `a` becomes Q; returns R (m x m). None (and
+    /// `a` undefined) when the backend's QR passed over a column it judged dependent on the
+    /// earlier ones (faer's does: its R is then a staircase); the caller then uses
+    /// Householder QR, which keeps such a column with its tiny pivot for the rank checks.
+    fn qr_thin(a: ArrayViewMut2<f64>) -> Option<Array2<f64>>;
     /// The R factor (m x m, upper triangular; rows past `a`'s zero) of a rows x m matrix,
-    /// which is overwritten.
-    fn qr_r(a: ArrayViewMut2<f64>) -> Array2<f64>;
+    /// which is overwritten; None as for `qr_thin`.
+    fn qr_r(a: ArrayViewMut2<f64>) -> Option<Array2<f64>>;
     /// Eigenvalues (ascending) and eigenvectors (columns) of a symmetric matrix.
     fn sym_eigen(a: ArrayView2<f64>) -> Result<(Array1<f64>, Array2<f64>)>;
     /// The right singular vectors V (n x n, columns in order of decreasing singular value) of
@@ -173,16 +176,27 @@ pub fn gram_blocked(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> R
             return Ok(gram_dots(buf, t, p, |_, _| false));
         }
     }
-    let mut g = gram_lower(w, cancel)?;
+    let mut g = gram_lower_in(w, zeros_for_product(p), cancel)?;
     mirror(&mut g, true);
     Ok(g)
 }
 
 /// The lower triangle of W'W (P x P, column-major; zeros above the diagonal, never written),
-/// over row blocks as `gram_blocked`.
+/// over row blocks as `gram_blocked`. The buffer is not advised onto huge pages: a 2 MB page
+/// holds dozens of columns, so touching their lower parts would page in the untouched upper
+/// half as well (the one-pass route counts on it staying out of memory).
 pub fn gram_lower(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
+    let p = w.ncols();
+    gram_lower_in(w, Array2::<f64>::zeros((p, p).f()), cancel)
+}
+
+/// `gram_lower` into `g`, a P x P column-major array of zeros.
+fn gram_lower_in(
+    w: ArrayView2<f64>,
+    mut g: Array2<f64>,
+    cancel: &(dyn Fn() -> bool + Sync),
+) -> Result<Array2<f64>> {
     let (t, p) = w.dim();
-    let mut g = zeros_for_product(p);
     if t == 0 || p == 0 {
         return Ok(g);
     }
@@ -314,13 +328,21 @@ pub fn chol_lower_of(mut a: Array2<f64>, upper_is_zero: bool) -> Option<Array2<f
     if !ok || !(0..n).all(|i| a[[i, i]].is_finite() && a[[i, i]] > 0.0) {
         return None;
     }
-    if !upper_is_zero {
-        for j in 1..n {
-            a.column_mut(j).slice_mut(ndarray::s![..j]).fill(0.0);
-        }
+    // faer writes scratch values into a narrow band above the diagonal (up to 15 entries above
+    // it when measured; the whole triangle of a matrix of order below 16): cleared in a band
+    // of UPPER_BAND when the rest is known to be zero, else entirely
+    let band = if upper_is_zero { UPPER_BAND } else { n };
+    for j in 1..n {
+        a.column_mut(j)
+            .slice_mut(ndarray::s![j.saturating_sub(band)..j])
+            .fill(0.0);
     }
     Some(a)
 }
+
+/// Entries above the diagonal that `chol_lower_of` clears when the rest of the upper triangle
+/// is zero already (the backend may write scratch values there; faer writes up to 15).
+const UPPER_BAND: usize = 64;
 
 /// Solves op(T) X = B for a triangular T: a copy of B is solved and returned.
 pub(crate) fn solve_triangular(
@@ -449,8 +471,28 @@ pub fn ln_det_spd(a: &Array2<f64>) -> Option<f64> {
 }
 
 /// The R factor (m x m, upper triangular) of a rows x m matrix (overwritten).
-pub(crate) fn qr_r(a: ArrayViewMut2<f64>) -> Array2<f64> {
-    Backend::qr_r(a)
+pub(crate) fn qr_r(mut a: ArrayViewMut2<f64>) -> Array2<f64> {
+    let copy = a.to_owned();
+    if let Some(r) = Backend::qr_r(a.view_mut()) {
+        return r;
+    }
+    let (rows, m) = copy.dim();
+    // R of [A; 0] when there are fewer rows than columns
+    let mut f = Array2::<f64>::zeros((rows.max(m), m).f());
+    f.slice_mut(ndarray::s![..rows, ..]).assign(&copy);
+    let (rr, mm) = f.dim();
+    let (mut r, mut tau) = (vec![0.0; mm * mm], vec![0.0; mm]);
+    qr::householder_qr(
+        f.as_slice_memory_order_mut()
+            .expect("fresh column-major array"),
+        rr,
+        mm,
+        &mut r,
+        &mut tau,
+        &|| false,
+    )
+    .expect("never interrupted");
+    Array2::from_shape_vec((m, m), r).expect("m x m")
 }
 
 /// Eigenvalues (ascending) and eigenvectors of a symmetric matrix.
@@ -686,5 +728,75 @@ pub fn fmt_num(x: f64) -> String {
         let s = format!("{x:.4}");
         let s = s.trim_end_matches('0').trim_end_matches('.');
         s.to_string()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A factor from a matrix whose strict upper triangle is zero keeps it zero (the band the
+    /// backend may write into is cleared), at orders on both sides of the band.
+    #[test]
+    fn a_factor_of_a_lower_triangle_keeps_a_zero_upper_triangle() {
+        for n in [3usize, 15, 16, 70, 300, 700] {
+            let b = Array2::from_shape_fn((n + 5, n), |(i, j)| ((i * 7 + j * 3) % 11) as f64 - 5.0);
+            let a = b.t().dot(&b) + Array2::<f64>::eye(n);
+            let mut low = to_fortran(&a);
+            for j in 0..n {
+                for i in 0..j {
+                    low[[i, j]] = 0.0;
+                }
+            }
+            let l = chol_lower_of(low, true).unwrap();
+            for j in 0..n {
+                for i in 0..j {
+                    assert_eq!(l[[i, j]], 0.0, "order {n}: ({i}, {j})");
+                }
+            }
+            let back = l.dot(&l.t());
+            assert!(back
+                .iter()
+                .zip(a.iter())
+                .all(|(x, y)| (x - y).abs() <= 1e-10 * y.abs().max(1.0)));
+        }
+    }
+
+    /// The null space of a wide matrix of full row rank: R N = 0 and N'N = I (definitions), for
+    /// shapes from one row to a nearly square matrix; and the symmetric eigendecomposition:
+    /// A v = lambda v, ascending, orthonormal vectors.
+    #[test]
+    fn null_space_and_eigenvectors_satisfy_their_definitions() {
+        let mut s = 17u64;
+        let mut rnd = move || {
+            s = s
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            (s >> 11) as f64 / (1u64 << 53) as f64 - 0.5
+        };
+        for (m, n) in [(1usize, 2usize), (1, 5), (2, 3), (3, 7), (5, 6), (4, 30)] {
+            let r = Array2::from_shape_fn((m, n), |_| rnd());
+            let nb = null_space(r.view()).unwrap();
+            assert_eq!(nb.dim(), (n, n - m));
+            let rn = r.dot(&nb);
+            assert!(rn.iter().all(|v| v.abs() < 1e-13), "{m}x{n}: R N = {rn}");
+            let ntn = nb.t().dot(&nb);
+            for ((i, j), v) in ntn.indexed_iter() {
+                assert!(
+                    (v - if i == j { 1.0 } else { 0.0 }).abs() < 1e-13,
+                    "{m}x{n}: N'N[{i},{j}] = {v}"
+                );
+            }
+        }
+        let b = Array2::from_shape_fn((9, 6), |_| rnd());
+        let a = b.t().dot(&b);
+        let (vals, vecs) = sym_eigen(a.view()).unwrap();
+        assert!(vals.windows(2).into_iter().all(|w| w[0] <= w[1]));
+        for j in 0..6 {
+            let av = a.dot(&vecs.column(j));
+            for i in 0..6 {
+                assert!((av[i] - vals[j] * vecs[[i, j]]).abs() < 1e-12);
+            }
+        }
     }
 }

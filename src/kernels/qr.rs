@@ -38,9 +38,10 @@ pub fn thin_qr(a: Array2<f64>) -> Result<(Array2<f64>, Array2<f64>)> {
 }
 
 /// Thin QR in place: `buf` holds a column-major T x m matrix A (leading dimension T); on return
-/// it holds Q and R (m x m, upper triangular, row-major) is returned, A = Q R. On the
-/// written-out path `stop` is asked before each column (a very long column can be interrupted)
-/// and a yes returns `SurError::Interrupted`.
+/// it holds Q and R (m x m, upper triangular, row-major) is returned, A = Q R. Blocks of up to
+/// NARROW_QR_MAX columns, and wider ones the backend declines (numerically dependent columns),
+/// by the written-out Householder QR, which asks `stop` before each column (a very long column
+/// can be interrupted; a yes returns `SurError::Interrupted`).
 pub fn thin_qr_in_place(
     buf: &mut [f64],
     t: usize,
@@ -55,8 +56,12 @@ pub fn thin_qr_in_place(
         ));
     }
     if m > NARROW_QR_MAX {
-        let a = ndarray::ArrayViewMut2::from_shape((t, m).f(), buf).expect("T x m");
-        return Ok(Backend::qr_thin(a));
+        let copy = buf.to_vec();
+        let a = ndarray::ArrayViewMut2::from_shape((t, m).f(), &mut *buf).expect("T x m");
+        if let Some(r) = Backend::qr_thin(a) {
+            return Ok(r);
+        }
+        buf.copy_from_slice(&copy);
     }
     let mut r = vec![0.0f64; m * m];
     let mut tau = vec![0.0f64; m];

@@ -153,6 +153,40 @@ fn run_interruptible<T: Send>(
     py.detach(|| crate::runtime::run_polled(flops, &|checks| stop.poll(checks), work))
 }
 
+/// Refuses work that needs more address space than this process can get: where a cap on it
+/// (RLIMIT_AS, `ulimit -v`) is in force, an allocation the core cannot make ends the process
+/// (Rust aborts on a failed allocation), so the memory a step needs at its peak, `bytes`, plus
+/// a margin for the backend's own buffers and threads, is reserved first (never touched, given
+/// back at once). A reservation that fails raises MemoryError instead.
+fn room_for(bytes: f64) -> PyResult<()> {
+    const MARGIN: usize = 128 << 20;
+    if !bytes.is_finite() || bytes < 0.0 {
+        return Ok(());
+    }
+    let want = (bytes as usize).saturating_add(MARGIN);
+    let mut probe: Vec<u8> = Vec::new();
+    probe.try_reserve_exact(want).map_err(|_| {
+        pyo3::exceptions::PyMemoryError::new_err(format!(
+            "this step needs about {:.0} MB of memory (plus {} MB for its buffers), more than this \
+             process may allocate (a cap on its address space, ulimit -v, or the machine's memory)",
+            bytes / 1e6,
+            MARGIN >> 20
+        ))
+    })
+}
+
+/// Bytes of the data pass's largest buffers: W (T x P) and its Gram matrix (P x P), or W
+/// alone (matrix-free).
+fn pass_bytes(
+    ys: &[PyReadonlyArray1<'_, f64>],
+    xs: &[PyReadonlyArray2<'_, f64>],
+    gram: bool,
+) -> f64 {
+    let t = ys.first().map_or(0, |y| y.as_array().len()) as f64;
+    let p = (xs.iter().map(|x| x.as_array().ncols()).sum::<usize>() + ys.len()) as f64;
+    8.0 * (t * p + if gram { p * p } else { 0.0 })
+}
+
 /// Operations of a data pass over T rows and P columns with K regressors in all (T P^2 for
 /// the cross-products, T K^2 for the QRs), for `run_interruptible`.
 fn pass_flops(ys: &[PyReadonlyArray1<'_, f64>], xs: &[PyReadonlyArray2<'_, f64>]) -> f64 {
@@ -211,6 +245,7 @@ fn prepare(
     progress: Option<Py<PyAny>>,
 ) -> PyResult<PyPrepared> {
     let data = equations(&ys, &xs, &names, &regressors)?;
+    room_for(pass_bytes(&ys, &xs, !matrix_free))?;
     let stop = Interrupt::with_callback(progress);
     let out = run_interruptible(py, pass_flops(&ys, &xs), &stop, |cancel| {
         if matrix_free {
@@ -239,6 +274,10 @@ fn fgls_from_data(
 ) -> PyResult<(PyPrepared, PyEstimate)> {
     let divisor = Divisor::parse(divisor).map_err(|e| raise(py, e))?;
     let data = equations(&ys, &xs, &names, &regressors)?;
+    // W, the K x K products and the T x N residuals
+    let k = xs.iter().map(|x| x.as_array().ncols()).sum::<usize>() as f64;
+    let t = ys.first().map_or(0, |y| y.as_array().len()) as f64;
+    room_for(pass_bytes(&ys, &xs, false) + 8.0 * (k * k + t * ys.len() as f64))?;
     let stop = Interrupt::with_callback(progress);
     let out = run_interruptible(py, pass_flops(&ys, &xs), &stop, |cancel| {
         fgls_one_pass(&data, divisor, cancel)
@@ -352,8 +391,10 @@ impl PyPrepared {
                 &self.inner.regressors,
             )?)
         };
-        let stop = Interrupt::with_callback(progress);
         let (k, n) = (self.inner.n_coef() as f64, self.inner.n_eq() as f64);
+        // the GLS matrix and its factor, and a restricted fit's K x K products
+        room_for(8.0 * 3.0 * k * k)?;
+        let stop = Interrupt::with_callback(progress);
         let steps = if opts.method == Method::IteratedFgls {
             10.0
         } else {
