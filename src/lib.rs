@@ -39,7 +39,7 @@ pub use error::{Result, SurError};
 pub use estimate::{
     fgls_from_data, CovKind, Divisor, Estimate, Estimation, FitOptions, Method, Restrictions,
 };
-pub use kernels::{backend_name, isa_name};
+pub use kernels::{backend_name, isa_name, kernels_isa_name};
 pub use prepare::{CrossProducts, EquationFactor, Prepared};
 pub use runtime::{get_threads, set_threads};
 pub use stream::{CrossStats, Pass2Basis, RowFactors, RowSummary};

@@ -3,7 +3,7 @@
 //! the field.
 
 use approx::assert_relative_eq;
-use ndarray::{s, Array1, Array2, ShapeBuilder};
+use ndarray::{s, Array1, Array2};
 
 use crate::{Divisor, Equation, Estimation, FitOptions, Method, Prepared, SurError, SystemData};
 

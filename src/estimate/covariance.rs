@@ -541,11 +541,6 @@ pub(crate) fn coef_standard_errors(
     ))
 }
 
-/// Classical covariance of the coefficients b.
-pub(crate) fn coef_covariance(prep: &Prepared, est: &Estimate) -> Result<Array2<f64>> {
-    coef_covariance_of(prep, est, CovKind::Classical, None)
-}
-
 pub(crate) fn block_left_multiply(
     prep: &Prepared,
     blocks: &[Array2<f64>],

@@ -42,7 +42,9 @@ impl Restrictions {
                 .map(|(a, (c, s))| a.abs() * (c.abs() + s))
                 .sum::<f64>()
                 + self.q[i].abs();
-            if !(gap.abs() <= 1e-8 * size.max(f64::MIN_POSITIVE)) {
+            // (a NaN gap fails too)
+            let within = gap.abs() <= 1e-8 * size.max(f64::MIN_POSITIVE);
+            if !within {
                 return Err(SurError::InvalidRestriction {
                     index: Some(i),
                     detail: format!(

@@ -45,6 +45,7 @@ impl Product {
     }
 
     /// The variants this CPU runs.
+    #[cfg(test)]
     pub(crate) fn available() -> Vec<Product> {
         let mut v = vec![Product::Dekker];
         if Self::fma_available() {

@@ -16,11 +16,9 @@ extern crate openblas_src;
 pub(crate) struct Lapack;
 
 /// A column-major copy of `a` when it is not column-major with unit row stride.
-fn fortran(a: ArrayView2<f64>) -> std::borrow::Cow<'_, [f64]> {
-    match a
-        .as_slice_memory_order()
-        .filter(|_| a.t().is_standard_layout())
-    {
+fn fortran(a: ArrayView2<'_, f64>) -> std::borrow::Cow<'_, [f64]> {
+    let column_major = a.t().is_standard_layout();
+    match a.to_slice_memory_order().filter(|_| column_major) {
         Some(s) => std::borrow::Cow::Borrowed(s),
         None => {
             let mut f = Array2::<f64>::zeros(a.dim().f());
@@ -156,7 +154,7 @@ impl Dense for Lapack {
 
     fn qr_thin(a: ArrayViewMut2<f64>) -> Option<Array2<f64>> {
         let (t, m) = a.dim();
-        with_fortran(a, |buf, ld| {
+        Some(with_fortran(a, |buf, ld| {
             let (ti, mi, ldi) = (t as i32, m as i32, ld as i32);
             let mut tau = vec![0.0f64; m];
             let (mut info, mut query, mut q2, minus1) = (0, 0.0f64, 0.0f64, -1);
@@ -213,7 +211,7 @@ impl Dense for Lapack {
                 );
                 r
             }
-        })
+        }))
     }
 
     fn qr_r(a: ArrayViewMut2<f64>) -> Option<Array2<f64>> {
@@ -221,7 +219,7 @@ impl Dense for Lapack {
         if rows == 0 || m == 0 {
             return Some(Array2::zeros((m, m)));
         }
-        with_fortran(a, |buf, ld| {
+        Some(with_fortran(a, |buf, ld| {
             let (ri, mi, ldi) = (rows as i32, m as i32, ld as i32);
             let mut tau = vec![0.0f64; rows.min(m)];
             let (mut info, mut query, minus1) = (0, 0.0f64, -1);
@@ -257,7 +255,7 @@ impl Dense for Lapack {
                     0.0
                 }
             })
-        })
+        }))
     }
 
     fn sym_eigen(a: ArrayView2<f64>) -> Result<(Array1<f64>, Array2<f64>)> {

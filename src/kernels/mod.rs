@@ -10,6 +10,8 @@
 //! matrices).
 
 pub(crate) mod dot2;
+// (under the `lapack` feature only the tests that compare the backends use faer's)
+#[cfg(any(not(feature = "lapack"), test))]
 mod faer_backend;
 #[cfg(feature = "lapack")]
 mod lapack_backend;
@@ -54,7 +56,8 @@ pub(crate) trait Dense {
     /// The R factor (m x m, upper triangular; rows past `a`'s zero) of a rows x m matrix,
     /// which is overwritten; None as for `qr_thin`.
     fn qr_r(a: ArrayViewMut2<f64>) -> Option<Array2<f64>>;
-    /// Eigenvalues (ascending) and eigenvectors (columns) of a symmetric matrix.
+    /// Eigenvalues (ascending) and eigenvectors (columns) of a symmetric matrix (both triangles
+    /// given).
     fn sym_eigen(a: ArrayView2<f64>) -> Result<(Array1<f64>, Array2<f64>)>;
     /// The right singular vectors V (n x n, columns in order of decreasing singular value) of
     /// an m x n matrix: its null space is spanned by the columns past its rank.
@@ -95,11 +98,12 @@ pub fn isa_name() -> &'static str {
 }
 
 /// The instruction set of blocksur's own vector kernels (pulp's dispatch).
-pub fn own_isa_name() -> &'static str {
+pub fn kernels_isa_name() -> &'static str {
     simd::best_name()
 }
 
 /// An ndarray view as a faer matrix (no copy; any strides).
+#[cfg(any(not(feature = "lapack"), test))]
 pub(crate) fn faer_ref(a: ArrayView2<'_, f64>) -> faer::MatRef<'_, f64> {
     let (r, c) = a.dim();
     let s = a.strides();
@@ -109,6 +113,7 @@ pub(crate) fn faer_ref(a: ArrayView2<'_, f64>) -> faer::MatRef<'_, f64> {
 }
 
 /// A mutable ndarray view as a faer matrix (no copy; any strides).
+#[cfg(any(not(feature = "lapack"), test))]
 pub(crate) fn faer_mut(mut a: ArrayViewMut2<'_, f64>) -> faer::MatMut<'_, f64> {
     let (r, c) = a.dim();
     let (s0, s1) = (a.strides()[0], a.strides()[1]);
@@ -454,6 +459,7 @@ pub fn triangular_condition(r: &Array2<f64>) -> f64 {
 
 /// The exact 1-norm condition number of a symmetric positive definite `a` from its lower
 /// Cholesky factor `l`.
+#[cfg(test)]
 pub fn spd_condition(a: &Array2<f64>, l: &Array2<f64>) -> f64 {
     if a.nrows() == 0 {
         return 1.0;
@@ -735,6 +741,38 @@ pub fn fmt_num(x: f64) -> String {
 mod tests {
     use super::*;
 
+    /// The views faer gets are the arrays themselves (no copy): every element read through the
+    /// faer matrix is the ndarray element, for row-major, column-major, sliced, strided and
+    /// reversed views, and writes through a mutable one land in the array.
+    #[test]
+    fn ndarray_views_convert_to_faer_without_copies() {
+        let a = Array2::from_shape_fn((7, 5), |(i, j)| (10 * i + j) as f64);
+        let f = to_fortran(&a);
+        let views = [
+            a.view(),
+            f.view(),
+            a.slice(ndarray::s![1..6;2, ..;2]),
+            a.slice(ndarray::s![..;-1, 1..]),
+            f.t(),
+            a.slice(ndarray::s![3..3, ..]),
+        ];
+        for v in views {
+            let m = faer_ref(v);
+            assert_eq!((m.nrows(), m.ncols()), v.dim());
+            for ((i, j), x) in v.indexed_iter() {
+                assert_eq!(m[(i, j)], *x);
+                assert!(std::ptr::eq(&m[(i, j)], x), "({i}, {j}) was copied");
+            }
+        }
+        let mut b = a.clone();
+        {
+            let mut m = faer_mut(b.slice_mut(ndarray::s![..;2, ..;-1]));
+            m[(1, 0)] = -1.0;
+        }
+        assert_eq!(b[[2, 4]], -1.0);
+        assert_eq!(b.iter().filter(|v| **v < 0.0).count(), 1);
+    }
+
     /// A factor from a matrix whose strict upper triangle is zero keeps it zero (the band the
     /// backend may write into is cleared), at orders on both sides of the band.
     #[test]
@@ -759,6 +797,81 @@ mod tests {
                 .iter()
                 .zip(a.iter())
                 .all(|(x, y)| (x - y).abs() <= 1e-10 * y.abs().max(1.0)));
+        }
+    }
+
+    /// Under the `lapack` feature: faer and the vendor LAPACK give the same Gram matrix, product,
+    /// Cholesky factor, triangular solutions, R factor (up to the signs of its rows), and
+    /// eigenvalues (common practice: both are backward stable, so they agree to rounding).
+    #[cfg(feature = "lapack")]
+    #[test]
+    fn the_two_backends_agree() {
+        use super::faer_backend::Faer;
+        use super::lapack_backend::Lapack;
+        let mut s = 3u64;
+        let mut rnd = move || {
+            s = s
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            (s >> 11) as f64 / (1u64 << 53) as f64 - 0.5
+        };
+        let close = |a: &Array2<f64>, b: &Array2<f64>, what: &str| {
+            let big = b.iter().fold(1e-300f64, |m, v| m.max(v.abs()));
+            let err = a
+                .iter()
+                .zip(b.iter())
+                .fold(0.0f64, |m, (x, y)| m.max((x - y).abs()));
+            assert!(err <= 1e-12 * big, "{what}: {err:.2e} against {big:.2e}");
+        };
+        for (t, p) in [(50usize, 7usize), (400, 90)] {
+            let w = Array2::from_shape_fn((t, p).f(), |_| rnd());
+            let (mut g1, mut g2) = (
+                Array2::<f64>::zeros((p, p).f()),
+                Array2::<f64>::zeros((p, p).f()),
+            );
+            Faer::syrk_lower(w.view(), g1.view_mut(), false, Par::Seq);
+            Lapack::syrk_lower(w.view(), g2.view_mut(), false, Par::Seq);
+            let lower = |g: &Array2<f64>| {
+                Array2::from_shape_fn((p, p), |(i, j)| if i >= j { g[[i, j]] } else { 0.0 })
+            };
+            close(&lower(&g1), &lower(&g2), "syrk");
+            let b = Array2::from_shape_fn((p, 5), |_| rnd());
+            let (mut c1, mut c2) = (Array2::<f64>::zeros((t, 5)), Array2::<f64>::zeros((t, 5)));
+            Faer::gemm(1.0, w.view(), b.view(), false, c1.view_mut(), Par::Seq);
+            Lapack::gemm(1.0, w.view(), b.view(), false, c2.view_mut(), Par::Seq);
+            close(&c1, &c2, "gemm");
+            let mut a = lower(&g1);
+            for i in 0..p {
+                a[[i, i]] += 1.0;
+            }
+            let (mut l1, mut l2) = (to_fortran(&a), to_fortran(&a));
+            assert!(
+                Faer::cholesky(l1.view_mut(), Par::Seq)
+                    && Lapack::cholesky(l2.view_mut(), Par::Seq)
+            );
+            close(&lower(&l1), &lower(&l2), "cholesky");
+            let l = lower(&l1);
+            for (lo, tr) in [(true, false), (true, true), (false, false), (false, true)] {
+                let tri = if lo { l.clone() } else { l.t().to_owned() };
+                let (mut x1, mut x2) = (b.clone(), b.clone());
+                Faer::trsm(tri.view(), lo, tr, x1.view_mut(), Par::Seq);
+                Lapack::trsm(tri.view(), lo, tr, x2.view_mut(), Par::Seq);
+                close(&x1, &x2, "trsm");
+            }
+            let (mut q1, mut q2) = (w.clone(), w.clone());
+            let r1 = Faer::qr_thin(q1.view_mut()).unwrap();
+            let r2 = Lapack::qr_thin(q2.view_mut()).unwrap();
+            close(&r1.mapv(f64::abs), &r2.mapv(f64::abs), "R of the thin QR");
+            let r3 = Faer::qr_r(w.clone().view_mut()).unwrap();
+            close(&r3.mapv(f64::abs), &r2.mapv(f64::abs), "R alone");
+            let full = Array2::from_shape_fn((p, p), |(i, j)| a[[i.max(j), i.min(j)]]);
+            let (e1, _) = Faer::sym_eigen(full.view()).unwrap();
+            let (e2, _) = Lapack::sym_eigen(full.view()).unwrap();
+            close(
+                &e1.insert_axis(ndarray::Axis(1)),
+                &e2.insert_axis(ndarray::Axis(1)),
+                "eigenvalues",
+            );
         }
     }
 

@@ -11,7 +11,8 @@ use pulp::{Simd, WithSimd};
 /// Which code path a kernel runs.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub(crate) enum Isa {
-    /// pulp's scalar implementation (one lane).
+    /// pulp's scalar implementation (one lane): forced by the tests.
+    #[cfg_attr(not(test), allow(dead_code))]
     Scalar,
     /// The best this CPU runs (pulp's run-time dispatch).
     Best,
@@ -19,6 +20,7 @@ pub(crate) enum Isa {
 
 impl Isa {
     /// The variants the tests run (Best is Scalar on a CPU without SIMD).
+    #[cfg(test)]
     pub(crate) const ALL: [Isa; 2] = [Isa::Scalar, Isa::Best];
 
     #[inline(always)]

@@ -994,7 +994,7 @@ fn build_info(py: Python<'_>) -> PyResult<Bound<'_, PyDict>> {
     let d = PyDict::new(py);
     d.set_item("backend", crate::kernels::backend_name())?;
     d.set_item("isa", crate::kernels::isa_name())?;
-    d.set_item("kernels_isa", crate::kernels::own_isa_name())?;
+    d.set_item("kernels_isa", crate::kernels::kernels_isa_name())?;
     d.set_item("threads", crate::runtime::get_threads())?;
     d.set_item("version", env!("CARGO_PKG_VERSION"))?;
     Ok(d)
