@@ -164,23 +164,13 @@ pub fn gram(w: ArrayView2<f64>) -> Array2<f64> {
     gram_blocked(w, &|| false).expect("gram without cancellation cannot be interrupted")
 }
 
-/// Largest T P^2 whose Gram matrix is formed by dot products rather than the backend.
-pub(crate) const SMALL_GRAM: f64 = 1.0e6;
-
-/// W'W accumulated over row blocks (each a fraction of a second); between blocks `cancel` is
+/// W'W (full and symmetric, column-major) by the backend's syrk, also for small matrices
+/// (faer's took 5.2 us on a 200 x 25 matrix against 6.8 us by dot products, 83 us on
+/// 1000 x 60 against 380 us), accumulated over row blocks (each a fraction of a second); between blocks `cancel` is
 /// asked whether to stop (then Err(Interrupted)). Over many blocks the block sums are added
 /// pairwise, so a long product (T = 10^7) keeps the accuracy of one block's.
 pub fn gram_blocked(w: ArrayView2<f64>, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Array2<f64>> {
-    let (t, p) = w.dim();
-    // Small: plain dot products of contiguous columns (a backend call costs more than that)
-    if t > 0 && (t as f64) * (p as f64) * (p as f64) <= SMALL_GRAM {
-        if let Some(buf) = w
-            .as_slice_memory_order()
-            .filter(|b| b.len() == t * p && w.t().is_standard_layout())
-        {
-            return Ok(gram_dots(buf, t, p, |_, _| false));
-        }
-    }
+    let p = w.ncols();
     let mut g = gram_lower_in(w, zeros_for_product(p), cancel)?;
     mirror(&mut g, true);
     Ok(g)
@@ -512,50 +502,6 @@ pub(crate) fn null_space(a: ArrayView2<f64>) -> Result<Array2<f64>> {
     let (m, n) = a.dim();
     let v = Backend::right_singular_vectors(a)?;
     Ok(v.slice(ndarray::s![.., m.min(n)..]).to_owned())
-}
-
-/// W'W by dot products of the columns of a column-major T x P buffer, skipping the pairs
-/// (i, j), i >= j, that `skip` names (they stay zero), returned full and symmetric.
-pub(crate) fn gram_dots(
-    buf: &[f64],
-    t: usize,
-    p: usize,
-    skip: impl Fn(usize, usize) -> bool,
-) -> Array2<f64> {
-    let mut g = Array2::<f64>::zeros((p, p).f());
-    let col = |j: usize| &buf[j * t..(j + 1) * t];
-    for j in 0..p {
-        let cj = col(j);
-        let mut i = j;
-        while i < p {
-            if skip(i, j) {
-                i += 1;
-                continue;
-            }
-            // four columns against column j in one pass over the rows (a group may include
-            // pairs `skip` names: computed, then left at zero)
-            if i + 4 <= p {
-                let v = simd::dotn_with(
-                    simd::Isa::Best,
-                    [col(i), col(i + 1), col(i + 2), col(i + 3)],
-                    cj,
-                );
-                for (d, vd) in v.iter().enumerate() {
-                    if !skip(i + d, j) {
-                        g[[i + d, j]] = *vd;
-                        g[[j, i + d]] = *vd;
-                    }
-                }
-                i += 4;
-            } else {
-                let v = dot(col(i), cj);
-                g[[i, j]] = v;
-                g[[j, i]] = v;
-                i += 1;
-            }
-        }
-    }
-    g
 }
 
 /// Copies one triangle of a square matrix onto the other: the lower onto the upper when

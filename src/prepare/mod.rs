@@ -20,7 +20,7 @@ use crate::kernels::{gram, gram_blocked, upper_solve};
 pub(crate) use step0::{
     abs_max, check_rank, cond_of_scaled, orthogonal_unit, rank_tol, refine_fit, y_max_in_range,
 };
-use step0::{gram_across, shared_regressors, step_zero, y_in_range};
+use step0::{shared_regressors, step_zero, y_in_range};
 
 /// What one equation contributes after orthonormalisation.
 #[derive(Debug, Clone)]
@@ -134,11 +134,7 @@ impl Prepared {
         if matrix_free {
             return Ok(done(factors, CrossProducts::MatrixFree { w }));
         }
-        let mut g = if (t as f64) * ((k + n) as f64).powi(2) <= crate::kernels::SMALL_GRAM {
-            gram_across(&w, &offsets)
-        } else {
-            gram_blocked(w.view(), cancel)?
-        };
+        let mut g = gram_blocked(w.view(), cancel)?;
         drop(w);
         // Exact by construction: orthonormal columns within an equation, q_i orthogonal to Q_i.
         for i in 0..n {

@@ -47,28 +47,6 @@ pub(super) fn step_zero(
     Ok((factors, unsafe { w.assume_init() }))
 }
 
-/// W'W for a small W (column-major, all columns written), by dot products between the columns
-/// of different equations only: the blocks within an equation are known (I and 0) and set by
-/// the caller.
-pub(super) fn gram_across(w: &Array2<f64>, offsets: &[usize]) -> Array2<f64> {
-    let (t, p) = w.dim();
-    let n = offsets.len() - 1;
-    let k = offsets[n];
-    let buf = w
-        .as_slice_memory_order()
-        .expect("W is column-major and contiguous");
-    let owner: Vec<usize> = (0..p)
-        .map(|c| {
-            if c < k {
-                offsets.partition_point(|&o| o <= c) - 1
-            } else {
-                c - k
-            }
-        })
-        .collect();
-    crate::kernels::gram_dots(buf, t, p, |i, j| owner[i] == owner[j])
-}
-
 /// The largest |value| (0 for none; NaN is skipped, as `f64::max` does: non-finite values are
 /// refused by their own check).
 pub(crate) fn abs_max<'a>(y: impl IntoIterator<Item = &'a f64>) -> f64 {
