@@ -114,7 +114,7 @@ except MemoryError:
 
 
 @pytest.mark.skipif(not os.path.exists("/proc/self/statm"), reason="needs Linux /proc")
-@pytest.mark.parametrize("extra_mb", [16, 64, 256, 2048])
+@pytest.mark.parametrize("extra_mb", [16, 64, 256, 4096])
 def test_a_fit_under_a_cap_on_address_space_fails_cleanly_or_fits(extra_mb):
     """Address space capped at what the process uses plus `extra_mb`: the fit raises MemoryError
     (too little) or succeeds (enough), within the timeout, and the process exits normally. The
@@ -124,7 +124,9 @@ def test_a_fit_under_a_cap_on_address_space_fails_cleanly_or_fits(extra_mb):
     outcome = json.loads(proc.stdout.strip().splitlines()[-1])
     print(f"RLIMIT_AS = used + {extra_mb} MB: {outcome}")
     assert outcome in ("MemoryError", "fitted")
-    if extra_mb >= 2048:
+    if extra_mb >= 4096:
+        # the data pass's 100 MB, and the address space faer's product kernels reserve for
+        # each thread (twice the last-level cache: 600 MB on a VM reporting 300 MB of L3)
         assert outcome == "fitted"
     if extra_mb <= 16:
         assert outcome == "MemoryError"

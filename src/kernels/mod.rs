@@ -102,6 +102,45 @@ pub fn kernels_isa_name() -> &'static str {
     simd::best_name()
 }
 
+/// The size of the CPU's largest cache (cpuid's deterministic cache parameters on x86-64: leaf 4
+/// on Intel, 0x8000001D on AMD; 1 MiB when it cannot be read). faer's matrix products on x86-64
+/// reserve twice this much per thread for their packed operands.
+#[cfg_attr(not(any(feature = "python", test)), allow(dead_code))]
+pub fn last_level_cache_bytes() -> usize {
+    static BYTES: std::sync::OnceLock<usize> = std::sync::OnceLock::new();
+    *BYTES.get_or_init(|| {
+        let mut best = 0usize;
+        #[cfg(target_arch = "x86_64")]
+        {
+            use std::arch::x86_64::{__cpuid, __cpuid_count};
+            let max_basic = __cpuid(0).eax;
+            let max_ext = __cpuid(0x8000_0000).eax;
+            for leaf in [4u32, 0x8000_001D] {
+                if (leaf < 0x8000_0000 && leaf > max_basic)
+                    || (leaf >= 0x8000_0000 && leaf > max_ext)
+                {
+                    continue;
+                }
+                for sub in 0..16 {
+                    let r = __cpuid_count(leaf, sub);
+                    if r.eax & 0x1f == 0 {
+                        break;
+                    }
+                    let ways = ((r.ebx >> 22) & 0x3ff) as usize + 1;
+                    let partitions = ((r.ebx >> 12) & 0x3ff) as usize + 1;
+                    let line = (r.ebx & 0xfff) as usize + 1;
+                    let sets = r.ecx as usize + 1;
+                    best = best.max(ways * partitions * line * sets);
+                }
+                if best > 0 {
+                    break;
+                }
+            }
+        }
+        best.max(1 << 20)
+    })
+}
+
 /// An ndarray view as a faer matrix (no copy; any strides).
 #[cfg(any(not(feature = "lapack"), test))]
 pub(crate) fn faer_ref(a: ArrayView2<'_, f64>) -> faer::MatRef<'_, f64> {
@@ -686,6 +725,30 @@ pub fn fmt_num(x: f64) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The last-level cache size from cpuid against the kernel's account of it (Linux sysfs,
+    /// the largest `size` under /sys/devices/system/cpu/cpu0/cache), where there is one.
+    #[test]
+    fn the_last_level_cache_size_matches_the_kernel() {
+        let ours = last_level_cache_bytes();
+        assert!(ours >= 1 << 20);
+        let dirs = std::fs::read_dir("/sys/devices/system/cpu/cpu0/cache");
+        let mut sysfs = 0usize;
+        for d in dirs.into_iter().flatten().flatten() {
+            if let Ok(size) = std::fs::read_to_string(d.path().join("size")) {
+                if let Some(kb) = size
+                    .trim()
+                    .strip_suffix('K')
+                    .and_then(|v| v.parse::<usize>().ok())
+                {
+                    sysfs = sysfs.max(kb << 10);
+                }
+            }
+        }
+        if sysfs >= 1 << 20 && cfg!(target_arch = "x86_64") {
+            assert_eq!(ours, sysfs);
+        }
+    }
 
     /// The views faer gets are the arrays themselves (no copy): every element read through the
     /// faer matrix is the ndarray element, for row-major, column-major, sliced, strided and

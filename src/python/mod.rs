@@ -158,22 +158,32 @@ fn run_interruptible<T: Send>(
 /// (Rust aborts on a failed allocation), so the memory a step needs at its peak, `bytes`, plus
 /// a margin for the backend's own buffers and threads, is reserved first (never touched, given
 /// back at once). A reservation that fails raises MemoryError instead.
+///
+/// The margin covers the backend's packing buffers as well: the matrix-product kernels faer
+/// uses on x86-64 reserve twice the last-level cache per thread, once (300 MB of L3 reported on
+/// this VM: 600 MB of address space a thread, never touched in full), counted for the pool's
+/// threads and the caller.
 fn room_for(bytes: f64) -> PyResult<()> {
-    const MARGIN: usize = 128 << 20;
     if !bytes.is_finite() || bytes < 0.0 {
         return Ok(());
     }
-    let want = (bytes as usize).saturating_add(MARGIN);
+    let threads = crate::runtime::get_threads() + 1;
+    let margin = (BUFFERS + 2 * crate::kernels::last_level_cache_bytes()).saturating_mul(threads);
+    let want = (bytes as usize).saturating_add(margin);
     let mut probe: Vec<u8> = Vec::new();
     probe.try_reserve_exact(want).map_err(|_| {
         pyo3::exceptions::PyMemoryError::new_err(format!(
-            "this step needs about {:.0} MB of memory (plus {} MB for its buffers), more than this \
-             process may allocate (a cap on its address space, ulimit -v, or the machine's memory)",
+            "this step needs about {:.0} MB of memory (plus {} MB of address space for its threads' \
+             buffers), more than this process may allocate (a cap on its address space, ulimit -v, \
+             or the machine's memory)",
             bytes / 1e6,
-            MARGIN >> 20
+            margin >> 20
         ))
     })
 }
+
+/// Address space a thread's other buffers may take (stack, workspaces), in `room_for`.
+const BUFFERS: usize = 32 << 20;
 
 /// Bytes of the data pass's largest buffers: W (T x P) and its Gram matrix (P x P), or W
 /// alone (matrix-free).
