@@ -163,8 +163,10 @@ fn run_interruptible<T: Send>(
 /// uses on x86-64 reserve twice the last-level cache per thread, once (300 MB of L3 reported on
 /// this VM: 600 MB of address space a thread, never touched in full), counted for the pool's
 /// threads and the caller.
+/// Steps below SMALL_STEP bytes are not checked (the reservation, an mmap and munmap of a
+/// few GB, cost more than a small fit: 10-20 us).
 fn room_for(bytes: f64) -> PyResult<()> {
-    if !bytes.is_finite() || bytes < 0.0 {
+    if !bytes.is_finite() || bytes < SMALL_STEP {
         return Ok(());
     }
     let threads = crate::runtime::get_threads() + 1;
@@ -181,6 +183,9 @@ fn room_for(bytes: f64) -> PyResult<()> {
         ))
     })
 }
+
+/// Memory of a step below which `room_for` does not check.
+const SMALL_STEP: f64 = 16e6;
 
 /// Address space a thread's other buffers may take (stack, workspaces), in `room_for`.
 const BUFFERS: usize = 32 << 20;
