@@ -20,9 +20,6 @@ fn block_variances(a: &Array2<f64>, b: &Array2<f64>, mut out: ndarray::ArrayView
     }
 }
 
-/// Rows and columns c.. x c..d of L^-1, for a factor in either storage.
-type PanelOfInverse<'a> = Box<dyn Fn(usize, usize) -> Result<Array2<f64>> + 'a>;
-
 /// Columns of whole equations per panel of L^-1 in `coef_variances` (a K x PANEL block).
 const PANEL: usize = 256;
 
@@ -209,14 +206,12 @@ pub(crate) fn inverse_panels(
     est: &Estimate,
     mut visit: impl FnMut(usize, ndarray::ArrayView2<f64>),
 ) -> Result<bool> {
-    let panel: Option<PanelOfInverse<'_>> = match &est.weight {
-        Weight::Chol(l) => Some(Box::new(move |c, d| inverse_columns(l, c, d))),
-        _ => None,
-    };
-    let Some(inverse_columns) = panel else {
+    let Weight::Chol(l) = &est.weight else {
         return Ok(false);
     };
+    // the panels: (first equation, one past the last)
     let n = prep.n_eq();
+    let mut panels = Vec::new();
     let mut first = 0;
     while first < n {
         let c = prep.offsets[first];
@@ -224,15 +219,48 @@ pub(crate) fn inverse_panels(
         while last < n && prep.offsets[last + 1] - c <= PANEL {
             last += 1;
         }
-        let x = inverse_columns(c, prep.offsets[last])?;
-        for i in first..last {
-            let (a, b) = (prep.offsets[i] - c, prep.offsets[i + 1] - c);
-            visit(i, x.slice(s![a.., a..b]));
-        }
+        panels.push((first, last));
         first = last;
+    }
+    // large factors: as many panels at a time as the pool has threads, each solved on one
+    // thread (a panel's solve threaded by the backend waited in its barriers on a shared host);
+    // small ones: one panel after the other
+    let k = prep.n_coef();
+    let at_once =
+        if (k as f64).powi(3) >= PARALLEL_PANELS_FLOPS && crate::runtime::parallel_allowed() {
+            crate::runtime::get_threads()
+        } else {
+            1
+        };
+    for group in panels.chunks(at_once) {
+        let solve = |&(first, last): &(usize, usize)| -> Result<Array2<f64>> {
+            let (c, d) = (prep.offsets[first], prep.offsets[last]);
+            if at_once > 1 {
+                crate::runtime::sequential(|| inverse_columns(l, c, d))
+            } else {
+                inverse_columns(l, c, d)
+            }
+        };
+        let xs: Vec<Result<Array2<f64>>> = if at_once > 1 {
+            use rayon::prelude::*;
+            crate::runtime::install(|| group.par_iter().with_max_len(1).map(solve).collect())
+        } else {
+            group.iter().map(solve).collect()
+        };
+        for (&(first, last), x) in group.iter().zip(xs) {
+            let x = x?;
+            let c = prep.offsets[first];
+            for i in first..last {
+                let (a, b) = (prep.offsets[i] - c, prep.offsets[i + 1] - c);
+                visit(i, x.slice(s![a.., a..b]));
+            }
+        }
     }
     Ok(true)
 }
+
+/// K^3 above which the panels of L^-1 are solved several at a time.
+const PARALLEL_PANELS_FLOPS: f64 = 1e9;
 
 /// Variances of the predicted means x'b_i for new regressor rows (`xs[i]`: m x K_i, the same
 /// m for every equation), of the covariance kind given, without forming x V_ii x' from the

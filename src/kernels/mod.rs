@@ -287,9 +287,15 @@ fn syrk_rows(a: ArrayView2<f64>, mut c: ArrayViewMut2<f64>, accumulate: bool) {
     let (t, p) = a.dim();
     let flops = (t * p * p) as f64;
     let pieces = (t / ROW_SPLIT_MIN_ROWS).clamp(1, ROW_SPLIT_PIECES);
-    if p > ROW_SPLIT_MAX_P || pieces < 2 || flops < crate::runtime::PARALLEL_MIN_FLOPS {
+    if pieces < 2
+        || flops < crate::runtime::PARALLEL_MIN_FLOPS
+        || !crate::runtime::parallel_allowed()
+    {
         crate::runtime::with_par(flops, |par| Backend::syrk_lower(a, c, accumulate, par));
         return;
+    }
+    if p > ROW_SPLIT_MAX_P {
+        return syrk_panels(a, c, accumulate);
     }
     let bounds: Vec<usize> = (0..=pieces).map(|i| i * t / pieces).collect();
     let one = |i: usize| {
@@ -325,6 +331,53 @@ fn syrk_rows(a: ArrayView2<f64>, mut c: ArrayViewMut2<f64>, accumulate: bool) {
         c.assign(&parts[0]);
     }
 }
+
+/// The lower triangle of A'A into C by column panels of PANEL_COLUMNS, one panel a task on the
+/// pool: its diagonal block by syrk, the rows below it by one product, each on one thread. For
+/// wide products, where row pieces would need a P x P array each; like them, no barriers (the
+/// backend's own threading of the (d)-sized product waited in them for a third of its time
+/// on a shared host), and each entry is formed by one call on one thread, so the result does
+/// not depend on the thread count.
+fn syrk_panels(a: ArrayView2<f64>, mut c: ArrayViewMut2<f64>, accumulate: bool) {
+    use rayon::prelude::*;
+    let p = a.ncols();
+    let mut panels: Vec<(usize, ArrayViewMut2<f64>)> = c
+        .axis_chunks_iter_mut(ndarray::Axis(1), PANEL_COLUMNS)
+        .enumerate()
+        .map(|(i, v)| (i * PANEL_COLUMNS, v))
+        .collect();
+    // the widest products (the leftmost panels) first
+    panels.sort_by_key(|(j0, _)| *j0);
+    crate::runtime::install(|| {
+        panels
+            .into_par_iter()
+            .with_max_len(1)
+            .for_each(|(j0, mut panel)| {
+                let w = panel.ncols();
+                let (top, below) = panel.view_mut().split_at(ndarray::Axis(0), j0 + w);
+                let diag = top.slice_move(ndarray::s![j0.., ..]);
+                Backend::syrk_lower(
+                    a.slice(ndarray::s![.., j0..j0 + w]),
+                    diag,
+                    accumulate,
+                    Par::Seq,
+                );
+                if j0 + w < p {
+                    Backend::gemm(
+                        1.0,
+                        a.slice(ndarray::s![.., j0 + w..]).t(),
+                        a.slice(ndarray::s![.., j0..j0 + w]),
+                        accumulate,
+                        below,
+                        Par::Seq,
+                    );
+                }
+            })
+    });
+}
+
+/// Columns per panel of `syrk_panels`.
+const PANEL_COLUMNS: usize = 256;
 
 /// Widest product `syrk_rows` splits by rows (its pieces' partial products are P x P each).
 const ROW_SPLIT_MAX_P: usize = 1024;
