@@ -7,7 +7,12 @@ use std::time::Instant;
 
 fn cpu_seconds() -> f64 {
     let stat = std::fs::read_to_string("/proc/self/stat").unwrap();
-    let fields: Vec<&str> = stat.rsplit(')').next().unwrap().split_whitespace().collect();
+    let fields: Vec<&str> = stat
+        .rsplit(')')
+        .next()
+        .unwrap()
+        .split_whitespace()
+        .collect();
     (fields[11].parse::<f64>().unwrap() + fields[12].parse::<f64>().unwrap()) / 100.0
 }
 
@@ -15,16 +20,25 @@ fn main() {
     let (g, n, t, k) = (10_000usize, 3usize, 60usize, 3usize);
     let mut seed = 7u64;
     let mut rnd = || {
-        seed = seed.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+        seed = seed
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
         (seed >> 11) as f64 / (1u64 << 53) as f64 - 0.5
     };
-    let xs: Vec<Array2<f64>> =
-        (0..g * n).map(|_| Array2::from_shape_fn((t, k), |(_, j)| if j == 0 { 1.0 } else { rnd() })).collect();
-    let ys: Vec<Array1<f64>> = (0..g * n).map(|_| Array1::from_shape_fn(t, |_| rnd())).collect();
+    let xs: Vec<Array2<f64>> = (0..g * n)
+        .map(|_| Array2::from_shape_fn((t, k), |(_, j)| if j == 0 { 1.0 } else { rnd() }))
+        .collect();
+    let ys: Vec<Array1<f64>> = (0..g * n)
+        .map(|_| Array1::from_shape_fn(t, |_| rnd()))
+        .collect();
     let systems: Vec<SystemData> = (0..g)
         .map(|s| {
             SystemData::new(
-                (0..n).map(|i| Equation::new(format!("e{i}"), ys[s * n + i].view(), xs[s * n + i].view())).collect(),
+                (0..n)
+                    .map(|i| {
+                        Equation::new(format!("e{i}"), ys[s * n + i].view(), xs[s * n + i].view())
+                    })
+                    .collect(),
             )
         })
         .collect();

@@ -20,18 +20,31 @@ pub enum SurError {
         "equation '{equation}': {value} in {} at row {row}; remove or impute that row (the sample must be common to all equations)",
         match .column { Some(c) => format!("regressor '{c}'"), None => "the dependent variable".to_string() }
     )]
-    NonFinite { equation: String, row: usize, column: Option<String>, value: String },
+    NonFinite {
+        equation: String,
+        row: usize,
+        column: Option<String>,
+        value: String,
+    },
 
     /// Not enough observations to estimate an equation.
     #[error(
         "equation '{equation}' has {n_regressors} regressors but only {n_obs} observations; \
          it needs more observations than regressors (drop regressors or add data)"
     )]
-    TooFewObservations { equation: String, n_obs: usize, n_regressors: usize },
+    TooFewObservations {
+        equation: String,
+        n_obs: usize,
+        n_regressors: usize,
+    },
 
     /// A regressor is (numerically) a linear combination of the earlier ones.
     #[error("equation '{equation}': regressor '{column}' {detail}; drop it or reparameterise")]
-    Collinear { equation: String, column: String, detail: String },
+    Collinear {
+        equation: String,
+        column: String,
+        detail: String,
+    },
 
     /// Values of a magnitude that leaves double precision no room for their sums of squares.
     #[error("equation '{equation}': {detail}; rescale it to moderate units (divide or multiply by a power of ten: its coefficients scale with it)")]
@@ -39,11 +52,17 @@ pub enum SurError {
 
     /// The cross-equation covariance cannot be inverted.
     #[error("{detail}")]
-    SingularOmega { equations: Vec<String>, detail: String },
+    SingularOmega {
+        equations: Vec<String>,
+        detail: String,
+    },
 
     /// A restriction that cannot be imposed (index: its position, 0-based, when one is to blame).
     #[error("{}{detail}", match .index { Some(i) => format!("restriction {i} "), None => String::new() })]
-    InvalidRestriction { index: Option<usize>, detail: String },
+    InvalidRestriction {
+        index: Option<usize>,
+        detail: String,
+    },
 
     /// An option value outside its domain.
     #[error("{0}")]
@@ -77,7 +96,10 @@ impl SurError {
     }
 
     pub(crate) fn numerical(context: &str, err: impl std::fmt::Display) -> Self {
-        SurError::Numerical { context: context.to_string(), detail: err.to_string() }
+        SurError::Numerical {
+            context: context.to_string(),
+            detail: err.to_string(),
+        }
     }
 }
 

@@ -2,10 +2,12 @@
 //! blockwise, never forming the NT x NT covariance.
 //!
 //! The core knows nothing of Python: `cargo test` runs it alone. The bindings live in
-//! `python.rs`, compiled only with the `python` feature (maturin turns it on).
+//! `python/`, compiled only with the `python` feature (maturin turns it on). Dense linear
+//! algebra comes from faer (or, with the `lapack` feature, a vendor LAPACK) through
+//! `kernels`; parallel work runs on blocksur's own rayon pool (`runtime`).
 //!
 //! ```
-//! use blocksur::{Equation, FitOptions, Method, Prepared, SystemData};
+//! use blocksur::{Equation, Estimation, FitOptions, Method, Prepared, SystemData};
 //! use ndarray::{array, Array2};
 //! let x = Array2::from_shape_fn((6, 2), |(t, j)| if j == 0 { 1.0 } else { t as f64 });
 //! let y1 = array![1.0, 2.1, 2.9, 4.2, 5.0, 5.8];
@@ -20,38 +22,27 @@
 //! assert!(fit.converged);
 //! ```
 
-pub mod alloc;
 pub mod batch;
-pub mod cg;
+pub mod data;
 pub mod error;
 pub mod estimate;
-mod gram;
-pub mod linalg;
-pub mod packed;
-mod pool;
+pub(crate) mod kernels;
 pub mod prepare;
-mod small;
+pub mod runtime;
 pub mod stream;
-pub mod system;
 
 #[cfg(feature = "python")]
 mod python;
 
+pub use data::{Equation, SystemData};
 pub use error::{Result, SurError};
-pub use estimate::{CovKind, Divisor, Estimate, FitOptions, Method, Restrictions};
+pub use estimate::{
+    fgls_from_data, CovKind, Divisor, Estimate, Estimation, FitOptions, Method, Restrictions,
+};
+pub use kernels::{backend_name, isa_name, kernels_isa_name};
 pub use prepare::{CrossProducts, EquationFactor, Prepared};
+pub use runtime::{get_threads, set_threads};
 pub use stream::{CrossStats, Pass2Basis, RowFactors, RowSummary};
-pub use system::{Equation, SystemData};
-
-// Large buffers on whole huge pages (see `alloc`): for the extension module and the crate's
-// own tests; a Rust program linking the core keeps its own allocator.
-#[cfg(any(feature = "python", test))]
-#[global_allocator]
-static GLOBAL: alloc::BigPageAlloc = alloc::BigPageAlloc;
-
-// Link the BLAS/LAPACK implementation (system OpenBLAS).
-extern crate blas_src;
-extern crate openblas_src;
 
 #[cfg(test)]
 mod tests;

@@ -1,11 +1,73 @@
 //! Unit tests of the core against the dense textbook formulas (built here with plain ndarray
-//! and LAPACK, never through the blockwise code) and against theorems of the field.
+//! and plain loops, never through the blockwise code or the backend) and against theorems of
+//! the field.
 
 use approx::assert_relative_eq;
-use ndarray::{s, Array1, Array2, ShapeBuilder};
-use ndarray_linalg::Inverse;
+use ndarray::{s, Array1, Array2};
 
-use crate::{Divisor, Equation, FitOptions, Method, Prepared, SurError, SystemData};
+use crate::{Divisor, Equation, Estimation, FitOptions, Method, Prepared, SurError, SystemData};
+
+/// The inverse of a square matrix by Gauss-Jordan elimination with partial pivoting: the
+/// textbook reference of these tests (independent of the backend).
+trait Inverse {
+    fn inv(&self) -> Result<Array2<f64>, &'static str>;
+}
+
+impl Inverse for Array2<f64> {
+    fn inv(&self) -> Result<Array2<f64>, &'static str> {
+        let n = self.nrows();
+        let mut a = self.to_owned();
+        let mut b = Array2::<f64>::eye(n);
+        for c in 0..n {
+            let piv = (c..n)
+                .max_by(|&i, &j| a[[i, c]].abs().total_cmp(&a[[j, c]].abs()))
+                .ok_or("empty")?;
+            if a[[piv, c]] == 0.0 {
+                return Err("singular");
+            }
+            for j in 0..n {
+                a.swap([c, j], [piv, j]);
+                b.swap([c, j], [piv, j]);
+            }
+            let d = a[[c, c]];
+            for j in 0..n {
+                a[[c, j]] /= d;
+                b[[c, j]] /= d;
+            }
+            for i in 0..n {
+                if i != c && a[[i, c]] != 0.0 {
+                    let f = a[[i, c]];
+                    for j in 0..n {
+                        a[[i, j]] -= f * a[[c, j]];
+                        b[[i, j]] -= f * b[[c, j]];
+                    }
+                }
+            }
+        }
+        Ok(b)
+    }
+}
+
+/// The lower Cholesky factor by the textbook loops (Cholesky-Banachiewicz), or None.
+fn textbook_cholesky(a: &Array2<f64>) -> Option<Array2<f64>> {
+    let n = a.nrows();
+    let mut l = Array2::<f64>::zeros((n, n));
+    for i in 0..n {
+        for j in 0..=i {
+            let s: f64 = (0..j).map(|k| l[[i, k]] * l[[j, k]]).sum();
+            if i == j {
+                let d = a[[i, i]] - s;
+                if d <= 0.0 {
+                    return None;
+                }
+                l[[i, i]] = d.sqrt();
+            } else {
+                l[[i, j]] = (a[[i, j]] - s) / l[[j, j]];
+            }
+        }
+    }
+    Some(l)
+}
 
 /// A small deterministic pseudo-random generator (xorshift), so the tests need no extra crate.
 struct Rng(u64);
@@ -37,9 +99,12 @@ fn system(ks: &[usize], t: usize, seed: u64) -> (Vec<Array1<f64>>, Vec<Array2<f6
                 x[[r, j]] = rng.normal() * (1.0 + j as f64);
             }
         }
-        let beta: Array1<f64> = (0..ks[i]).map(|j| 1.0 + 0.5 * j as f64 - 0.3 * i as f64).collect();
-        let e: Array1<f64> =
-            (0..t).map(|r| (1.0 + 0.3 * i as f64) * (0.77 * common[r] + 0.64 * rng.normal())).collect();
+        let beta: Array1<f64> = (0..ks[i])
+            .map(|j| 1.0 + 0.5 * j as f64 - 0.3 * i as f64)
+            .collect();
+        let e: Array1<f64> = (0..t)
+            .map(|r| (1.0 + 0.3 * i as f64) * (0.77 * common[r] + 0.64 * rng.normal()))
+            .collect();
         ys.push(x.dot(&beta) + e);
         xs.push(x);
     }
@@ -48,12 +113,20 @@ fn system(ks: &[usize], t: usize, seed: u64) -> (Vec<Array1<f64>>, Vec<Array2<f6
 
 fn data<'a>(ys: &'a [Array1<f64>], xs: &'a [Array2<f64>]) -> SystemData<'a> {
     SystemData::new(
-        ys.iter().zip(xs).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.view())).collect(),
+        ys.iter()
+            .zip(xs)
+            .enumerate()
+            .map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), x.view()))
+            .collect(),
     )
 }
 
 /// Dense GLS: b = (X' (Omega^-1 (x) I) X)^-1 X' (Omega^-1 (x) I) y with block-diagonal X.
-fn dense_gls(ys: &[Array1<f64>], xs: &[Array2<f64>], omega: &Array2<f64>) -> (Array1<f64>, Array2<f64>) {
+fn dense_gls(
+    ys: &[Array1<f64>],
+    xs: &[Array2<f64>],
+    omega: &Array2<f64>,
+) -> (Array1<f64>, Array2<f64>) {
     let n = ys.len();
     let t = ys[0].len();
     let k: usize = xs.iter().map(|x| x.ncols()).sum();
@@ -61,7 +134,8 @@ fn dense_gls(ys: &[Array1<f64>], xs: &[Array2<f64>], omega: &Array2<f64>) -> (Ar
     let mut yb = Array1::<f64>::zeros(n * t);
     let mut off = 0;
     for i in 0..n {
-        xb.slice_mut(s![i * t..(i + 1) * t, off..off + xs[i].ncols()]).assign(&xs[i]);
+        xb.slice_mut(s![i * t..(i + 1) * t, off..off + xs[i].ncols()])
+            .assign(&xs[i]);
         yb.slice_mut(s![i * t..(i + 1) * t]).assign(&ys[i]);
         off += xs[i].ncols();
     }
@@ -86,7 +160,13 @@ fn ols(y: &Array1<f64>, x: &Array2<f64>) -> Array1<f64> {
 }
 
 fn opts(method: Method, divisor: Divisor) -> FitOptions {
-    FitOptions { method, divisor, tol: 1e-12, max_iter: 500, ..Default::default() }
+    FitOptions {
+        method,
+        divisor,
+        tol: 1e-12,
+        max_iter: 500,
+        ..Default::default()
+    }
 }
 
 #[test]
@@ -132,7 +212,11 @@ fn omega_from_ols_residuals_uses_the_divisor() {
     let ml = prep.estimate(&opts(Method::Fgls, Divisor::Ml)).unwrap();
     let dof = prep.estimate(&opts(Method::Fgls, Divisor::Dof)).unwrap();
     assert_relative_eq!(ml.omega[[0, 1]], e0.dot(&e1) / 25.0, max_relative = 1e-12);
-    assert_relative_eq!(dof.omega[[0, 1]], e0.dot(&e1) / (22.0f64 * 23.0).sqrt(), max_relative = 1e-12);
+    assert_relative_eq!(
+        dof.omega[[0, 1]],
+        e0.dot(&e1) / (22.0f64 * 23.0).sqrt(),
+        max_relative = 1e-12
+    );
     assert_relative_eq!(dof.omega[[1, 1]], e1.dot(&e1) / 23.0, max_relative = 1e-12);
 }
 
@@ -142,15 +226,27 @@ fn iterated_fit_reaches_the_ml_fixed_point() {
     let (ys, xs) = system(&[2, 3, 3, 2], 50, 5);
     let d = data(&ys, &xs);
     let prep = Prepared::new(&d).unwrap();
-    let est = prep.estimate(&opts(Method::IteratedFgls, Divisor::Ml)).unwrap();
+    let est = prep
+        .estimate(&opts(Method::IteratedFgls, Divisor::Ml))
+        .unwrap();
     assert!(est.converged);
     assert_eq!(est.criterion_path.len(), est.n_iter);
     let e = d.residuals(est.coef.as_slice().unwrap());
     let s = e.t().dot(&e) / 50.0;
     for i in 0..4 {
         for j in 0..4 {
-            assert_relative_eq!(est.omega[[i, j]], s[[i, j]], max_relative = 1e-9, epsilon = 1e-12);
-            assert_relative_eq!(est.resid_crossprod()[[i, j]] / 50.0, s[[i, j]], max_relative = 1e-10, epsilon = 1e-13);
+            assert_relative_eq!(
+                est.omega[[i, j]],
+                s[[i, j]],
+                max_relative = 1e-9,
+                epsilon = 1e-12
+            );
+            assert_relative_eq!(
+                est.resid_crossprod()[[i, j]] / 50.0,
+                s[[i, j]],
+                max_relative = 1e-10,
+                epsilon = 1e-13
+            );
         }
     }
     // and it is the GLS estimate for its own Omega
@@ -167,9 +263,14 @@ fn identical_regressors_give_ols() {
     let x = xs[0].clone();
     let xs2 = vec![x.clone(), x.clone(), x.clone()];
     let prep = Prepared::new(&data(&ys, &xs2)).unwrap();
-    assert!(matches!(prep.cross, crate::CrossProducts::SharedRegressors { .. }));
+    assert!(matches!(
+        prep.cross,
+        crate::CrossProducts::SharedRegressors { .. }
+    ));
     let o = prep.estimate(&opts(Method::Ols, Divisor::Ml)).unwrap();
-    let g = prep.estimate(&opts(Method::IteratedFgls, Divisor::Ml)).unwrap();
+    let g = prep
+        .estimate(&opts(Method::IteratedFgls, Divisor::Ml))
+        .unwrap();
     assert_eq!(g.n_iter, 1);
     for j in 0..9 {
         assert_relative_eq!(o.coef[j], g.coef[j], max_relative = 1e-14);
@@ -191,7 +292,10 @@ fn shared_and_general_paths_agree() {
     let (ys, xs) = system(&[3, 3], 30, 13);
     let xs2 = vec![xs[0].clone(), xs[0].clone()];
     let prep = Prepared::new(&data(&ys, &xs2)).unwrap();
-    assert!(matches!(prep.cross, crate::CrossProducts::SharedRegressors { .. }));
+    assert!(matches!(
+        prep.cross,
+        crate::CrossProducts::SharedRegressors { .. }
+    ));
     // the general path on the same numbers: add a zero-effect column to break the identity
     let mut x_aug = xs[0].clone();
     x_aug.column_mut(2).mapv_inplace(|v| v * (1.0 + 1e-9));
@@ -219,7 +323,11 @@ fn large_means_do_not_cost_digits() {
     let s = e.t().dot(&e);
     for i in 0..2 {
         for j in 0..2 {
-            assert_relative_eq!(est.resid_crossprod()[[i, j]], s[[i, j]], max_relative = 1e-7);
+            assert_relative_eq!(
+                est.resid_crossprod()[[i, j]],
+                s[[i, j]],
+                max_relative = 1e-7
+            );
         }
     }
 }
@@ -229,7 +337,12 @@ fn errors_name_equation_row_and_column() {
     let (mut ys, mut xs) = system(&[3, 3], 20, 1);
     ys[1][7] = f64::NAN;
     match Prepared::new(&data(&ys, &xs)) {
-        Err(SurError::NonFinite { equation, row, column, .. }) => {
+        Err(SurError::NonFinite {
+            equation,
+            row,
+            column,
+            ..
+        }) => {
             assert_eq!((equation.as_str(), row, column), ("e1", 7, None));
         }
         other => panic!("expected NonFinite, got {other:?}"),
@@ -237,8 +350,16 @@ fn errors_name_equation_row_and_column() {
     ys[1][7] = 1.0;
     xs[0][[4, 2]] = f64::INFINITY;
     match Prepared::new(&data(&ys, &xs)) {
-        Err(SurError::NonFinite { equation, row, column, value }) => {
-            assert_eq!((equation.as_str(), row, column.as_deref(), value.as_str()), ("e0", 4, Some("x2"), "inf"));
+        Err(SurError::NonFinite {
+            equation,
+            row,
+            column,
+            value,
+        }) => {
+            assert_eq!(
+                (equation.as_str(), row, column.as_deref(), value.as_str()),
+                ("e0", 4, Some("x2"), "inf")
+            );
         }
         other => panic!("expected NonFinite, got {other:?}"),
     }
@@ -250,16 +371,29 @@ fn errors_name_equation_row_and_column() {
     x3.column_mut(3).assign(&(&xs[1].column(1) * 2.0 + 3.0));
     let xs2 = vec![xs[0].clone(), x3];
     match Prepared::new(&data(&ys, &xs2)) {
-        Err(SurError::Collinear { equation, column, detail }) => {
+        Err(SurError::Collinear {
+            equation,
+            column,
+            detail,
+        }) => {
             assert_eq!((equation.as_str(), column.as_str()), ("e1", "x3"));
-            assert!(detail.contains("'x0'") && detail.contains("'x1'"), "{detail}");
+            assert!(
+                detail.contains("'x0'") && detail.contains("'x1'"),
+                "{detail}"
+            );
         }
         other => panic!("expected Collinear, got {other:?}"),
     }
     let short_y: Vec<Array1<f64>> = ys.iter().map(|y| y.slice(s![..3]).to_owned()).collect();
     let short_x: Vec<Array2<f64>> = xs.iter().map(|x| x.slice(s![..3, ..]).to_owned()).collect();
-    assert!(matches!(Prepared::new(&data(&short_y, &short_x)), Err(SurError::TooFewObservations { .. })));
-    assert!(matches!(Prepared::new(&SystemData::new(vec![])), Err(SurError::EmptySystem)));
+    assert!(matches!(
+        Prepared::new(&data(&short_y, &short_x)),
+        Err(SurError::TooFewObservations { .. })
+    ));
+    assert!(matches!(
+        Prepared::new(&SystemData::new(vec![])),
+        Err(SurError::EmptySystem)
+    ));
 }
 
 #[test]
@@ -267,13 +401,16 @@ fn budget_shares_give_a_singular_omega_naming_the_equations() {
     let t = 30;
     let mut rng = Rng(99);
     let x = Array2::from_shape_fn((t, 2), |(r, j)| if j == 0 { 1.0 } else { r as f64 / 10.0 });
-    let a: Array1<f64> = (0..t).map(|r| 0.3 + 0.01 * r as f64 + 0.02 * rng.normal()).collect();
+    let a: Array1<f64> = (0..t)
+        .map(|r| 0.3 + 0.01 * r as f64 + 0.02 * rng.normal())
+        .collect();
     let b: Array1<f64> = (0..t).map(|_| 0.3 + 0.02 * rng.normal()).collect();
     let c = a.mapv(|v| 1.0 - v) - &b;
     let x2 = x.clone();
     let mut x3 = Array2::<f64>::zeros((t, 3));
     x3.slice_mut(s![.., ..2]).assign(&x);
-    x3.column_mut(2).assign(&(0..t).map(|_| rng.normal()).collect::<Array1<f64>>());
+    x3.column_mut(2)
+        .assign(&(0..t).map(|_| rng.normal()).collect::<Array1<f64>>());
     let d = SystemData::new(vec![
         Equation::new("food", a.view(), x.view()),
         Equation::new("housing", b.view(), x2.view()),
@@ -314,12 +451,15 @@ fn log_likelihood_formula_and_maximum() {
     let (ys, xs) = system(&[2, 3], 40, 23);
     let d = data(&ys, &xs);
     let prep = Prepared::new(&d).unwrap();
-    let est = prep.estimate(&opts(Method::IteratedFgls, Divisor::Ml)).unwrap();
+    let est = prep
+        .estimate(&opts(Method::IteratedFgls, Divisor::Ml))
+        .unwrap();
     let ll = prep.log_likelihood(est.resid_crossprod()).unwrap();
     let e = d.residuals(est.coef.as_slice().unwrap());
     let s = e.t().dot(&e) / 40.0;
     let det = s[[0, 0]] * s[[1, 1]] - s[[0, 1]] * s[[1, 0]];
-    let expect = -0.5 * 2.0 * 40.0 * (1.0 + (2.0 * std::f64::consts::PI).ln()) - 0.5 * 40.0 * det.ln();
+    let expect =
+        -0.5 * 2.0 * 40.0 * (1.0 + (2.0 * std::f64::consts::PI).ln()) - 0.5 * 40.0 * det.ln();
     assert_relative_eq!(ll, expect, max_relative = 1e-12);
     // concentrated likelihood is maximal at the ML estimate: perturbing lowers it
     let mut coef = est.coef.to_vec();
@@ -352,12 +492,19 @@ fn rows_of<'a>(ys: &'a [Array1<f64>], xs: &'a [Array2<f64>], a: usize, b: usize)
         ys.iter()
             .zip(xs)
             .enumerate()
-            .map(|(i, (y, x))| Equation::new(format!("e{i}"), y.slice(s![a..b]), x.slice(s![a..b, ..])))
+            .map(|(i, (y, x))| {
+                Equation::new(format!("e{i}"), y.slice(s![a..b]), x.slice(s![a..b, ..]))
+            })
             .collect(),
     )
 }
 
-fn chunked_prepared(ys: &[Array1<f64>], xs: &[Array2<f64>], bounds: &[usize], one_pass: bool) -> Prepared {
+fn chunked_prepared(
+    ys: &[Array1<f64>],
+    xs: &[Array2<f64>],
+    bounds: &[usize],
+    one_pass: bool,
+) -> Prepared {
     try_chunked_prepared(ys, xs, bounds, one_pass).unwrap()
 }
 
@@ -371,22 +518,31 @@ fn try_chunked_prepared(
 ) -> crate::error::Result<Prepared> {
     use crate::{CrossStats, Pass2Basis, RowFactors, RowSummary};
     let names: Vec<String> = (0..ys.len()).map(|i| format!("e{i}")).collect();
-    let regs: Vec<Vec<String>> = xs.iter().map(|x| (0..x.ncols()).map(|j| format!("x{j}")).collect()).collect();
+    let regs: Vec<Vec<String>> = xs
+        .iter()
+        .map(|x| (0..x.ncols()).map(|j| format!("x{j}")).collect())
+        .collect();
     let chunk = |a: usize, b: usize| rows_of(ys, xs, a, b);
     let pieces: Vec<(usize, usize)> = bounds.windows(2).map(|w| (w[0], w[1])).collect();
     if one_pass {
         let all = tree_merge(
-            pieces.iter().map(|&(a, b)| RowSummary::from_chunk(&chunk(a, b), a).unwrap()).collect(),
+            pieces
+                .iter()
+                .map(|&(a, b)| RowSummary::from_chunk(&chunk(a, b), a).unwrap())
+                .collect(),
             |a, b| a.merge(b).unwrap(),
         );
         let widths: Vec<usize> = xs.iter().map(|x| x.ncols() + 1).collect();
         let (factors, stats) = all.finish(&names, &widths)?;
-        return Prepared::from_summaries(names, regs, &factors, &stats);
+        return crate::stream::prepare_from_summaries(names, regs, &factors, &stats);
     }
-    let factors =
-        tree_merge(pieces.iter().map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap()).collect(), |a, b| {
-            a.merge(b).unwrap()
-        });
+    let factors = tree_merge(
+        pieces
+            .iter()
+            .map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap())
+            .collect(),
+        |a, b| a.merge(b).unwrap(),
+    );
     let basis = Pass2Basis::new(&factors)?;
     let mut stats: Option<CrossStats> = None;
     for &(a, b) in pieces.iter().rev() {
@@ -396,7 +552,7 @@ fn try_chunked_prepared(
             Some(s) => s.merge(c)?,
         });
     }
-    Prepared::from_summaries(names, regs, &factors, &stats.unwrap())
+    crate::stream::prepare_from_summaries(names, regs, &factors, &stats.unwrap())
 }
 
 #[test]
@@ -406,7 +562,12 @@ fn chunked_passes_equal_the_in_memory_fit() {
     let opts = opts(Method::IteratedFgls, Divisor::Ml);
     let a = full.estimate(&opts).unwrap();
     let va = full.coef_covariance(&a).unwrap();
-    let all_bounds = [vec![0, 53], vec![0, 1, 2, 3, 53], vec![0, 10, 11, 40, 53], (0..=53).collect::<Vec<_>>()];
+    let all_bounds = [
+        vec![0, 53],
+        vec![0, 1, 2, 3, 53],
+        vec![0, 10, 11, 40, 53],
+        (0..=53).collect::<Vec<_>>(),
+    ];
     for (bounds, one_pass) in all_bounds.iter().flat_map(|b| [(b, false), (b, true)]) {
         let prep = chunked_prepared(&ys, &xs, bounds, one_pass);
         let b = prep.estimate(&opts).unwrap();
@@ -416,8 +577,15 @@ fn chunked_passes_equal_the_in_memory_fit() {
             assert_relative_eq!(va[[j, j]], vb[[j, j]], max_relative = 1e-10);
         }
         for i in 0..3 {
-            assert_relative_eq!(full.factors[i].tss_centred, prep.factors[i].tss_centred, max_relative = 1e-12);
-            assert_eq!(full.factors[i].spans_constant, prep.factors[i].spans_constant);
+            assert_relative_eq!(
+                full.factors[i].tss_centred,
+                prep.factors[i].tss_centred,
+                max_relative = 1e-12
+            );
+            assert_eq!(
+                full.factors[i].spans_constant,
+                prep.factors[i].spans_constant
+            );
         }
     }
 }
@@ -433,21 +601,36 @@ fn chunk_summaries_keep_the_largest_y_and_refuse_it_out_of_range_as_in_memory() 
     let chunk = |a: usize, b: usize| rows_of(&ys, &xs, a, b);
     // The merged running maximum is the largest |y_i| over all rows, exactly, whatever the
     // merge order (max is exact, commutative and associative).
-    let truth: Vec<f64> = ys.iter().map(|y| y.iter().fold(0.0f64, |m, v| m.max(v.abs()))).collect();
-    let summaries = || pieces.iter().map(|&(a, b)| RowSummary::from_chunk(&chunk(a, b), a).unwrap());
+    let truth: Vec<f64> = ys
+        .iter()
+        .map(|y| y.iter().fold(0.0f64, |m, v| m.max(v.abs())))
+        .collect();
+    let summaries = || {
+        pieces
+            .iter()
+            .map(|&(a, b)| RowSummary::from_chunk(&chunk(a, b), a).unwrap())
+    };
     let tree = tree_merge(summaries().collect(), |a, b| a.merge(b).unwrap());
-    let backwards = summaries().rev().reduce(|a, b| a.merge(b).unwrap()).unwrap();
+    let backwards = summaries()
+        .rev()
+        .reduce(|a, b| a.merge(b).unwrap())
+        .unwrap();
     assert_eq!(tree.y_max, truth);
     assert_eq!(backwards.y_max, truth);
-    let factors =
-        tree_merge(pieces.iter().map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap()).collect(), |a, b| {
-            a.merge(b).unwrap()
-        });
+    let factors = tree_merge(
+        pieces
+            .iter()
+            .map(|&(a, b)| RowFactors::from_chunk(&chunk(a, b), a).unwrap())
+            .collect(),
+        |a, b| a.merge(b).unwrap(),
+    );
     assert_eq!(factors.y_max, truth);
     assert_eq!(tree.finish(&names, &widths).unwrap().0.y_max, truth);
     let basis = Pass2Basis::new(&factors).unwrap();
-    let stats: Vec<CrossStats> =
-        pieces.iter().map(|&(a, b)| CrossStats::from_chunk(&chunk(a, b), &basis, a).unwrap()).collect();
+    let stats: Vec<CrossStats> = pieces
+        .iter()
+        .map(|&(a, b)| CrossStats::from_chunk(&chunk(a, b), &basis, a).unwrap())
+        .collect();
     assert_eq!(tree_merge(stats, |a, b| a.merge(b).unwrap()).y_max, truth);
     assert!(factors.check_y_range(&names).is_ok());
 
@@ -456,7 +639,12 @@ fn chunk_summaries_keep_the_largest_y_and_refuse_it_out_of_range_as_in_memory() 
     // at 1e307 the factors overflow (pass 2 cannot run: only the check after pass 1 and the
     // one-pass route are asked), and the refusal comes first.
     let base = ys[1].clone();
-    for (scale, two_pass) in [(1e200, true), (1e-200, true), (1e-300, true), (1e307, false)] {
+    for (scale, two_pass) in [
+        (1e200, true),
+        (1e-200, true),
+        (1e-300, true),
+        (1e307, false),
+    ] {
         ys[1] = &base * scale;
         let expected = Prepared::new(&data(&ys, &xs)).unwrap_err();
         match &expected {
@@ -473,13 +661,20 @@ fn chunk_summaries_keep_the_largest_y_and_refuse_it_out_of_range_as_in_memory() 
             .map(|&(a, b)| RowFactors::from_chunk(&rows_of(&ys, &xs, a, b), a).unwrap())
             .reduce(|a, b| a.merge(b).unwrap())
             .unwrap();
-        assert_eq!(pass1.check_y_range(&names).unwrap_err(), expected, "pass 1, scale {scale:e}");
+        assert_eq!(
+            pass1.check_y_range(&names).unwrap_err(),
+            expected,
+            "pass 1, scale {scale:e}"
+        );
     }
     // Just inside the range, and a y of zeros (max 0), are not refused.
     for scale in [1e100, 1e-100, 0.0] {
         ys[1] = &base * scale;
         for one_pass in [true, false] {
-            assert!(try_chunked_prepared(&ys, &xs, &bounds, one_pass).is_ok(), "scale {scale:e}");
+            assert!(
+                try_chunked_prepared(&ys, &xs, &bounds, one_pass).is_ok(),
+                "scale {scale:e}"
+            );
         }
     }
 }
@@ -530,7 +725,11 @@ fn matrix_free_cg_equals_direct() {
     let d = data(&ys, &xs);
     let direct = Prepared::new(&d).unwrap();
     let free = Prepared::new_matrix_free(&d, &|| false).unwrap();
-    for div in [Divisor::Ml, Divisor::LedoitWolfDiagonal, Divisor::LedoitWolfIdentity] {
+    for div in [
+        Divisor::Ml,
+        Divisor::LedoitWolfDiagonal,
+        Divisor::LedoitWolfIdentity,
+    ] {
         let o = FitOptions {
             method: Method::IteratedFgls,
             divisor: div,
@@ -548,7 +747,9 @@ fn matrix_free_cg_equals_direct() {
         }
         // per-equation CG standard errors equal the direct ones
         let va = direct.coef_covariance(&a).unwrap();
-        let se = free.cg_standard_errors(&b.omega, &[1, 3], 1e-13, 500, &|| false).unwrap();
+        let se = free
+            .cg_standard_errors(&b.omega, &[1, 3], 1e-13, 500, &|| false)
+            .unwrap();
         let (o1, o3) = (direct.offsets[1], direct.offsets[3]);
         for j in 0..2 {
             assert_relative_eq!(se[0][j], va[[o1 + j, o1 + j]].sqrt(), max_relative = 1e-8);
@@ -567,7 +768,7 @@ fn ledoit_wolf_diagonal_target_formula() {
     let (t, n) = (30, 6);
     let e = Array2::from_shape_fn((t, n), |_| rng.normal());
     let s = e.t().dot(&e);
-    let (omega, lambda, _) = crate::cg::ledoit_wolf(&e, &s, false);
+    let (omega, lambda, _) = crate::estimate::ledoit_wolf(&e, &s, false);
     let sml = &s / t as f64;
     let (mut num, mut den) = (0.0, 0.0);
     for i in 0..n {
@@ -584,101 +785,12 @@ fn ledoit_wolf_diagonal_target_formula() {
     }
     let expect = (num / (t as f64 * den)).clamp(0.0, 1.0);
     assert_relative_eq!(lambda, expect, max_relative = 1e-12);
-    assert_relative_eq!(omega[[0, 1]], (1.0 - expect) * sml[[0, 1]], max_relative = 1e-12);
+    assert_relative_eq!(
+        omega[[0, 1]],
+        (1.0 - expect) * sml[[0, 1]],
+        max_relative = 1e-12
+    );
     assert_relative_eq!(omega[[2, 2]], sml[[2, 2]], max_relative = 1e-14);
-}
-
-#[test]
-fn householder_qr_matches_lapack() {
-    use ndarray_linalg::QR;
-    let mut rng = Rng(77);
-    // (300, 30) and (40, 40) take the LAPACK geqrf/orgqr branch, the rest the written-out one
-    for &(t, m) in &[(7usize, 1usize), (50, 5), (200, 12), (9, 9), (3000, 7), (300, 30), (40, 40)] {
-        let a = Array2::from_shape_fn((t, m).f(), |_| rng.normal());
-        let (q, r) = crate::linalg::thin_qr(a.clone()).unwrap();
-        let (_, rl) = a.qr().unwrap();
-        // A = Q R, Q'Q = I, R equals LAPACK's up to the signs of its rows
-        let back = q.dot(&r);
-        for (x, y) in back.iter().zip(a.iter()) {
-            assert_relative_eq!(*x, *y, epsilon = 1e-13);
-        }
-        let qtq = q.t().dot(&q);
-        for i in 0..m {
-            for j in 0..m {
-                assert_relative_eq!(qtq[[i, j]], if i == j { 1.0 } else { 0.0 }, epsilon = 1e-14);
-            }
-            for j in i..m {
-                assert_relative_eq!(r[[i, j]].abs(), rl[[i, j]].abs(), max_relative = 1e-12, epsilon = 1e-14);
-            }
-        }
-    }
-}
-
-#[test]
-fn cholqr2_is_a_qr_factorisation_and_declines_what_it_cannot_do_well() {
-    use ndarray_linalg::QR;
-    use crate::linalg::{cholqr2_in_place, CHOLQR_COND_MAX, CHOLQR_MAX_M, CHOLQR_MIN_T};
-    let mut rng = Rng(91);
-    // chunk edges (512 rows), odd widths, a long T, columns of very different scales, and a
-    // condition number of about 1e3 (mixed columns)
-    for &(t, m, mix) in &[(512usize, 6usize, 0.0), (1023, 3, 0.0), (1025, 5, 0.0), (5000, 6, 0.0), (4096, 16, 0.999), (200_000, 4, 0.99)] {
-        let mut a = Array2::from_shape_fn((t, m).f(), |_| rng.normal());
-        for j in 1..m {
-            let prev = a.column(j - 1).to_owned();
-            let mut c = a.column_mut(j);
-            c.zip_mut_with(&prev, |v, p| *v = mix * p + (1.0 - mix) * *v);
-        }
-        for j in 0..m {
-            a.column_mut(j).mapv_inplace(|v| v * 10f64.powi(j as i32 * 7 - 20));
-        }
-        let mut buf = a.clone();
-        let r = cholqr2_in_place(buf.as_slice_memory_order_mut().unwrap(), t, m, &|| false).unwrap().expect("well-conditioned");
-        // A = Q R (column by column, relative to the column), Q'Q = I, R as LAPACK's up to signs
-        let back = buf.dot(&r);
-        for j in 0..m {
-            let scale = a.column(j).iter().fold(0.0f64, |s, v| s.max(v.abs()));
-            for i in 0..t {
-                assert!((back[[i, j]] - a[[i, j]]).abs() <= 1e-13 * scale, "t={t} m={m} ({i},{j})");
-            }
-        }
-        let qtq = buf.t().dot(&buf);
-        for i in 0..m {
-            for j in 0..m {
-                assert_relative_eq!(qtq[[i, j]], if i == j { 1.0 } else { 0.0 }, epsilon = 1e-14);
-            }
-            assert!(r[[i, i]] > 0.0);
-        }
-        let (_, rl) = a.qr().unwrap();
-        for i in 0..m {
-            for j in i..m {
-                let scale = rl[[j, j]].abs().max(rl[[i, j]].abs());
-                assert!((r[[i, j]].abs() - rl[[i, j]].abs()).abs() <= 1e-12 * scale, "t={t} m={m} R({i},{j})");
-            }
-        }
-    }
-    // declined, the block untouched: ill-conditioned, not finite, too wide, norm out of range
-    let t = 1000;
-    let mut a = Array2::from_shape_fn((t, 3).f(), |_| rng.normal());
-    let c0 = a.column(0).to_owned();
-    a.column_mut(2).zip_mut_with(&c0, |v, p| *v = *p + 1e-5 * *v);
-    let mut bad_nan = a.clone();
-    bad_nan[[500, 1]] = f64::NAN;
-    let mut tiny = a.clone();
-    tiny.column_mut(1).mapv_inplace(|v| v * 1e-120);
-    let wide = Array2::from_shape_fn((t, CHOLQR_MAX_M + 1).f(), |_| rng.normal());
-    let short = Array2::from_shape_fn((CHOLQR_MIN_T - 1, 3).f(), |_| rng.normal());
-    for (what, x) in [("condition 1e5", a), ("NaN", bad_nan), ("17 columns", wide), ("norm 1e-120", tiny), ("511 rows", short)] {
-        let (t, m) = x.dim();
-        let mut buf = x.clone();
-        let got = cholqr2_in_place(buf.as_slice_memory_order_mut().unwrap(), t, m, &|| false).unwrap();
-        assert!(got.is_none(), "{what}: accepted");
-        assert!(buf.iter().zip(x.iter()).all(|(p, q)| p.to_bits() == q.to_bits()), "{what}: block changed");
-    }
-    assert!(CHOLQR_COND_MAX < 1e5);
-    // asked to stop: interrupted, not a result
-    let mut buf = Array2::from_shape_fn((t, 3).f(), |_| rng.normal());
-    let got = cholqr2_in_place(buf.as_slice_memory_order_mut().unwrap(), t, 3, &|| true);
-    assert!(matches!(got, Err(SurError::Interrupted)));
 }
 
 #[test]
@@ -711,7 +823,9 @@ fn parallel_data_pass_equals_sequential_and_reports_the_first_bad_equation() {
     }
     bad[2][[123, 1]] = 0.5;
     match Prepared::new(&data(&ys, &bad)) {
-        Err(SurError::Collinear { equation, column, .. }) => {
+        Err(SurError::Collinear {
+            equation, column, ..
+        }) => {
             assert_eq!((equation.as_str(), column.as_str()), ("e6", "x2"))
         }
         other => panic!("expected collinear e6, got {other:?}"),
@@ -728,10 +842,13 @@ fn long_dot_products_keep_their_digits() {
     let b = vec![1.0f64; n];
     let exact = 0.1 * n as f64;
     let running: f64 = a.iter().sum();
-    assert!(((running - exact) / exact).abs() > 1e-12, "the check would not tell a running sum apart");
-    let d = crate::linalg::dot(&a, &b);
+    assert!(
+        ((running - exact) / exact).abs() > 1e-12,
+        "the check would not tell a running sum apart"
+    );
+    let d = crate::kernels::dot(&a, &b);
     assert!(((d - exact) / exact).abs() < 1e-14, "dot {d} vs {exact}");
-    let nrm = crate::linalg::scaled_norm(&a);
+    let nrm = crate::kernels::scaled_norm(&a);
     assert_relative_eq!(nrm, (0.01 * n as f64).sqrt(), max_relative = 1e-14);
 }
 
@@ -741,7 +858,7 @@ fn long_dot_products_keep_their_digits() {
 /// errors match the dense textbook GLS formula at the same Omega.
 #[test]
 fn small_path_equals_general_path_and_dense_formula() {
-    let mut ws = crate::small::Work::default();
+    let mut ws = crate::batch::small::Work::default();
     let layouts: [&[usize]; 5] = [&[3, 3, 3], &[1, 4, 2], &[2], &[5, 1, 3, 2, 4], &[4, 4]];
     let mut checked = 0;
     for (l, ks) in layouts.iter().enumerate() {
@@ -755,16 +872,33 @@ fn small_path_equals_general_path_and_dense_formula() {
             let xv: Vec<_> = xs.iter().map(|x| x.view()).collect();
             for method in [Method::Ols, Method::Fgls, Method::IteratedFgls] {
                 for div in [Divisor::Ml, Divisor::Dof] {
-                    let o = FitOptions { method, divisor: div, tol: 1e-12, max_iter: 500, ..Default::default() };
-                    let a = crate::small::fit(&yv, &xv, &o, &mut ws).unwrap_or_else(|| panic!("declined {ks:?} T={t} {method:?} {div:?} level {level}"));
+                    let o = FitOptions {
+                        method,
+                        divisor: div,
+                        tol: 1e-12,
+                        max_iter: 500,
+                        ..Default::default()
+                    };
+                    let a = crate::batch::small::fit(&yv, &xv, &o, &mut ws).unwrap_or_else(|| {
+                        panic!("declined {ks:?} T={t} {method:?} {div:?} level {level}")
+                    });
                     let b = crate::batch::fit_general(&d, &o).unwrap();
-                    assert_eq!((a.n_iter, a.converged), (b.n_iter, b.converged), "{ks:?} T={t} {method:?} {div:?}");
+                    assert_eq!(
+                        (a.n_iter, a.converged),
+                        (b.n_iter, b.converged),
+                        "{ks:?} T={t} {method:?} {div:?}"
+                    );
                     for j in 0..a.coef.len() {
                         assert_relative_eq!(a.coef[j], b.coef[j], max_relative = 1e-9);
                         assert_relative_eq!(a.se[j], b.se[j], max_relative = 1e-9);
                     }
                     for (u, v) in a.omega.iter().zip(b.omega.iter()) {
-                        assert_relative_eq!(*u, *v, max_relative = 1e-9, epsilon = 1e-12 * b.omega[[0, 0]]);
+                        assert_relative_eq!(
+                            *u,
+                            *v,
+                            max_relative = 1e-9,
+                            epsilon = 1e-12 * b.omega[[0, 0]]
+                        );
                     }
                     assert_relative_eq!(a.loglik, b.loglik, max_relative = 1e-11);
                     if method == Method::Fgls && level == 0.0 {
@@ -787,8 +921,11 @@ fn small_path_equals_general_path_and_dense_formula() {
     let yv: Vec<_> = ys.iter().map(|y| y.view()).collect();
     let xv: Vec<_> = shared.iter().map(|x| x.view()).collect();
     for method in [Method::Ols, Method::Fgls, Method::IteratedFgls] {
-        let o = FitOptions { method, ..Default::default() };
-        let a = crate::small::fit(&yv, &xv, &o, &mut ws).unwrap();
+        let o = FitOptions {
+            method,
+            ..Default::default()
+        };
+        let a = crate::batch::small::fit(&yv, &xv, &o, &mut ws).unwrap();
         let b = crate::batch::fit_general(&d, &o).unwrap();
         assert_eq!((a.n_iter, a.converged), (b.n_iter, b.converged));
         for j in 0..a.coef.len() {
@@ -802,14 +939,17 @@ fn small_path_equals_general_path_and_dense_formula() {
 /// the batch then reports the general path's typed error for that system only.
 #[test]
 fn small_path_declines_what_the_general_path_must_judge() {
-    let mut ws = crate::small::Work::default();
+    let mut ws = crate::batch::small::Work::default();
     let fgls = FitOptions::default();
     let (ys, xs) = system(&[3, 3], 30, 5);
     let yv: Vec<_> = ys.iter().map(|y| y.view()).collect();
-    let decline = |ys: &[Array1<f64>], xs: &[Array2<f64>], o: &FitOptions, ws: &mut crate::small::Work| {
+    let decline = |ys: &[Array1<f64>],
+                   xs: &[Array2<f64>],
+                   o: &FitOptions,
+                   ws: &mut crate::batch::small::Work| {
         let yv: Vec<_> = ys.iter().map(|y| y.view()).collect();
         let xv: Vec<_> = xs.iter().map(|x| x.view()).collect();
-        crate::small::fit(&yv, &xv, o, ws).is_none()
+        crate::batch::small::fit(&yv, &xv, o, ws).is_none()
     };
     // NaN in a regressor, a collinear column, a zero column, T <= K_i
     let mut bad = xs.clone();
@@ -833,11 +973,32 @@ fn small_path_declines_what_the_general_path_must_judge() {
     let shares = vec![ys[0].clone(), 10.0 - &ys[0]];
     assert!(decline(&shares, &same_x, &fgls, &mut ws));
     // OLS never inverts Omega, so the exact fit is fine there
-    assert!(!decline(&exact, &xs, &FitOptions { method: Method::Ols, ..fgls }, &mut ws));
+    assert!(!decline(
+        &exact,
+        &xs,
+        &FitOptions {
+            method: Method::Ols,
+            ..fgls
+        },
+        &mut ws
+    ));
     // shrinkage goes to the general path
-    assert!(decline(&ys, &xs, &FitOptions { divisor: Divisor::LedoitWolfDiagonal, ..fgls }, &mut ws));
+    assert!(decline(
+        &ys,
+        &xs,
+        &FitOptions {
+            divisor: Divisor::LedoitWolfDiagonal,
+            ..fgls
+        },
+        &mut ws
+    ));
     // the batch reports each declined system's own typed error and fits the rest
-    let sets = [(ys.clone(), xs.clone()), (ys.clone(), bad), (exact, xs.clone()), (ys.clone(), col)];
+    let sets = [
+        (ys.clone(), xs.clone()),
+        (ys.clone(), bad),
+        (exact, xs.clone()),
+        (ys.clone(), col),
+    ];
     let systems: Vec<SystemData> = sets.iter().map(|(y, x)| data(y, x)).collect();
     let out = crate::batch::fit_many(&systems, &fgls, 2, &|| false);
     assert!(out[0].is_ok());
@@ -866,17 +1027,33 @@ fn iterated_steps_follow_the_dense_textbook_iteration() {
         }
         Array2::from_shape_fn((e.len(), e.len()), |(i, j)| e[i].dot(&e[j]) / t)
     };
-    let mut b: Array1<f64> = ys.iter().zip(&xs).flat_map(|(y, x)| ols(y, x).to_vec()).collect();
+    let mut b: Array1<f64> = ys
+        .iter()
+        .zip(&xs)
+        .flat_map(|(y, x)| ols(y, x).to_vec())
+        .collect();
     let mut omega = resid_omega(&b);
     for steps in 1..=6usize {
         let (bd, cov) = dense_gls(&ys, &xs, &omega);
-        let o = FitOptions { method: Method::IteratedFgls, tol: 0.0, max_iter: steps, ..Default::default() };
+        let o = FitOptions {
+            method: Method::IteratedFgls,
+            tol: 0.0,
+            max_iter: steps,
+            ..Default::default()
+        };
         let est = prep.estimate(&o).unwrap();
         assert_eq!(est.n_iter, steps);
         // step 2 is warm-started; a later one factors afresh after a slow warm solve
-        assert_eq!(est.warm_iterations.is_empty(), steps == 1, "{:?}", est.warm_iterations);
+        assert_eq!(
+            est.warm_iterations.is_empty(),
+            steps == 1,
+            "{:?}",
+            est.warm_iterations
+        );
         assert!(est.warm_iterations.len() < steps);
-        let se = prep.coef_standard_errors(&est, crate::CovKind::Classical, None).unwrap();
+        let se = prep
+            .coef_standard_errors(&est, crate::CovKind::Classical, None)
+            .unwrap();
         for j in 0..bd.len() {
             assert_relative_eq!(est.coef[j], bd[j], max_relative = 1e-10);
             assert_relative_eq!(se[j], cov[[j, j]].sqrt(), max_relative = 1e-10);
@@ -887,28 +1064,84 @@ fn iterated_steps_follow_the_dense_textbook_iteration() {
 }
 
 /// A random symmetric positive definite n x n matrix A = B'B + 0.1 I (B: `rows` x n normal
-/// draws), with our lower Cholesky factor (`linalg::chol_lower`) and LAPACK's (potrf, through
-/// ndarray-linalg).
-fn spd_with_factors(rng: &mut Rng, rows: usize, n: usize) -> (Array2<f64>, Array2<f64>, Array2<f64>) {
-    use ndarray_linalg::Cholesky;
+/// draws), with the backend's lower Cholesky factor (`kernels::chol_lower`) and the textbook
+/// one.
+fn spd_with_factors(
+    rng: &mut Rng,
+    rows: usize,
+    n: usize,
+) -> (Array2<f64>, Array2<f64>, Array2<f64>) {
     let b = Array2::from_shape_fn((rows, n), |_| rng.normal());
     let a = b.t().dot(&b) + Array2::<f64>::eye(n) * 0.1;
-    let l = crate::linalg::chol_lower(crate::linalg::to_fortran(&a)).unwrap();
-    let want = a.cholesky(ndarray_linalg::UPLO::Lower).unwrap();
+    let l = crate::kernels::chol_lower(crate::kernels::to_fortran(&a)).unwrap();
+    let want = textbook_cholesky(&a).unwrap();
     (a, l, want)
 }
 
-/// The written-out small dense kernels (order <= 64) against LAPACK through ndarray-linalg:
-/// Cholesky factor, solve, inverse, and the exact 1-norm condition numbers against the
-/// definition ||A||_1 ||A^-1||_1 with LAPACK's inverse.
+/// The backend's dense kernels and the batch path's own small ones against the textbook loops:
+/// Cholesky factor (zeros above the diagonal; refused when not positive definite, also with
+/// the negative pivot in a late block), solve, inverse, inverse of the factor, and the exact
+/// 1-norm condition numbers against the definition ||A||_1 ||A^-1||_1 (Gauss-Jordan inverse).
 #[test]
-fn small_dense_kernels_match_lapack() {
-    use crate::linalg::{chol_inverse, chol_lower, chol_solve, spd_condition, to_fortran, triangular_condition};
+fn dense_kernels_match_the_textbook_loops() {
+    use crate::kernels::small::{chol_solve_in_place, small_chol, small_lower_inverse};
+    use crate::kernels::{
+        chol_inverse, chol_lower, chol_solve, spd_condition, to_fortran, triangular_condition,
+    };
     let mut rng = Rng(4242);
-    for n in [1usize, 2, 5, 17, 40, 64] {
+    for n in [1usize, 2, 5, 17, 40, 64, 65, 97, 200] {
         let (a, l, want) = spd_with_factors(&mut rng, n + 3, n);
+        let scale = want.iter().fold(0.0f64, |m, v| m.max(v.abs()));
         for (x, y) in l.iter().zip(want.iter()) {
-            assert_relative_eq!(*x, *y, max_relative = 1e-11, epsilon = 1e-13);
+            assert_relative_eq!(*x, *y, max_relative = 1e-10, epsilon = 1e-12 * scale);
+        }
+        for j in 0..n {
+            for i in 0..j {
+                assert_eq!(l[[i, j]], 0.0);
+            }
+        }
+        let mut bad = a.clone();
+        bad[[n - 1, n - 1]] = -1.0;
+        assert!(
+            chol_lower(to_fortran(&bad)).is_none(),
+            "order {n}: indefinite accepted"
+        );
+        if n <= 64 {
+            // the batch path's kernels, in caller-owned column-major buffers
+            let mut own = to_fortran(&a).into_raw_vec_and_offset().0;
+            assert!(small_chol(&mut own, n));
+            for j in 0..n {
+                for i in 0..n {
+                    assert_relative_eq!(
+                        own[j * n + i],
+                        want[[i, j]],
+                        max_relative = 1e-10,
+                        epsilon = 1e-12 * scale
+                    );
+                }
+            }
+            let mut u = vec![0.0; n * n];
+            small_lower_inverse(&own, n, &mut u);
+            let linv = want.inv().unwrap();
+            for j in 0..n {
+                for i in 0..n {
+                    assert_relative_eq!(
+                        u[j * n + i],
+                        linv[[i, j]],
+                        max_relative = 1e-9,
+                        epsilon = 1e-11
+                    );
+                }
+            }
+            let rhs: Vec<f64> = (0..n).map(|_| rng.normal()).collect();
+            let mut x = rhs.clone();
+            chol_solve_in_place(&own, n, &mut x);
+            let want_x = a.inv().unwrap().dot(&Array1::from(rhs));
+            for (u, v) in x.iter().zip(want_x.iter()) {
+                assert_relative_eq!(*u, *v, max_relative = 1e-9, epsilon = 1e-12);
+            }
+            let mut bad = to_fortran(&bad).into_raw_vec_and_offset().0;
+            assert!(!small_chol(&mut bad, n));
         }
         let rhs = Array1::from_shape_fn(n, |_| rng.normal());
         let x = chol_solve(&l, &rhs).unwrap();
@@ -921,30 +1154,38 @@ fn small_dense_kernels_match_lapack() {
         for (u, v) in got_inv.iter().zip(inv.iter()) {
             assert_relative_eq!(*u, *v, max_relative = 1e-9, epsilon = 1e-12);
         }
-        let norm1 = |m: &Array2<f64>| m.columns().into_iter().map(|c| c.iter().map(|v| v.abs()).sum::<f64>()).fold(0.0, f64::max);
-        assert_relative_eq!(spd_condition(&a, &l), norm1(&a) * norm1(&inv), max_relative = 1e-9);
-        let r = Array2::from_shape_fn((n, n), |(i, j)| if j >= i { rng.normal() + if i == j { 3.0 } else { 0.0 } } else { 0.0 });
-        assert_relative_eq!(triangular_condition(&r), norm1(&r) * norm1(&r.inv().unwrap()), max_relative = 1e-9);
+        let norm1 = |m: &Array2<f64>| {
+            m.columns()
+                .into_iter()
+                .map(|c| c.iter().map(|v| v.abs()).sum::<f64>())
+                .fold(0.0, f64::max)
+        };
+        assert_relative_eq!(
+            spd_condition(&a, &l),
+            norm1(&a) * norm1(&inv),
+            max_relative = 1e-9
+        );
+        let r = Array2::from_shape_fn((n, n), |(i, j)| {
+            if j >= i {
+                rng.normal() + if i == j { 3.0 } else { 0.0 }
+            } else {
+                0.0
+            }
+        });
+        assert_relative_eq!(
+            triangular_condition(&r),
+            norm1(&r) * norm1(&r.inv().unwrap()),
+            max_relative = 1e-9
+        );
     }
-    // not positive definite: no factor
-    let mut bad = Array2::<f64>::eye(6);
-    bad[[3, 3]] = -1.0;
-    assert!(chol_lower(to_fortran(&bad)).is_none());
 }
 
-/// Omega^-1 and the condition number of Omega's correlation matrix, on both sides of the small
-/// kernels' order (64): against LAPACK's general inverse through ndarray-linalg and the
-/// definition ||C||_1 ||C^-1||_1 of the 1-norm condition number (C = D^-1/2 Omega D^-1/2).
+/// Omega^-1 and the condition number of Omega's correlation matrix against the Gauss-Jordan
+/// inverse and the definition ||C||_1 ||C^-1||_1 of the 1-norm condition number
+/// (C = D^-1/2 Omega D^-1/2).
 #[test]
-fn omega_inverse_and_its_condition_match_lapack() {
-    // on a thread with a large stack: OpenBLAS's threaded LU (the reference's `inv`) keeps
-    // per-thread job arrays on the stack, more than a test thread's 2 MiB at order 150 (the
-    // library itself never calls it)
-    std::thread::Builder::new().stack_size(64 << 20).spawn(omega_inverse_check).unwrap().join().unwrap();
-}
-
-fn omega_inverse_check() {
-    use crate::linalg::invert_omega;
+fn omega_inverse_and_its_condition_match_the_definition() {
+    use crate::estimate::omega::invert_omega;
     let mut rng = Rng(777);
     for n in [3usize, 64, 65, 150] {
         let (a, _, _) = spd_with_factors(&mut rng, n + 20, n);
@@ -952,15 +1193,26 @@ fn omega_inverse_check() {
         let scale: Vec<f64> = (0..n).map(|i| 10f64.powi((i % 7) as i32 - 3)).collect();
         let omega = Array2::from_shape_fn((n, n), |(i, j)| a[[i, j]] * scale[i] * scale[j]);
         let names: Vec<String> = (0..n).map(|i| format!("e{i}")).collect();
-        let (inv, cond) = invert_omega(&crate::linalg::to_fortran(&omega), &names, 1000, &scale).unwrap();
+        let (inv, cond) =
+            invert_omega(&crate::kernels::to_fortran(&omega), &names, 1000, &scale).unwrap();
         let want = omega.inv().unwrap();
         let big = want.iter().fold(0.0f64, |m, v| m.max(v.abs()));
         for (u, v) in inv.iter().zip(want.iter()) {
             assert!((u - v).abs() <= 1e-9 * big, "n={n}: {u} against {v}");
         }
-        let corr = Array2::from_shape_fn((n, n), |(i, j)| a[[i, j]] / (a[[i, i]] * a[[j, j]]).sqrt());
-        let norm1 = |m: &Array2<f64>| m.columns().into_iter().map(|c| c.iter().map(|v| v.abs()).sum::<f64>()).fold(0.0, f64::max);
-        assert_relative_eq!(cond, norm1(&corr) * norm1(&corr.inv().unwrap()), max_relative = 1e-8);
+        let corr =
+            Array2::from_shape_fn((n, n), |(i, j)| a[[i, j]] / (a[[i, i]] * a[[j, j]]).sqrt());
+        let norm1 = |m: &Array2<f64>| {
+            m.columns()
+                .into_iter()
+                .map(|c| c.iter().map(|v| v.abs()).sum::<f64>())
+                .fold(0.0, f64::max)
+        };
+        assert_relative_eq!(
+            cond,
+            norm1(&corr) * norm1(&corr.inv().unwrap()),
+            max_relative = 1e-8
+        );
     }
 }
 
@@ -981,7 +1233,9 @@ fn duplicate_names_are_reported_for_few_and_many_equations() {
         }
         let mut d = data(&ys, &xs);
         d.equations[0].regressors = vec!["a".into(), "a".into()];
-        assert!(matches!(d.validate(), Err(SurError::ShapeMismatch { detail, .. }) if detail.contains("'a' appears twice")));
+        assert!(
+            matches!(d.validate(), Err(SurError::ShapeMismatch { detail, .. }) if detail.contains("'a' appears twice"))
+        );
     }
 }
 
@@ -996,14 +1250,19 @@ fn column_group_kernels_match_plain_loops() {
             let q: Vec<f64> = (0..t * k).map(|_| rng.normal()).collect();
             let v: Vec<f64> = (0..t).map(|_| rng.normal()).collect();
             let mut d = vec![0.0; k];
-            crate::linalg::dots(&q, t, &v, &mut d);
+            crate::kernels::simd::dots(&q, t, &v, &mut d);
             for j in 0..k {
                 let plain: f64 = (0..t).map(|i| q[j * t + i] * v[i]).sum();
-                assert_relative_eq!(d[j], plain, epsilon = 1e-12 * (t as f64).sqrt(), max_relative = 1e-12);
+                assert_relative_eq!(
+                    d[j],
+                    plain,
+                    epsilon = 1e-12 * (t as f64).sqrt(),
+                    max_relative = 1e-12
+                );
             }
             let c: Vec<f64> = (0..k).map(|_| rng.normal()).collect();
             let mut w = v.clone();
-            crate::linalg::sub_combination(&mut w, &q, t, &c);
+            crate::kernels::simd::sub_combination(&mut w, &q, t, &c);
             for i in 0..t {
                 let plain = v[i] - (0..k).map(|j| c[j] * q[j * t + i]).sum::<f64>();
                 assert_relative_eq!(w[i], plain, epsilon = 1e-13, max_relative = 1e-13);
@@ -1021,7 +1280,7 @@ fn scatter_and_centred_squares_match_plain_loops() {
             let ld = r + 3;
             let mut dst = vec![f64::NAN; ld * k.max(1)];
             // SAFETY: column j is dst[j * ld..j * ld + r], within the buffer.
-            unsafe { crate::linalg::scatter_rows(&rows, k, dst.as_mut_ptr(), ld) };
+            unsafe { crate::kernels::dot2::scatter_rows(&rows, k, dst.as_mut_ptr(), ld) };
             for j in 0..k {
                 for i in 0..r {
                     assert_eq!(dst[j * ld + i].to_bits(), rows[i * k + j].to_bits());
@@ -1036,7 +1295,11 @@ fn scatter_and_centred_squares_match_plain_loops() {
         let y: Vec<f64> = (0..t).map(|_| 1e3 + rng.normal()).collect();
         let mean = y.iter().sum::<f64>() / t as f64;
         let plain: f64 = y.iter().map(|v| (v - mean) * (v - mean)).sum();
-        assert_relative_eq!(crate::linalg::centred_squares(&y, mean), plain, max_relative = 1e-12);
+        assert_relative_eq!(
+            crate::kernels::simd::centred_squares(&y, mean),
+            plain,
+            max_relative = 1e-12
+        );
     }
 }
 
@@ -1048,80 +1311,79 @@ fn input_memory_layout_does_not_change_a_bit() {
     // the general transposition.
     let (ys, xs) = system(&[3, 10, 4], 300, 17);
     let fit = |xs: &[Array2<f64>], strided: bool| {
-        let big: Vec<Array2<f64>> = xs.iter().map(|x| {
-            let mut b = Array2::<f64>::zeros((x.nrows(), 2 * x.ncols()));
-            b.slice_mut(s![.., ..;2]).assign(x);
-            b
-        }).collect();
+        let big: Vec<Array2<f64>> = xs
+            .iter()
+            .map(|x| {
+                let mut b = Array2::<f64>::zeros((x.nrows(), 2 * x.ncols()));
+                b.slice_mut(s![.., ..;2]).assign(x);
+                b
+            })
+            .collect();
         let views: Vec<_> = if strided {
             big.iter().map(|b| b.slice(s![.., ..;2])).collect()
         } else {
             xs.iter().map(|x| x.view()).collect()
         };
         let d = SystemData::new(
-            ys.iter().zip(&views).enumerate().map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), *x)).collect(),
+            ys.iter()
+                .zip(&views)
+                .enumerate()
+                .map(|(i, (y, x))| Equation::new(format!("e{i}"), y.view(), *x))
+                .collect(),
         );
         let p = Prepared::new(&d).unwrap();
         let e = p.estimate(&opts(Method::Fgls, Divisor::Ml)).unwrap();
-        (e.coef.to_vec(), e.omega.iter().copied().collect::<Vec<f64>>())
+        (
+            e.coef.to_vec(),
+            e.omega.iter().copied().collect::<Vec<f64>>(),
+        )
     };
     let rows = fit(&xs, false);
-    let cols: Vec<Array2<f64>> = xs.iter().map(crate::linalg::to_fortran).collect();
+    let cols: Vec<Array2<f64>> = xs.iter().map(crate::kernels::to_fortran).collect();
     assert!(cols[0].t().is_standard_layout());
     for other in [fit(&cols, false), fit(&xs, true)] {
-        for (a, b) in rows.0.iter().zip(&other.0).chain(rows.1.iter().zip(&other.1)) {
+        for (a, b) in rows
+            .0
+            .iter()
+            .zip(&other.0)
+            .chain(rows.1.iter().zip(&other.1))
+        {
             assert_eq!(a.to_bits(), b.to_bits());
         }
     }
 }
 
-/// The blocked Cholesky of mid-size GLS matrices against LAPACK potrf (through ndarray-linalg),
-/// at orders around its block size and at its upper limit, and its refusal of a matrix that is
-/// not positive definite (a negative pivot in a later block).
-#[test]
-fn blocked_cholesky_matches_lapack() {
-    use crate::linalg::{chol_lower, to_fortran};
-    let mut rng = Rng(977);
-    for n in [65usize, 71, 96, 97, 200, 448] {
-        let (a, l, want) = spd_with_factors(&mut rng, n + 5, n);
-        let scale = want.iter().fold(0.0f64, |m, v| m.max(v.abs()));
-        for (x, y) in l.iter().zip(want.iter()) {
-            assert_relative_eq!(*x, *y, max_relative = 1e-10, epsilon = 1e-12 * scale);
-        }
-        // strictly upper part is zero
-        for j in 0..n {
-            for i in 0..j {
-                assert_eq!(l[[i, j]], 0.0);
-            }
-        }
-        // the factor reproduces A
-        let back = l.dot(&l.t());
-        let anorm = a.iter().fold(0.0f64, |m, v| m.max(v.abs()));
-        for (x, y) in back.iter().zip(a.iter()) {
-            assert!((x - y).abs() <= 1e-13 * anorm * n as f64, "{x} vs {y}");
-        }
-        let mut bad = a.clone();
-        let k = n - 3;
-        bad[[k, k]] = -1.0;
-        assert!(chol_lower(to_fortran(&bad)).is_none(), "order {n}: indefinite accepted");
-    }
-}
-
-
 /// A triangular solve names the defect it finds on the diagonal: zero, or NaN/inf (common
 /// practice: back substitution divides by each diagonal entry).
 #[test]
 fn triangular_solves_name_the_defect_on_the_diagonal() {
-    use crate::linalg::{upper_inverse, upper_solve};
+    use crate::kernels::{upper_inverse, upper_solve};
     let good = ndarray::array![[2.0, 1.0], [0.0, 4.0]];
     let inv = upper_inverse(&good).unwrap();
-    assert_relative_eq!(inv, ndarray::array![[0.5, -0.125], [0.0, 0.25]], max_relative = 1e-15);
+    assert_relative_eq!(
+        inv,
+        ndarray::array![[0.5, -0.125], [0.0, 0.25]],
+        max_relative = 1e-15
+    );
     let x = upper_solve(&good, &ndarray::array![3.0, 8.0]).unwrap();
     assert_relative_eq!(x, ndarray::array![0.5, 2.0], max_relative = 1e-15);
-    for (d, want) in [(0.0, "zero on the diagonal, at position 1"), (f64::NAN, "non-finite value (NaN) on the diagonal, at position 1"), (f64::INFINITY, "non-finite value (inf) on the diagonal, at position 1")] {
+    for (d, want) in [
+        (0.0, "zero on the diagonal, at position 1"),
+        (
+            f64::NAN,
+            "non-finite value (NaN) on the diagonal, at position 1",
+        ),
+        (
+            f64::INFINITY,
+            "non-finite value (inf) on the diagonal, at position 1",
+        ),
+    ] {
         let mut r = good.clone();
         r[[1, 1]] = d;
-        for err in [upper_inverse(&r).unwrap_err(), upper_solve(&r, &ndarray::array![1.0, 1.0]).unwrap_err()] {
+        for err in [
+            upper_inverse(&r).unwrap_err(),
+            upper_solve(&r, &ndarray::array![1.0, 1.0]).unwrap_err(),
+        ] {
             match err {
                 SurError::Numerical { context, detail } => {
                     assert_eq!(context, "triangular solve");

@@ -303,16 +303,17 @@ case("fit_many: bounds past the rows")(lambda: _core.fit_many(*FM, [0, T + 1], "
 case("fit_many: negative bound")(lambda: _core.fit_many(*FM, [-1, T], "fgls", "ml", 1e-10, 10, 2))
 case("fit_many: lists of different lengths")(lambda: _core.fit_many([Y, Y2], [X2], [0, T], "fgls", "ml", 1e-10, 10, 2))
 case("fit_many: y lengths differ")(lambda: _core.fit_many([Y, Y2[:5]], [X2, X3], [0, 5], "fgls", "ml", 1e-10, 10, 2))
-# -- blas_threads ------------------------------------------------------------------------------
-if hasattr(_core, "blas_threads"):
-    _threads_now = _core.blas_threads()
-    case("blas_threads: 0")(lambda: _core.blas_threads(0))
-    case("blas_threads: negative")(lambda: _core.blas_threads(-1))
-    case("blas_threads: 2**70")(lambda: _core.blas_threads(2**70))
-    case("blas_threads: 1025")(lambda: _core.blas_threads(1025))
-    case("blas_threads: a string")(lambda: _core.blas_threads("2"))
-    case("blas_threads: a float")(lambda: _core.blas_threads(2.5))
-    case("blas_threads: back to the start", "any")(lambda: _core.blas_threads(_threads_now))
+# -- set_threads / get_threads / build_info ----------------------------------------------------
+_threads_now = _core.get_threads()
+case("set_threads: 0")(lambda: _core.set_threads(0))
+case("set_threads: negative")(lambda: _core.set_threads(-1))
+case("set_threads: 2**70")(lambda: _core.set_threads(2**70))
+case("set_threads: 1025")(lambda: _core.set_threads(1025))
+case("set_threads: a string")(lambda: _core.set_threads("2"))
+case("set_threads: a float")(lambda: _core.set_threads(2.5))
+case("set_threads: back to the start", "any")(lambda: _core.set_threads(_threads_now))
+case("get_threads: an argument")(lambda: _core.get_threads(1))
+case("build_info: an argument")(lambda: _core.build_info(1))
 
 
 def recorded(result):

@@ -13,10 +13,7 @@ Example
 FrozenList(['equation', 'regressor'])
 """
 
-from ._loader import load_core as _load_core
-
-_load_core()
-from ._core import __version__, blas_threads  # noqa: E402
+from ._core import __version__, build_info, get_threads, set_threads
 from ._fit import FittedSystem
 from ._tests import HypothesisTestResult
 from ._system import EquationSystem
@@ -49,7 +46,9 @@ from .errors import (
 
 __all__ = [
     "__version__",
-    "blas_threads",
+    "build_info",
+    "get_threads",
+    "set_threads",
     "EquationSystem",
     "FittedSystem",
     "SampleInfo",

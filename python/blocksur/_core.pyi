@@ -27,11 +27,13 @@ def prepare(
     names: Sequence[str],
     regressors: Sequence[Sequence[str]],
     matrix_free: bool = False,
+    progress: object | None = None,
 ) -> Prepared:
     """Validates the system and runs the data pass (QR per equation, and one Gram matrix
-    unless ``matrix_free``), with the interpreter lock released. Raises the blocksur error
+    unless ``matrix_free``), with the interpreter lock released (the calling thread polls for
+    Ctrl-C and calls ``progress`` with the checkpoints passed). Raises the blocksur error
     classes (ShapeMismatchError, NonFiniteError, TooFewObservationsError, CollinearityError,
-    ...)."""
+    ...), and MemoryError when the process cannot get the memory the pass needs."""
 
 def fgls_from_data(
     ys: Sequence[_F64_1D],
@@ -140,6 +142,7 @@ class Prepared:
         xs: Sequence[_F64_2D] | None = None,
         cg_tol: float = 1e-10,
         cg_max_iter: int = 5000,
+        progress: object | None = None,
     ) -> Estimate:
         """One estimation: method "ols", "fgls" or "ifgls"; divisor "ml", "dof",
         "lw-diagonal" or "lw-identity" (Ledoit-Wolf shrinkage, which on the direct path needs
@@ -251,7 +254,16 @@ class Estimate:
     def divisor(self) -> str: ...
 
 
-def blas_threads(n: int | None = None) -> int:
-    """Threads of the system OpenBLAS the extension links (not numpy's): set them when ``n`` is
-    given; returns the number in force."""
-    ...
+def set_threads(n: int) -> None:
+    """Sets the number of threads blocksur's parallel steps may use (1 to 1024); the pool is
+    rebuilt at the next parallel step. Raises InvalidOptionError outside that range."""
+
+def get_threads() -> int:
+    """The thread limit in force: set by :func:`set_threads`, else ``RAYON_NUM_THREADS`` as
+    read at first use, else the cores this process may use."""
+
+def build_info() -> dict[str, object]:
+    """How this extension computes: ``backend`` ("faer" or "lapack"), ``isa`` (the instruction
+    set the backend's kernels chose on this CPU, e.g. "avx512", "avx2+fma", "neon"),
+    ``kernels_isa`` (that of blocksur's own vector kernels), ``threads`` (the limit in force)
+    and ``version`` (the crate's)."""

@@ -1,220 +1,35 @@
-//! Steps 0 and 1: per-equation orthonormalisation and one pass of cross-products over the data.
-//!
-//! Each equation's augmented matrix [X_i | y_i] gets a Householder QR. That gives
-//! X_i = Q_i R_i, the OLS coordinates z_i = Q_i'y_i, and y_i = Q_i z_i + rho_i q_i with q_i a unit
-//! vector orthogonal to Q_i and rho_i the norm of the OLS residual. Every residual of any
-//! coefficient vector is then e_i = rho_i q_i - Q_i delta_i (delta_i = gamma_i - z_i), a combination
-//! of the orthonormal columns of W = [Q_1 .. Q_N, q_1 .. q_N] (T x P, P = K + N) with coefficients
-//! of the size of the residual itself. So the residual cross-products S = A'(W'W)A carry no
-//! cancellation, however close R-squared is to one or however large the means of y are; the
-//! textbook E - gamma'D - D'gamma + gamma'C gamma form loses digits in both cases.
-//! After this pass nothing depends on T.
+//! Step 0, equation by equation: the QR of X_i written into its columns of W, z_i = Q_i'y_i,
+//! the residual (refined from the data in doubled precision where its error account asks for
+//! it), its norm rho_i and direction q_i, the rank and scale checks with their messages; and
+//! the same for a system whose equations share one regressor matrix.
 
 use std::mem::MaybeUninit;
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
-use std::sync::Mutex;
 
-use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, ArrayViewMut1, ArrayViewMut2, Axis, ShapeBuilder};
-
-use crate::error::{Result, SurError};
-use crate::linalg::{
-    dot, fmt_num, gram, gram_blocked, scaled_norm, thin_qr, thin_qr_in_place, triangular_condition, upper_solve,
+use ndarray::{
+    s, Array1, Array2, ArrayView1, ArrayView2, ArrayViewMut1, ArrayViewMut2, Axis, ShapeBuilder,
 };
-use crate::system::{check_finite, Equation, SystemData};
 
-/// What one equation contributes after orthonormalisation.
-#[derive(Debug, Clone)]
-pub struct EquationFactor {
-    /// Upper-triangular K_i x K_i with X_i = Q_i R_i.
-    pub r: Array2<f64>,
-    /// Q_i'y_i: the OLS coefficients in the orthonormal basis.
-    pub z: Array1<f64>,
-    /// Norm of the OLS residual.
-    pub rho: f64,
-    /// Whether the columns of X_i span the constant vector (explicitly or through dummies).
-    pub spans_constant: bool,
-    /// Sum of squares of y_i about its mean, and about zero.
-    pub tss_centred: f64,
-    pub tss_raw: f64,
-    /// Condition number estimate (1-norm, LAPACK trcon) of the column-scaled X_i: about how
-    /// many digits least squares on this equation can lose (log10 of it).
-    pub cond: f64,
-}
-
-/// The cross-products of W = [Q_1 .. Q_N, q_1 .. q_N].
-#[derive(Debug, Clone)]
-pub enum CrossProducts {
-    /// The full P x P Gram matrix W'W.
-    General { gram: Array2<f64> },
-    /// W itself (T x P, column-major), for systems whose K x K matrices would not fit in
-    /// memory: every product with the GLS matrix goes through W (conjugate gradients).
-    MatrixFree { w: Array2<f64> },
-    /// All equations share one regressor matrix: Q_i'Q_j = I and Q_i'q_j = 0, so only the N x N
-    /// matrix q_i'q_j is needed.
-    SharedRegressors { qq: Array2<f64> },
-    /// Only q_i'q_j (N x N), the cross-products of the normalised OLS residuals: what a
-    /// two-step FGLS fit computed from the data in one pass leaves behind (it formed and
-    /// dropped the K x K products; see `Prepared::fgls_from_data`). Enough for OLS, the OLS
-    /// residual cross-products and every covariance of that fit; any other estimation needs
-    /// a full preparation.
-    ResidualsOnly { qq: Array2<f64> },
-}
-
-/// Everything estimation needs: independent of T from here on.
-#[derive(Debug, Clone)]
-pub struct Prepared {
-    pub n_obs: usize,
-    pub names: Vec<String>,
-    pub regressors: Vec<Vec<String>>,
-    /// Offsets of each equation's coefficients in the stacked vector (length N + 1).
-    pub offsets: Vec<usize>,
-    pub factors: Vec<EquationFactor>,
-    pub cross: CrossProducts,
-}
-
-impl Prepared {
-    /// Validates the data and runs steps 0 and 1.
-    pub fn new(data: &SystemData) -> Result<Prepared> {
-        Self::new_with(data, &|| false)
-    }
-
-    /// As `new`, asking `cancel` between equations and between row blocks of the Gram pass
-    /// whether to stop (then it returns `SurError::Interrupted`).
-    pub fn new_with(data: &SystemData, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Prepared> {
-        Self::build(data, cancel, false)
-    }
-
-    /// As `new_with`, but keeps W (T x P) instead of forming the P x P Gram matrix: the
-    /// matrix-free path for systems too large for K x K matrices.
-    pub fn new_matrix_free(data: &SystemData, cancel: &(dyn Fn() -> bool + Sync)) -> Result<Prepared> {
-        Self::build(data, cancel, true)
-    }
-
-    fn build(data: &SystemData, cancel: &(dyn Fn() -> bool + Sync), matrix_free: bool) -> Result<Prepared> {
-        let t = data.validate_shapes(true)?;
-        let n = data.n_eq();
-        let mut offsets = vec![0usize];
-        for eq in &data.equations {
-            offsets.push(offsets.last().unwrap() + eq.n_regressors());
-        }
-        let k = offsets[n];
-        let names: Vec<String> = data.equations.iter().map(|e| e.name.clone()).collect();
-        let regressors: Vec<Vec<String>> = data.equations.iter().map(|e| e.regressors.clone()).collect();
-        let offs = offsets.clone();
-        let done = move |factors, cross| Prepared { n_obs: t, names, regressors, offsets: offs, factors, cross };
-
-        if n > 1 && !matrix_free && data.identical_regressors() {
-            for eq in &data.equations {
-                check_finite(eq, 0)?;
-                y_in_range(eq, eq.y.iter())?;
-            }
-            let (factors, qq) = shared_regressors(data, t)?;
-            return Ok(done(factors, CrossProducts::SharedRegressors { qq }));
-        }
-
-        let (factors, w) = step_zero(data, t, &offsets, cancel)?;
-        if matrix_free {
-            return Ok(done(factors, CrossProducts::MatrixFree { w }));
-        }
-        let mut g = if (t as f64) * ((k + n) as f64).powi(2) <= crate::linalg::SMALL_GRAM {
-            gram_across(&w, &offsets)
-        } else {
-            gram_blocked(w.view(), cancel)?
-        };
-        drop(w);
-        // Exact by construction: orthonormal columns within an equation, q_i orthogonal to Q_i.
-        for i in 0..n {
-            let (a, b) = (offsets[i], offsets[i + 1]);
-            g.slice_mut(s![a..b, a..b]).assign(&Array2::eye(b - a));
-            g.slice_mut(s![a..b, k + i]).fill(0.0);
-            g.slice_mut(s![k + i, a..b]).fill(0.0);
-            g[[k + i, k + i]] = 1.0;
-        }
-        Ok(done(factors, CrossProducts::General { gram: g }))
-    }
-
-    /// Step 0 alone, with the basis it wrote: the factors and W = [Q_1 .. Q_N, q_1 .. q_N]
-    /// (T x P, column-major). For estimators that read the basis once and need no Gram matrix
-    /// kept (see `Prepared::fgls_from_data`). Systems whose equations share one regressor
-    /// matrix are the caller's to route elsewhere: W is formed for them as for any other.
-    pub(crate) fn basis(data: &SystemData, cancel: &(dyn Fn() -> bool + Sync)) -> Result<(Prepared, Array2<f64>)> {
-        let t = data.validate_shapes(true)?;
-        let n = data.n_eq();
-        let mut offsets = vec![0usize];
-        for eq in &data.equations {
-            offsets.push(offsets.last().unwrap() + eq.n_regressors());
-        }
-        let (factors, w) = step_zero(data, t, &offsets, cancel)?;
-        let prep = Prepared {
-            n_obs: t,
-            names: data.equations.iter().map(|e| e.name.clone()).collect(),
-            regressors: data.equations.iter().map(|e| e.regressors.clone()).collect(),
-            offsets,
-            factors,
-            cross: CrossProducts::ResidualsOnly { qq: Array2::zeros((n, n)) },
-        };
-        Ok((prep, w))
-    }
-
-    pub fn n_eq(&self) -> usize {
-        self.names.len()
-    }
-
-    /// Root mean square of each dependent variable, ||y_i|| / sqrt(T), from ||y||^2 =
-    /// ||z||^2 + rho^2, computed without overflow.
-    pub fn y_scales(&self) -> Vec<f64> {
-        let t = (self.n_obs as f64).sqrt();
-        self.factors
-            .iter()
-            .map(|f| {
-                let m = f.z.iter().fold(f.rho.abs(), |a, b| a.max(b.abs()));
-                if m == 0.0 {
-                    return 0.0;
-                }
-                let s: f64 = f.z.iter().map(|v| (v / m) * (v / m)).sum::<f64>() + (f.rho / m) * (f.rho / m);
-                m * s.sqrt() / t
-            })
-            .collect()
-    }
-
-    pub fn n_coef(&self) -> usize {
-        *self.offsets.last().unwrap()
-    }
-
-    pub fn k(&self, i: usize) -> usize {
-        self.offsets[i + 1] - self.offsets[i]
-    }
-
-    /// OLS coefficients in the orthonormal basis, stacked.
-    pub fn z(&self) -> Array1<f64> {
-        let mut z = Array1::zeros(self.n_coef());
-        for (i, f) in self.factors.iter().enumerate() {
-            z.slice_mut(s![self.offsets[i]..self.offsets[i + 1]]).assign(&f.z);
-        }
-        z
-    }
-
-    /// b_i = R_i^-1 gamma_i for every equation.
-    pub fn coef_from_gamma(&self, gamma: &Array1<f64>) -> Result<Array1<f64>> {
-        let mut b = Array1::zeros(self.n_coef());
-        for (i, f) in self.factors.iter().enumerate() {
-            let (a, c) = (self.offsets[i], self.offsets[i + 1]);
-            let bi = upper_solve(&f.r, &gamma.slice(s![a..c]).to_owned())?;
-            b.slice_mut(s![a..c]).assign(&bi);
-        }
-        Ok(b)
-    }
-}
+use super::EquationFactor;
+use crate::data::{check_finite, Equation, SystemData};
+use crate::error::{Result, SurError};
+use crate::kernels::qr::{thin_qr, thin_qr_in_place};
+use crate::kernels::{dot, fmt_num, gram, scaled_norm, triangular_condition, upper_solve};
 
 /// Step 0 for every equation into a fresh W = [Q_1 .. Q_N, q_1 .. q_N] (T x P, column-major).
-fn step_zero(data: &SystemData, t: usize, offsets: &[usize], cancel: &(dyn Fn() -> bool + Sync)) -> Result<(Vec<EquationFactor>, Array2<f64>)> {
+pub(super) fn step_zero(
+    data: &SystemData,
+    t: usize,
+    offsets: &[usize],
+    cancel: &(dyn Fn() -> bool + Sync),
+) -> Result<(Vec<EquationFactor>, Array2<f64>)> {
     let n = data.n_eq();
     let k = offsets[n];
     // W is written once, column block by column block, by `factor_all`: no zero-filling
     // pass. It is only assumed initialised after every block has been written.
     let mut w = Array2::<f64>::uninit((t, k + n).f());
     if let Some(b) = w.as_slice_memory_order_mut() {
-        crate::linalg::advise_huge_pages(b);
+        crate::kernels::advise_huge_pages(b);
     }
     let factors = {
         let (wq, mut wy) = w.view_mut().split_at(Axis(1), k);
@@ -232,19 +47,6 @@ fn step_zero(data: &SystemData, t: usize, offsets: &[usize], cancel: &(dyn Fn() 
     Ok((factors, unsafe { w.assume_init() }))
 }
 
-/// W'W for a small W (column-major, all columns written), by dot products between the columns
-/// of different equations only: the blocks within an equation are known (I and 0) and set by
-/// the caller.
-fn gram_across(w: &Array2<f64>, offsets: &[usize]) -> Array2<f64> {
-    let (t, p) = w.dim();
-    let n = offsets.len() - 1;
-    let k = offsets[n];
-    let buf = w.as_slice_memory_order().expect("W is column-major and contiguous");
-    let owner: Vec<usize> =
-        (0..p).map(|c| if c < k { offsets.partition_point(|&o| o <= c) - 1 } else { c - k }).collect();
-    crate::linalg::gram_dots(buf, t, p, |i, j| owner[i] == owner[j])
-}
-
 /// The largest |value| (0 for none; NaN is skipped, as `f64::max` does: non-finite values are
 /// refused by their own check).
 pub(crate) fn abs_max<'a>(y: impl IntoIterator<Item = &'a f64>) -> f64 {
@@ -253,7 +55,7 @@ pub(crate) fn abs_max<'a>(y: impl IntoIterator<Item = &'a f64>) -> f64 {
 
 /// Refuses a dependent variable whose largest |value| is outside Y_RANGE (naming the equation
 /// and which way it falls out), where its residual variance cannot be represented.
-fn y_in_range<'a>(eq: &Equation, y: impl Iterator<Item = &'a f64>) -> Result<()> {
+pub(super) fn y_in_range<'a>(eq: &Equation, y: impl Iterator<Item = &'a f64>) -> Result<()> {
     y_max_in_range(&eq.name, abs_max(y))
 }
 
@@ -287,8 +89,8 @@ pub(crate) fn norm(v: ArrayView1<f64>) -> f64 {
 
 /// Total sums of squares of y: about its mean and about zero.
 fn tss(y: &[f64]) -> (f64, f64) {
-    let mean = crate::linalg::sum(y) / y.len() as f64;
-    (crate::linalg::centred_squares(y, mean), dot(y, y))
+    let mean = crate::kernels::simd::sum(y) / y.len() as f64;
+    (crate::kernels::simd::centred_squares(y, mean), dot(y, y))
 }
 
 /// Relative tolerance on the diagonal of the column-scaled R below which a column counts as a
@@ -299,7 +101,11 @@ pub(crate) fn rank_tol(t: usize, k: usize) -> f64 {
 
 /// QR of a column-scaled matrix [X_i | extra columns]: returns Q (T x K_i + m), R of the scaled
 /// problem, and the column norms of X_i. Checks X_i for zero and collinear columns.
-fn scaled_qr(eq: &Equation, extra: &[ArrayView1<f64>], t: usize) -> Result<(Array2<f64>, Array2<f64>, Vec<f64>)> {
+fn scaled_qr(
+    eq: &Equation,
+    extra: &[ArrayView1<f64>],
+    t: usize,
+) -> Result<(Array2<f64>, Array2<f64>, Vec<f64>)> {
     let k = eq.n_regressors();
     let mut a = Array2::<f64>::zeros((t, k + extra.len()).f());
     let mut norms = Vec::with_capacity(k);
@@ -315,7 +121,8 @@ fn scaled_qr(eq: &Equation, extra: &[ArrayView1<f64>], t: usize) -> Result<(Arra
     for (m, e) in extra.iter().enumerate() {
         a.column_mut(k + m).assign(e);
     }
-    let (q, r) = thin_qr(a).map_err(|e| SurError::numerical(&format!("QR of equation '{}'", eq.name), e))?;
+    let (q, r) =
+        thin_qr(a).map_err(|e| SurError::numerical(&format!("QR of equation '{}'", eq.name), e))?;
     check_rank(&eq.name, &eq.regressors, &r, &norms, t)?;
     Ok((q, r, norms))
 }
@@ -329,7 +136,13 @@ fn zero_column(name: &str, column: &str) -> SurError {
 }
 
 /// Rank check on the R factor of the column-scaled regressors (its first K columns).
-pub(crate) fn check_rank(name: &str, regressors: &[String], rs: &Array2<f64>, norms: &[f64], t: usize) -> Result<()> {
+pub(crate) fn check_rank(
+    name: &str,
+    regressors: &[String],
+    rs: &Array2<f64>,
+    norms: &[f64],
+    t: usize,
+) -> Result<()> {
     let k = norms.len();
     for (j, nj) in norms.iter().enumerate() {
         if *nj == 0.0 {
@@ -346,7 +159,13 @@ pub(crate) fn check_rank(name: &str, regressors: &[String], rs: &Array2<f64>, no
 }
 
 /// Names the earlier columns that column j is a combination of, with the weights in data units.
-fn collinear_error(name: &str, regressors: &[String], r: &Array2<f64>, norms: &[f64], j: usize) -> SurError {
+fn collinear_error(
+    name: &str,
+    regressors: &[String],
+    r: &Array2<f64>,
+    norms: &[f64],
+    j: usize,
+) -> SurError {
     let detail = if j == 0 {
         "is numerically zero".to_string()
     } else {
@@ -362,24 +181,31 @@ fn collinear_error(name: &str, regressors: &[String], r: &Array2<f64>, norms: &[
                     .collect();
                 format!(
                     "is a linear combination of earlier regressors (column {j} = {})",
-                    if terms.is_empty() { "0".to_string() } else { terms.join(" + ") }
+                    if terms.is_empty() {
+                        "0".to_string()
+                    } else {
+                        terms.join(" + ")
+                    }
                 )
             }
             Err(_) => "is a linear combination of earlier regressors".to_string(),
         }
     };
-    SurError::Collinear { equation: name.to_string(), column: regressors[j].clone(), detail }
+    SurError::Collinear {
+        equation: name.to_string(),
+        column: regressors[j].clone(),
+        detail,
+    }
 }
 
 pub(crate) fn cond_of_scaled(rs: &Array2<f64>, k: usize) -> f64 {
     triangular_condition(&rs.slice(s![..k, ..k]).to_owned())
 }
 
-/// Step 0 for one equation: Q_i (T x K_i), q_i (T) and the factor.
 /// Step 0 for every equation, writing Q_i and q_i into their columns of W. Equations are
-/// independent, so when the work is large enough they are shared out over the cores (the
-/// calling thread takes part and is the only one that asks `cancel`). The first failing
-/// equation in system order is the one reported, as in a sequential pass.
+/// independent, so when the work is large enough they are shared out over blocksur's pool
+/// (each thread with its own scratch). The first failing equation in system order is the one
+/// reported, as in a sequential pass; equations after a failure are not started.
 fn factor_all(
     data: &SystemData,
     t: usize,
@@ -387,153 +213,87 @@ fn factor_all(
     cancel: &(dyn Fn() -> bool + Sync),
 ) -> Result<Vec<EquationFactor>> {
     let n = blocks.len();
-    let work: f64 = data.equations.iter().map(|e| t as f64 * ((e.n_regressors() + 1) as f64).powi(2)).sum();
-    let threads = if work < PARALLEL_WORK { 1 } else { work_threads(work).min(n) };
-    let jobs: Vec<Mutex<Option<WBlock<'_>>>> = blocks.into_iter().map(|b| Mutex::new(Some(b))).collect();
-    let results: Vec<Mutex<Option<Result<EquationFactor>>>> = (0..n).map(|_| Mutex::new(None)).collect();
-    let next = AtomicUsize::new(0);
+    let work: f64 = data
+        .equations
+        .iter()
+        .map(|e| t as f64 * ((e.n_regressors() + 1) as f64).powi(2))
+        .sum();
     let first_error = AtomicUsize::new(usize::MAX);
     let stop = AtomicBool::new(false);
-    let run = |is_caller: bool| {
-        let mut scratch = Vec::new();
-        loop {
-            if is_caller && cancel() {
-                stop.store(true, Ordering::Relaxed);
-            }
-            if stop.load(Ordering::Relaxed) {
-                return;
-            }
-            let i = next.fetch_add(1, Ordering::Relaxed);
-            if i >= n || i > first_error.load(Ordering::Relaxed) {
-                return;
-            }
-            let (q, qy) = jobs[i].lock().unwrap_or_else(|p| p.into_inner()).take().expect("each job is taken once");
-            // Long columns: also ask between the columns of one equation (each step is then a
-            // pass over many rows); short ones only between equations.
-            let poll = || {
-                if is_caller && cancel() {
-                    stop.store(true, Ordering::Relaxed);
-                }
-                stop.load(Ordering::Relaxed)
-            };
-            let never = || false;
-            let out =
-                factor_into(&data.equations[i], t, &mut scratch, q, qy, if t >= LONG_COLUMN { &poll } else { &never });
-            if out.is_err() {
-                first_error.fetch_min(i, Ordering::Relaxed);
-            }
-            *results[i].lock().unwrap_or_else(|p| p.into_inner()) = Some(out);
+    // Long columns: also ask between the columns of one equation (each step is then a pass
+    // over many rows); short ones only between equations.
+    let poll = || {
+        if cancel() {
+            stop.store(true, Ordering::Relaxed);
         }
+        stop.load(Ordering::Relaxed)
     };
-    crate::pool::run(threads, &|i| run(i == 0));
+    let never = || false;
+    let one = |scratch: &mut Vec<f64>,
+               (i, (q, qy)): (usize, WBlock<'_>)|
+     -> Option<Result<EquationFactor>> {
+        if i > first_error.load(Ordering::Relaxed) || poll() {
+            return None;
+        }
+        let out = factor_into(
+            &data.equations[i],
+            t,
+            scratch,
+            q,
+            qy,
+            if t >= LONG_COLUMN { &poll } else { &never },
+        );
+        if out.is_err() {
+            first_error.fetch_min(i, Ordering::Relaxed);
+        }
+        Some(out)
+    };
+    let results: Vec<Option<Result<EquationFactor>>> = if work < PARALLEL_WORK || n < 2 {
+        let mut scratch = Vec::new();
+        blocks
+            .into_iter()
+            .enumerate()
+            .map(|job| one(&mut scratch, job))
+            .collect()
+    } else {
+        use rayon::prelude::*;
+        crate::runtime::install(|| {
+            blocks
+                .into_par_iter()
+                .enumerate()
+                .with_max_len(1)
+                .map_init(Vec::new, one)
+                .collect()
+        })
+    };
     if stop.load(Ordering::Relaxed) {
         return Err(SurError::Interrupted);
     }
     let mut factors = Vec::with_capacity(n);
     for r in results {
-        match r.into_inner().unwrap_or_else(|p| p.into_inner()) {
+        match r {
             Some(Ok(f)) => factors.push(f),
             Some(Err(e)) => return Err(e),
-            None => unreachable!("an equation before the first failure was not factored"),
+            None => break,
         }
     }
-    Ok(factors)
-}
-
-/// Threads for this module's own parallel work of about `flops` operations: the cores, capped
-/// by the thread count of the OpenBLAS pool (the one knob users set, `blas_threads` or
-/// threadpoolctl), one on the threads of a batch of many systems (already one per core), and
-/// fewer by the other threads of this process that are running at the time (work of at least
-/// CONTENTION_CHECK_WORK only).
-///
-/// The last is for another library's idle BLAS workers: numpy's OpenBLAS spins its workers for
-/// about 0.1 s after each threaded call, and threads that share the cores with such a spinner
-/// lose more than they gain (case (c) right after a numpy `W.T @ W`: 26-29 ms on two threads,
-/// 23-25 ms on the free core; 37-43 ms with the Gram kernel's former per-block barrier).
-pub(crate) fn work_threads(flops: f64) -> usize {
-    if IN_WORKER.with(|w| w.get()) {
-        return 1;
+    match first_error.load(Ordering::Relaxed) {
+        usize::MAX if factors.len() == n => Ok(factors),
+        _ => unreachable!("an equation before the first failure was not factored"),
     }
-    let most = cores().min(blas_pool_threads()).min(MAX_THREADS);
-    if most <= 1 || flops < CONTENTION_CHECK_WORK {
-        return most;
-    }
-    match other_running_threads(cores() - 1) {
-        Some(busy) => most.min(cores() - busy).max(1),
-        None => most,
-    }
-}
-
-/// Parallel work below this many operations (about a millisecond on one core) does not look
-/// for running threads: the look costs some 40 us (a process of four threads).
-const CONTENTION_CHECK_WORK: f64 = 1.0e8;
-
-/// Threads of this process, other than the calling one, that are running or ready to run
-/// (state R in /proc/self/task/*/stat), counted up to `enough` (the look stops there: a process
-/// of a hundred threads costs no more than it must); None where /proc cannot be read.
-pub(crate) fn other_running_threads(enough: usize) -> Option<usize> {
-    let mut running = 0usize;
-    let mut buf = Vec::with_capacity(512);
-    for entry in std::fs::read_dir("/proc/self/task").ok()? {
-        let Ok(entry) = entry else { continue };
-        let mut path = entry.path();
-        path.push("stat");
-        buf.clear();
-        use std::io::Read;
-        // a thread may end between the listing and the read: skip it
-        let Ok(mut f) = std::fs::File::open(&path) else { continue };
-        if f.read_to_end(&mut buf).is_err() {
-            continue;
-        }
-        // "tid (name) S ...": the name may hold spaces and parentheses; the state follows the last ')'
-        if let Some(close) = buf.iter().rposition(|&b| b == b')') {
-            // the pool's own idle workers spin for a moment after each job, and give way at once
-            let idle_worker = || {
-                entry.file_name().to_str().and_then(|n| n.parse().ok()).is_some_and(crate::pool::is_idle_worker)
-            };
-            if buf.get(close + 2) == Some(&b'R') && !idle_worker() {
-                running += 1;
-                // the calling thread is one of them
-                if running > enough {
-                    break;
-                }
-            }
-        }
-    }
-    // the calling thread is running while it reads
-    Some(running.saturating_sub(1))
-}
-
-/// The thread count of the linked OpenBLAS's pool (at least 1).
-pub(crate) fn blas_pool_threads() -> usize {
-    extern "C" {
-        fn openblas_get_num_threads() -> std::os::raw::c_int;
-    }
-    // SAFETY: a plain OpenBLAS query.
-    unsafe { openblas_get_num_threads() }.max(1) as usize
-}
-
-/// The cores this process may use, asked once: the standard library reads the cgroup files
-/// on every call, which costs more than a small system's whole data pass.
-fn cores() -> usize {
-    static CORES: std::sync::OnceLock<usize> = std::sync::OnceLock::new();
-    *CORES.get_or_init(|| std::thread::available_parallelism().map(|c| c.get()).unwrap_or(1))
-}
-
-thread_local! {
-    /// Set on the threads of a batch of many systems, which are already one per core.
-    pub(crate) static IN_WORKER: std::cell::Cell<bool> = const { std::cell::Cell::new(false) };
 }
 
 /// One equation's columns of the not yet written W: Q_i (T x K_i) and q_i.
-type WBlock<'a> = (ArrayViewMut2<'a, MaybeUninit<f64>>, ArrayViewMut1<'a, MaybeUninit<f64>>);
+type WBlock<'a> = (
+    ArrayViewMut2<'a, MaybeUninit<f64>>,
+    ArrayViewMut1<'a, MaybeUninit<f64>>,
+);
 
 /// Columns at least this long are worth a Ctrl-C check each (a pass over them takes ~1 ms+).
 const LONG_COLUMN: usize = 1 << 18;
 
 /// Below this many flops-ish of step 0 (T (K_i + 1)^2 summed) threads cost more than they save.
 const PARALLEL_WORK: f64 = 2.0e6;
-const MAX_THREADS: usize = 8;
 
 /// Step 0 for one equation: copy X_i into its columns of W (checking it is finite), QR in
 /// place there (leaving Q_i), Q_i'y_i, one step of refinement in doubled precision, and the
@@ -561,8 +321,11 @@ fn factor_into(
         scratch.resize(t, 0.0);
     }
     let ebuf = &mut scratch[..t]; // y_i, then the refined residual
-    // W's columns of Q_i: one contiguous T x k column-major block
-    let block = wq.as_slice_memory_order_mut().filter(|b| b.len() == t * k).expect("W is column-major");
+                                  // W's columns of Q_i: one contiguous T x k column-major block
+    let block = wq
+        .as_slice_memory_order_mut()
+        .filter(|b| b.len() == t * k)
+        .expect("W is column-major");
     {
         // in row blocks, asking `stop` between them (a long copy takes a while)
         let mut start = 0;
@@ -577,7 +340,12 @@ fn factor_into(
                     // SAFETY: column j of the block is block[j * t..(j + 1) * t]; rows
                     // start..end of it are written (MaybeUninit<f64> has the layout of f64).
                     unsafe {
-                        crate::linalg::scatter_rows(&xs[start * k..end * k], k, block.as_mut_ptr().add(start) as *mut f64, t)
+                        crate::kernels::dot2::scatter_rows(
+                            &xs[start * k..end * k],
+                            k,
+                            block.as_mut_ptr().add(start) as *mut f64,
+                            t,
+                        )
                     };
                 }
                 None => {
@@ -648,9 +416,9 @@ fn factor_into(
         SurError::Interrupted => e,
         e => SurError::numerical(&format!("QR of equation '{}'", eq.name), e),
     };
-    // well-conditioned narrow blocks by CholeskyQR2 (four passes over the rows), the others by
-    // Householder
-    let rq = match crate::linalg::cholqr2_in_place(scratch, t, k, stop).map_err(qr_error)? {
+    // well-conditioned narrow blocks by CholeskyQR2 (three passes over the rows), the others
+    // by Householder
+    let rq = match crate::kernels::qr::cholqr2_in_place(scratch, t, k, stop).map_err(qr_error)? {
         Some(r) => r,
         None => thin_qr_in_place(scratch, t, k, stop).map_err(qr_error)?,
     };
@@ -668,7 +436,7 @@ fn factor_into(
     }
     // z = Q'y
     let mut z = Array1::<f64>::zeros(k);
-    crate::linalg::dots(scratch, t, ebuf, z.as_slice_mut().expect("fresh vector"));
+    crate::kernels::simd::dots(scratch, t, ebuf, z.as_slice_mut().expect("fresh vector"));
     let cond = cond_of_scaled(&rs, k);
     let plain = plain_residual(
         &scratch[..k * t],
@@ -682,23 +450,21 @@ fn factor_into(
     );
     let rho = match plain {
         Some(rho) => rho,
-        None => {
-            refine_fit(
-                eq.x,
-                eq.y,
-                &scratch[..k * t],
-                t,
-                r.as_slice().expect("fresh k x k array"),
-                z.as_slice_mut().expect("fresh vector"),
-                ebuf,
-                stop,
-            )?
-        }
+        None => refine_fit(
+            eq.x,
+            eq.y,
+            &scratch[..k * t],
+            t,
+            r.as_slice().expect("fresh k x k array"),
+            z.as_slice_mut().expect("fresh vector"),
+            ebuf,
+            stop,
+        )?,
     };
     // Q_i is in place in W; its column sums say whether it spans the constant.
     let mut s2 = 0.0;
     for j in 0..k {
-        let sum = crate::linalg::sum(&scratch[j * t..(j + 1) * t]);
+        let sum = crate::kernels::simd::sum(&scratch[j * t..(j + 1) * t]);
         s2 += sum * sum;
     }
     let inv = if rho > 0.0 {
@@ -708,12 +474,23 @@ fn factor_into(
         orthogonal_unit(&scratch[..k * t], t, k, ebuf);
         1.0
     };
-    let wy = wy.as_slice_memory_order_mut().filter(|c| c.len() == t).expect("W is column-major");
+    let wy = wy
+        .as_slice_memory_order_mut()
+        .filter(|c| c.len() == t)
+        .expect("W is column-major");
     for (d, v) in wy.iter_mut().zip(ebuf.iter()) {
         d.write(v * inv);
     }
     let spans_constant = (t as f64 - s2).abs() <= 1e-9 * t as f64;
-    Ok(EquationFactor { r, z, rho, spans_constant, tss_centred, tss_raw, cond })
+    Ok(EquationFactor {
+        r,
+        z,
+        rho,
+        spans_constant,
+        tss_centred,
+        tss_raw,
+        cond,
+    })
 }
 
 /// A unit vector orthogonal to the k orthonormal columns in `q` (T x k, column-major, k < T):
@@ -740,7 +517,7 @@ pub(crate) fn orthogonal_unit(q: &[f64], t: usize, k: usize, out: &mut [f64]) {
         for j in 0..k {
             let qj = &q[j * t..(j + 1) * t];
             let c = dot(qj, out);
-            crate::linalg::axpy(out, qj, -c);
+            crate::kernels::simd::axpy(out, qj, -c);
         }
     }
     let n = dot(out, out).sqrt();
@@ -757,7 +534,16 @@ pub(crate) fn orthogonal_unit(q: &[f64], t: usize, k: usize, out: &mut [f64]) {
 /// with a residual that is not tiny pass (the benchmark systems: a fifth of step 0 saved);
 /// data in levels that cancel, as NIST's Longley, or a near-exact fit, are refined.
 #[allow(clippy::too_many_arguments)]
-pub(crate) fn plain_residual(q: &[f64], t: usize, r: &[f64], z: &[f64], norms: &[f64], y_norm: f64, cond: f64, e: &mut [f64]) -> Option<f64> {
+pub(crate) fn plain_residual(
+    q: &[f64],
+    t: usize,
+    r: &[f64],
+    z: &[f64],
+    norms: &[f64],
+    y_norm: f64,
+    cond: f64,
+    e: &mut [f64],
+) -> Option<f64> {
     let k = z.len();
     if !(cond.is_finite() && y_norm.is_finite()) {
         return None;
@@ -774,7 +560,7 @@ pub(crate) fn plain_residual(q: &[f64], t: usize, r: &[f64], z: &[f64], norms: &
     back_substitute(r, z, b);
     let levels: f64 = norms.iter().zip(b.iter()).map(|(n, bj)| n * bj.abs()).sum();
     let e = &mut e[..t];
-    crate::linalg::sub_combination(e, q, t, z);
+    crate::kernels::simd::sub_combination(e, q, t, z);
     let ss = dot(e, e);
     if !(ss.is_finite() && ss > 1e-290) {
         return None;
@@ -839,7 +625,7 @@ pub(crate) fn refine_fit(
             return Err(SurError::Interrupted);
         }
         let end = (start + REFINE_ROWS).min(t);
-        crate::linalg::residual_dot2(
+        crate::kernels::dot2::residual_dot2(
             x.slice(s![start..end, ..]),
             y.slice(s![start..end]),
             b,
@@ -853,13 +639,17 @@ pub(crate) fn refine_fit(
     // z += Q'e, e -= Q (Q'e): Q is orthonormal to rounding, so one classical projection serves
     // (Q'e goes where b was: b is not needed after the residual)
     let c = b;
-    crate::linalg::dots(q, t, e, c);
+    crate::kernels::simd::dots(q, t, e, c);
     for (zj, cj) in z.iter_mut().zip(c.iter()) {
         *zj += cj;
     }
-    crate::linalg::sub_combination(e, q, t, c);
+    crate::kernels::simd::sub_combination(e, q, t, c);
     let ss = dot(e, e);
-    Ok(if ss.is_finite() && ss > 1e-290 { ss.sqrt() } else { scaled_norm(e) })
+    Ok(if ss.is_finite() && ss > 1e-290 {
+        ss.sqrt()
+    } else {
+        scaled_norm(e)
+    })
 }
 
 /// The range of the largest |y_i| that step 0 accepts: beyond it the residual variances (squares
@@ -877,7 +667,10 @@ const REFINE_ROWS: usize = 1 << 18;
 
 /// Steps 0 and 1 when every equation has the same regressors: one QR for X, and the residual
 /// matrix E = Y - Q Q'Y (T x N) in place of the P x P Gram matrix.
-fn shared_regressors(data: &SystemData, t: usize) -> Result<(Vec<EquationFactor>, Array2<f64>)> {
+pub(super) fn shared_regressors(
+    data: &SystemData,
+    t: usize,
+) -> Result<(Vec<EquationFactor>, Array2<f64>)> {
     let eq0 = &data.equations[0];
     let k = eq0.n_regressors();
     let (q, rs, norms) = scaled_qr(eq0, &[], t)?;
@@ -899,7 +692,10 @@ fn shared_regressors(data: &SystemData, t: usize) -> Result<(Vec<EquationFactor>
     let mut zmat = zmat + corr;
     // Refine each equation's fit from the data in doubled precision (see `refine_fit`).
     {
-        let qbuf = q.as_slice_memory_order().filter(|_| q.t().is_standard_layout()).expect("column-major Q");
+        let qbuf = q
+            .as_slice_memory_order()
+            .filter(|_| q.t().is_standard_layout())
+            .expect("column-major Q");
         let rbuf = r.as_standard_layout().into_owned();
         let mut zi = vec![0.0; k];
         let mut ei = vec![0.0; t];
@@ -950,43 +746,9 @@ fn shared_regressors(data: &SystemData, t: usize) -> Result<(Vec<EquationFactor>
 }
 
 #[cfg(test)]
-mod thread_tests {
-    use super::{cores, other_running_threads, work_threads};
-    use std::sync::atomic::{AtomicBool, Ordering};
-
-    /// A busy thread of this process is seen as running (state R of /proc/<pid>/task/<tid>/stat,
-    /// proc(5)), and large work then leaves its core to it. Linux only: elsewhere there is no
-    /// /proc and the look reports nothing.
-    #[test]
-    fn a_spinning_thread_is_seen_and_keeps_its_core() {
-        if !cfg!(target_os = "linux") {
-            assert!(other_running_threads(8).is_none());
-            return;
-        }
-        let stop = AtomicBool::new(false);
-        std::thread::scope(|s| {
-            s.spawn(|| {
-                while !stop.load(Ordering::Relaxed) {
-                    std::hint::spin_loop();
-                }
-            });
-            std::thread::sleep(std::time::Duration::from_millis(20));
-            let seen = (0..50).filter(|_| other_running_threads(8).expect("Linux has /proc") >= 1).count();
-            let threads = work_threads(1e10);
-            stop.store(true, Ordering::Relaxed);
-            // a spinning thread never sleeps: it is running or ready to run at every look
-            assert_eq!(seen, 50);
-            assert!(threads >= 1 && threads <= cores().saturating_sub(1).max(1), "{threads} threads");
-        });
-        // small work never looks
-        assert_eq!(work_threads(1.0), cores().min(super::blas_pool_threads()).min(super::MAX_THREADS));
-    }
-}
-
-#[cfg(test)]
 mod plain_residual_tests {
     use super::{cond_of_scaled, plain_residual, refine_fit, scaled_qr, PLAIN_RESIDUAL_ULPS};
-    use crate::system::Equation;
+    use crate::data::Equation;
     use ndarray::{Array1, Array2};
 
     /// The residual is left unrefined only where the refinement from the data in doubled
@@ -998,7 +760,9 @@ mod plain_residual_tests {
     fn an_unrefined_residual_is_kept_only_where_refinement_would_not_change_it() {
         let mut seed = 7u64;
         let mut rnd = move || {
-            seed = seed.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+            seed = seed
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
             (seed >> 11) as f64 / (1u64 << 53) as f64 - 0.5
         };
         let t = 2000;
@@ -1007,8 +771,16 @@ mod plain_residual_tests {
         let x = Array2::from_shape_fn((t, 5), |(_, j)| if j == 0 { 1.0 } else { 2.0 * rnd() });
         let y = Array1::from_shape_fn(t, |i| 0.5 + x[[i, 1]] - 0.3 * x[[i, 2]] + 0.7 * rnd());
         cases.push(("standardised regressors", x, y, true));
-        let x = Array2::from_shape_fn((t, 4), |(_, j)| if j == 0 { 1.0 } else { 1.0e4 * j as f64 + 10.0 * rnd() });
-        let y = Array1::from_shape_fn(t, |i| 6.0e4 + 3.0 * x[[i, 1]] - 2.0 * x[[i, 2]] + 0.5 * x[[i, 3]] + rnd());
+        let x = Array2::from_shape_fn((t, 4), |(_, j)| {
+            if j == 0 {
+                1.0
+            } else {
+                1.0e4 * j as f64 + 10.0 * rnd()
+            }
+        });
+        let y = Array1::from_shape_fn(t, |i| {
+            6.0e4 + 3.0 * x[[i, 1]] - 2.0 * x[[i, 2]] + 0.5 * x[[i, 3]] + rnd()
+        });
         cases.push(("levels that cancel", x, y, false));
         let x = Array2::from_shape_fn((t, 3), |(_, j)| if j == 0 { 1.0 } else { rnd() });
         let y = Array1::from_shape_fn(t, |i| 1.0 + x[[i, 1]] + 2.0 * x[[i, 2]] + 1e-9 * rnd());
@@ -1020,21 +792,43 @@ mod plain_residual_tests {
             let (q, rs, norms) = scaled_qr(&eq, &[], t).unwrap();
             let cond = cond_of_scaled(&rs, k);
             // R in data units, row-major
-            let r: Vec<f64> = (0..k * k).map(|a| rs[[a / k, a % k]] * norms[a % k]).collect();
+            let r: Vec<f64> = (0..k * k)
+                .map(|a| rs[[a / k, a % k]] * norms[a % k])
+                .collect();
             let qbuf: Vec<f64> = q.t().iter().copied().collect(); // column-major
             let z: Vec<f64> = (0..k).map(|j| q.column(j).dot(&y)).collect();
             let mut e = y.to_vec();
             let plain = plain_residual(&qbuf, t, &r, &z, &norms, y.dot(&y).sqrt(), cond, &mut e);
             assert_eq!(plain.is_some(), expect_plain, "{name}: cond {cond:.3e}");
             let (mut zr, mut er) = (z.clone(), vec![0.0; t]);
-            let rho_ref = refine_fit(x.view(), y.view(), &qbuf, t, &r, &mut zr, &mut er, &|| false).unwrap();
+            let rho_ref = refine_fit(x.view(), y.view(), &qbuf, t, &r, &mut zr, &mut er, &|| {
+                false
+            })
+            .unwrap();
             if let Some(rho) = plain {
                 let tol = PLAIN_RESIDUAL_ULPS * f64::EPSILON * rho_ref;
-                assert!((rho - rho_ref).abs() <= tol, "{name}: rho {rho} against {rho_ref}");
-                let dz = z.iter().zip(&zr).fold(0.0f64, |m, (a, b)| m.max((a - b).abs()));
-                assert!(dz <= tol, "{name}: z moved by {dz:.3e} (tolerance {tol:.3e})");
-                let de = e.iter().zip(&er).map(|(a, b)| (a - b) * (a - b)).sum::<f64>().sqrt();
-                assert!(de <= tol, "{name}: e moved by {de:.3e} (tolerance {tol:.3e})");
+                assert!(
+                    (rho - rho_ref).abs() <= tol,
+                    "{name}: rho {rho} against {rho_ref}"
+                );
+                let dz = z
+                    .iter()
+                    .zip(&zr)
+                    .fold(0.0f64, |m, (a, b)| m.max((a - b).abs()));
+                assert!(
+                    dz <= tol,
+                    "{name}: z moved by {dz:.3e} (tolerance {tol:.3e})"
+                );
+                let de = e
+                    .iter()
+                    .zip(&er)
+                    .map(|(a, b)| (a - b) * (a - b))
+                    .sum::<f64>()
+                    .sqrt();
+                assert!(
+                    de <= tol,
+                    "{name}: e moved by {de:.3e} (tolerance {tol:.3e})"
+                );
             }
         }
     }

@@ -1,7 +1,7 @@
 //! Small systems (K + N columns up to `MAX_COLUMNS`) in reusable buffers: the same steps as
 //! `prepare` and `estimate` (Householder QR per equation, the Gram matrix of
 //! W = [Q_1 q_1 .. Q_N q_N], GLS in the orthonormal basis, classical standard errors), without
-//! the general machinery's allocations, threads, LAPACK calls and diagnostics. A batch of
+//! the general machinery's allocations, threads, backend calls and diagnostics. A batch of
 //! thousands of systems of a few equations spends most of its time there otherwise.
 //!
 //! It only ever answers when the general path would give the same answer: anything unusual
@@ -14,8 +14,11 @@
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
 
 use crate::batch::BatchFit;
+use crate::estimate::omega::singular_floor;
 use crate::estimate::{Divisor, FitOptions, Method};
-use crate::linalg::{chol_solve_in_place, dot, householder_qr, singular_floor, small_chol, small_lower_inverse};
+use crate::kernels::qr::householder_qr;
+use crate::kernels::simd::{dot, dots};
+use crate::kernels::small::{chol_solve_in_place, small_chol, small_lower_inverse};
 use crate::prepare::{rank_tol, refine_fit};
 
 /// Largest K + N the small path takes (the K x K matrices stay in the cache).
@@ -75,20 +78,32 @@ fn chol(a: &mut [f64], n: usize) -> Option<f64> {
     if !small_chol(a, n) {
         return None;
     }
-    Some((0..n).map(|j| a[j * n + j] * a[j * n + j] / dmax).fold(f64::INFINITY, f64::min))
+    Some(
+        (0..n)
+            .map(|j| a[j * n + j] * a[j * n + j] / dmax)
+            .fold(f64::INFINITY, f64::min),
+    )
 }
 
 impl Work {
     /// S(delta) into `self.s` (N x N, both triangles): residual cross-products at
     /// delta = gamma - z, from the Gram matrix (as `Prepared::residual_crossprod`).
     fn crossprod(&mut self, n: usize, k: usize, p: usize, use_next: bool) {
-        let d = if use_next { &self.next[..k] } else { &self.delta[..k] };
+        let d = if use_next {
+            &self.next[..k]
+        } else {
+            &self.delta[..k]
+        };
         let (g, ga, s) = (&self.g, &mut self.ga, &mut self.s);
         for j in 0..n {
             let (a, b) = (self.off[j], self.off[j + 1]);
             // ga over coefficient rows (0..k) then q rows (k..k+n): column j of G A.
             for row in 0..(k + n) {
-                let gr = if row < k { self.col[row] } else { self.qcol[row - k] };
+                let gr = if row < k {
+                    self.col[row]
+                } else {
+                    self.qcol[row - k]
+                };
                 let grow = &g[gr * p..(gr + 1) * p];
                 let mut v = self.rho[j] * grow[self.qcol[j]];
                 for c in a..b {
@@ -131,7 +146,11 @@ impl Work {
         for i in 0..n {
             let d = self.omega[i * n + i];
             let scale = self.yscale[i];
-            if !d.is_finite() || !scale.is_finite() || d <= 0.0 || d.sqrt() <= MARGIN * scale * 1e-13 {
+            if !d.is_finite()
+                || !scale.is_finite()
+                || d <= 0.0
+                || d.sqrt() <= MARGIN * scale * 1e-13
+            {
                 return None;
             }
             dinv[i] = 1.0 / d.sqrt();
@@ -193,7 +212,10 @@ impl Work {
                 change += (self.next[c] - self.delta[c]).powi(2);
                 size += (self.z[c] + self.next[c]).powi(2);
             }
-            let denom = size.sqrt().max(self.rho[i] * f64::EPSILON).max(f64::MIN_POSITIVE);
+            let denom = size
+                .sqrt()
+                .max(self.rho[i] * f64::EPSILON)
+                .max(f64::MIN_POSITIVE);
             worst = worst.max(change.sqrt() / denom);
         }
         worst
@@ -202,9 +224,18 @@ impl Work {
 
 /// Fits one small system, or returns None when the general path must (see the module notes).
 /// `ys[i]` (T) and `xs[i]` (T x K_i) are equation i's data.
-pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOptions, ws: &mut Work) -> Option<BatchFit> {
+pub(crate) fn fit(
+    ys: &[ArrayView1<f64>],
+    xs: &[ArrayView2<f64>],
+    opts: &FitOptions,
+    ws: &mut Work,
+) -> Option<BatchFit> {
     let n = ys.len();
-    if n == 0 || n > 64 || xs.len() != n || !matches!(opts.divisor, Divisor::Ml | Divisor::Dof) || opts.validate().is_err()
+    if n == 0
+        || n > 64
+        || xs.len() != n
+        || !matches!(opts.divisor, Divisor::Ml | Divisor::Dof)
+        || opts.validate().is_err()
     {
         return None;
     }
@@ -223,7 +254,7 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
     if p > MAX_COLUMNS {
         return None;
     }
-    let shared = n > 1 && xs[1..].iter().all(|x| crate::system::same_matrix(x, &xs[0]));
+    let shared = n > 1 && xs[1..].iter().all(|x| crate::data::same_matrix(x, &xs[0]));
     for v in [&mut ws.z, &mut ws.delta, &mut ws.next] {
         sized(v, k).fill(0.0);
     }
@@ -291,8 +322,18 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
         if !e.iter().all(|v| v.is_finite()) {
             return None;
         }
-        crate::linalg::dots(qx, t, e, &mut ws.z[a..a + ki]);
-        let rho = refine_fit(xs[i].view(), ys[i].view(), qx, t, r, &mut ws.z[a..a + ki], e, &|| false).ok()?;
+        dots(qx, t, e, &mut ws.z[a..a + ki]);
+        let rho = refine_fit(
+            xs[i].view(),
+            ys[i].view(),
+            qx,
+            t,
+            r,
+            &mut ws.z[a..a + ki],
+            e,
+            &|| false,
+        )
+        .ok()?;
         ws.rho[i] = rho;
         if rho > 0.0 {
             let inv = 1.0 / rho;
@@ -307,7 +348,8 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
         ws.yscale[i] = if mx == 0.0 {
             0.0
         } else {
-            let s2: f64 = (a..a + ki).map(|c| (ws.z[c] / mx).powi(2)).sum::<f64>() + (ws.rho[i] / mx).powi(2);
+            let s2: f64 =
+                (a..a + ki).map(|c| (ws.z[c] / mx).powi(2)).sum::<f64>() + (ws.rho[i] / mx).powi(2);
             mx * s2.sqrt() / (t as f64).sqrt()
         };
         // R_i^-1 (upper), for the coefficients and their variances
@@ -349,7 +391,11 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
     let mut converged = true;
     let mut gls_done = false;
     if opts.method != Method::Ols {
-        let max_iter = if opts.method == Method::Fgls { 1 } else { opts.max_iter };
+        let max_iter = if opts.method == Method::Fgls {
+            1
+        } else {
+            opts.max_iter
+        };
         converged = opts.method == Method::Fgls;
         while n_iter < max_iter {
             ws.invert_omega(n)?;
@@ -429,5 +475,12 @@ pub(crate) fn fit(ys: &[ArrayView1<f64>], xs: &[ArrayView2<f64>], opts: &FitOpti
         }
         None => f64::NEG_INFINITY,
     };
-    Some(BatchFit { coef, se, omega, n_iter, converged, loglik })
+    Some(BatchFit {
+        coef,
+        se,
+        omega,
+        n_iter,
+        converged,
+        loglik,
+    })
 }

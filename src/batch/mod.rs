@@ -1,17 +1,19 @@
 //! Many small independent systems at once, spread over threads. One failing system does not
 //! stop the others: each gets its own result or error.
 //!
-//! Each system first goes to the small-system path (`small`: reusable buffers, no LAPACK);
+//! Each system first goes to the small-system path (`small`: reusable buffers, own kernels);
 //! whatever that path declines (large systems, shrinkage, anything near a singularity limit,
 //! and every input error) runs through the general `Prepared` path, which gives the same
 //! numbers to rounding or the typed error.
 
 use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2};
 
+pub(crate) mod small;
+
+use crate::data::{Equation, SystemData};
 use crate::error::Result;
-use crate::estimate::{CovKind, FitOptions};
+use crate::estimate::{CovKind, Estimation, FitOptions};
 use crate::prepare::Prepared;
-use crate::system::{Equation, SystemData};
 
 /// What one system of a batch yields.
 #[derive(Debug, Clone)]
@@ -32,7 +34,12 @@ pub trait Systems: Sync {
     fn count(&self) -> usize;
     /// System g's equations as views (cleared and refilled), for the small path; false when
     /// its names or shapes need the general path's checks.
-    fn views<'s>(&'s self, g: usize, ys: &mut Vec<ArrayView1<'s, f64>>, xs: &mut Vec<ArrayView2<'s, f64>>) -> bool;
+    fn views<'s>(
+        &'s self,
+        g: usize,
+        ys: &mut Vec<ArrayView1<'s, f64>>,
+        xs: &mut Vec<ArrayView2<'s, f64>>,
+    ) -> bool;
     /// System g with its names, for the general path.
     fn system(&self, g: usize) -> SystemData<'_>;
 }
@@ -41,7 +48,12 @@ impl<'a> Systems for [SystemData<'a>] {
     fn count(&self) -> usize {
         self.len()
     }
-    fn views<'s>(&'s self, g: usize, ys: &mut Vec<ArrayView1<'s, f64>>, xs: &mut Vec<ArrayView2<'s, f64>>) -> bool {
+    fn views<'s>(
+        &'s self,
+        g: usize,
+        ys: &mut Vec<ArrayView1<'s, f64>>,
+        xs: &mut Vec<ArrayView2<'s, f64>>,
+    ) -> bool {
         ys.clear();
         xs.clear();
         for eq in &self[g].equations {
@@ -55,7 +67,12 @@ impl<'a> Systems for [SystemData<'a>] {
             self[g]
                 .equations
                 .iter()
-                .map(|e| Equation { name: e.name.clone(), y: e.y.view(), x: e.x.view(), regressors: e.regressors.clone() })
+                .map(|e| Equation {
+                    name: e.name.clone(),
+                    y: e.y.view(),
+                    x: e.x.view(),
+                    regressors: e.regressors.clone(),
+                })
                 .collect(),
         )
     }
@@ -84,19 +101,34 @@ impl<'a> Stacked<'a> {
         let rows = ys.first().map_or(0, |y| y.len());
         assert!(ys.len() == xs.len() && names.len() == ys.len() && regressors.len() == ys.len());
         assert!(ys.iter().all(|y| y.len() == rows) && xs.iter().all(|x| x.nrows() == rows));
-        assert!(!bounds.is_empty() && bounds.windows(2).all(|w| w[0] <= w[1]) && bounds[bounds.len() - 1] <= rows);
+        assert!(
+            !bounds.is_empty()
+                && bounds.windows(2).all(|w| w[0] <= w[1])
+                && bounds[bounds.len() - 1] <= rows
+        );
         // Names and column counts are the same in every system: check them once, on an
         // empty-row copy of the layout (the row-count checks are per system, in `views`).
         let probe = SystemData::new(
             (0..ys.len())
                 .map(|i| {
-                    Equation::new(names[i].clone(), ys[i].slice(s![..0]), xs[i].slice(s![..0, ..]))
-                        .with_regressors(regressors[i].clone())
+                    Equation::new(
+                        names[i].clone(),
+                        ys[i].slice(s![..0]),
+                        xs[i].slice(s![..0, ..]),
+                    )
+                    .with_regressors(regressors[i].clone())
                 })
                 .collect(),
         );
         let names_ok = probe.validate_shapes(false).is_ok();
-        Stacked { ys, xs, bounds, names, regressors, names_ok }
+        Stacked {
+            ys,
+            xs,
+            bounds,
+            names,
+            regressors,
+            names_ok,
+        }
     }
 }
 
@@ -104,7 +136,12 @@ impl<'a> Systems for Stacked<'a> {
     fn count(&self) -> usize {
         self.bounds.len() - 1
     }
-    fn views<'s>(&'s self, g: usize, ys: &mut Vec<ArrayView1<'s, f64>>, xs: &mut Vec<ArrayView2<'s, f64>>) -> bool {
+    fn views<'s>(
+        &'s self,
+        g: usize,
+        ys: &mut Vec<ArrayView1<'s, f64>>,
+        xs: &mut Vec<ArrayView2<'s, f64>>,
+    ) -> bool {
         let (a, b) = (self.bounds[g], self.bounds[g + 1]);
         ys.clear();
         xs.clear();
@@ -135,9 +172,20 @@ impl<'a> Systems for Stacked<'a> {
 pub(crate) fn fit_general(data: &SystemData, opts: &FitOptions) -> Result<BatchFit> {
     let prep = Prepared::new(data)?;
     let est = prep.estimate_with(opts, None, Some(data), &|| false)?;
-    let se = prep.coef_variances(&est, CovKind::Classical, Some(data))?.mapv(|v| v.max(0.0).sqrt());
-    let loglik = prep.log_likelihood(est.resid_crossprod()).unwrap_or(f64::NEG_INFINITY);
-    Ok(BatchFit { coef: est.coef, se, omega: est.omega, n_iter: est.n_iter, converged: est.converged, loglik })
+    let se = prep
+        .coef_variances(&est, CovKind::Classical, Some(data))?
+        .mapv(|v| v.max(0.0).sqrt());
+    let loglik = prep
+        .log_likelihood(est.resid_crossprod())
+        .unwrap_or(f64::NEG_INFINITY);
+    Ok(BatchFit {
+        coef: est.coef,
+        se,
+        omega: est.omega,
+        n_iter: est.n_iter,
+        converged: est.converged,
+        loglik,
+    })
 }
 
 /// Fits every system of a slice with the same options: see `fit_batch`.
@@ -150,10 +198,11 @@ pub fn fit_many(
     fit_batch(systems, opts, threads, cancel)
 }
 
-/// Fits every system with the same options on `threads` threads (at least one; the calling
-/// thread is one of them), in order. Systems are handed out one at a time, so uneven costs
-/// balance. Only the calling thread asks `cancel` (every 32 systems) whether to stop, so a
-/// signal handler tied to it is honoured; systems not started then get `SurError::Interrupted`.
+/// Fits every system with the same options on up to `threads` threads of blocksur's pool (and
+/// no more than its thread limit), in order. Systems are handed out one at a time, so uneven
+/// costs balance; each worker keeps its own buffers, and each system's own steps run
+/// sequentially. `cancel` is asked every 32 systems of a worker; systems not started when it
+/// says stop get `SurError::Interrupted`.
 pub fn fit_batch<S: Systems + ?Sized>(
     systems: &S,
     opts: &FitOptions,
@@ -163,42 +212,57 @@ pub fn fit_batch<S: Systems + ?Sized>(
     use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
     use std::sync::OnceLock;
     let count = systems.count();
-    let threads = threads.max(1).min(count.max(1));
+    let workers = threads
+        .max(1)
+        .min(crate::runtime::get_threads())
+        .min(count.max(1));
     let slots: Vec<OnceLock<Result<BatchFit>>> = (0..count).map(|_| OnceLock::new()).collect();
     let next = AtomicUsize::new(0);
     let stop = AtomicBool::new(false);
-    let work = |checks: bool| {
-        crate::prepare::IN_WORKER.with(|w| w.set(true));
-        let mut ws = crate::small::Work::default();
-        let (mut ys, mut xs) = (Vec::new(), Vec::new());
-        let mut done = 0usize;
-        loop {
-            if checks && done.is_multiple_of(32) && cancel() {
-                stop.store(true, Ordering::Relaxed);
+    let work = || {
+        crate::runtime::sequential(|| {
+            let mut ws = small::Work::default();
+            let (mut ys, mut xs) = (Vec::new(), Vec::new());
+            let mut done = 0usize;
+            loop {
+                if done.is_multiple_of(32) && cancel() {
+                    stop.store(true, Ordering::Relaxed);
+                }
+                if stop.load(Ordering::Relaxed) {
+                    return;
+                }
+                let g = next.fetch_add(1, Ordering::Relaxed);
+                if g >= count {
+                    return;
+                }
+                let small = if systems.views(g, &mut ys, &mut xs) {
+                    small::fit(&ys, &xs, opts, &mut ws)
+                } else {
+                    None
+                };
+                let out = match small {
+                    Some(f) => Ok(f),
+                    None => fit_general(&systems.system(g), opts),
+                };
+                let _ = slots[g].set(out);
+                done += 1;
             }
-            if stop.load(Ordering::Relaxed) {
-                return;
-            }
-            let g = next.fetch_add(1, Ordering::Relaxed);
-            if g >= count {
-                return;
-            }
-            let small = if systems.views(g, &mut ys, &mut xs) { crate::small::fit(&ys, &xs, opts, &mut ws) } else { None };
-            let out = match small {
-                Some(f) => Ok(f),
-                None => fit_general(&systems.system(g), opts),
-            };
-            let _ = slots[g].set(out);
-            done += 1;
-        }
+        })
     };
-    let nested = crate::prepare::IN_WORKER.with(|w| w.get());
-    std::thread::scope(|scope| {
-        for _ in 1..threads {
-            scope.spawn(|| work(false));
-        }
-        work(true);
-    });
-    crate::prepare::IN_WORKER.with(|w| w.set(nested));
-    slots.into_iter().map(|s| s.into_inner().unwrap_or(Err(crate::SurError::Interrupted))).collect()
+    if workers <= 1 {
+        work();
+    } else {
+        crate::runtime::install(|| {
+            rayon::scope(|scope| {
+                for _ in 1..workers {
+                    scope.spawn(|_| work());
+                }
+                work();
+            })
+        });
+    }
+    slots
+        .into_iter()
+        .map(|s| s.into_inner().unwrap_or(Err(crate::SurError::Interrupted)))
+        .collect()
 }

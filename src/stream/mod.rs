@@ -13,10 +13,12 @@
 
 use ndarray::{concatenate, s, Array1, Array2, Axis, ShapeBuilder};
 
+use crate::data::SystemData;
 use crate::error::{Result, SurError};
-use crate::linalg::{gram, symmetrize, upper_inverse};
-use crate::prepare::{abs_max, check_rank, cond_of_scaled, y_max_in_range, CrossProducts, EquationFactor, Prepared};
-use crate::system::SystemData;
+use crate::kernels::{gram, symmetrize, upper_inverse};
+use crate::prepare::{
+    abs_max, check_rank, cond_of_scaled, y_max_in_range, CrossProducts, EquationFactor, Prepared,
+};
 
 /// Pass-1 summary of some rows: per equation the upper-triangular R of [X_i | y_i], and the
 /// largest |y_i| (merged by max).
@@ -27,44 +29,11 @@ pub struct RowFactors {
     pub y_max: Vec<f64>,
 }
 
-/// The R factor (m x m; rows below min(rows, m) zero) of a rows x m matrix, by LAPACK dgeqrf
-/// alone: the Q factor is never formed.
-fn qr_r(a: Array2<f64>, what: &str) -> Result<Array2<f64>> {
-    let (rows, m) = a.dim();
-    let mut a = if a.t().is_standard_layout() { a } else { crate::linalg::to_fortran(&a) };
-    if rows == 0 || m == 0 {
-        return Ok(Array2::zeros((m, m)));
-    }
-    let (ri, mi) = (rows as i32, m as i32);
-    let mut tau = vec![0.0f64; rows.min(m)];
-    let (mut info, mut query, minus1) = (0, 0.0f64, -1);
-    // SAFETY: `a` is a rows x m column-major buffer with leading dimension rows; `tau` holds
-    // min(rows, m) reflectors; the workspace is sized by LAPACK's own query (lwork = -1).
-    unsafe {
-        lapack_sys::dgeqrf_(&ri, &mi, a.as_mut_ptr(), &ri, tau.as_mut_ptr(), &mut query, &minus1, &mut info);
-        let lwork = (query as usize).max(m);
-        let mut work = vec![0.0f64; lwork];
-        lapack_sys::dgeqrf_(
-            &ri,
-            &mi,
-            a.as_mut_ptr(),
-            &ri,
-            tau.as_mut_ptr(),
-            work.as_mut_ptr(),
-            &(lwork as i32),
-            &mut info,
-        );
-    }
-    if info != 0 {
-        return Err(SurError::numerical(what, format!("LAPACK dgeqrf info {info}")));
-    }
-    let mut r = Array2::<f64>::zeros((m, m));
-    for j in 0..m {
-        for i in 0..=j.min(rows - 1) {
-            r[[i, j]] = a[[i, j]];
-        }
-    }
-    Ok(r)
+/// The R factor (m x m; rows below min(rows, m) zero) of a rows x m matrix: the Q factor is
+/// never formed.
+fn qr_r(a: Array2<f64>, _what: &str) -> Result<Array2<f64>> {
+    let mut a = a;
+    Ok(crate::kernels::qr_r(a.view_mut()))
 }
 
 /// The R factor (p x p, upper triangular) of a rows x p matrix whose rows a..b `fill` writes
@@ -108,7 +77,11 @@ impl RowFactors {
             r.push(tsqr_rows(rows, k + 1, fill, "QR of a chunk")?);
         }
         let y_max = data.equations.iter().map(|eq| abs_max(eq.y)).collect();
-        Ok(RowFactors { n_rows: rows, r, y_max })
+        Ok(RowFactors {
+            n_rows: rows,
+            r,
+            y_max,
+        })
     }
 
     /// Refuses the rows, as finishing would, when the largest |y| of an equation of `names` is
@@ -116,28 +89,41 @@ impl RowFactors {
     /// again (and before pass 2 meets factors that overflowed).
     pub fn check_y_range(&self, names: &[String]) -> Result<()> {
         if names.len() != self.y_max.len() || names.len() != self.r.len() {
-            return Err(SurError::InvalidOption("the pass-1 summary does not match the system".into()));
+            return Err(SurError::InvalidOption(
+                "the pass-1 summary does not match the system".into(),
+            ));
         }
         check_y_range(names, &self.y_max)
     }
 
     /// The summary of the union of two sets of rows.
     pub fn merge(self, other: RowFactors) -> Result<RowFactors> {
-        if self.r.len() != other.r.len() || self.y_max.len() != self.r.len() || other.y_max.len() != other.r.len() {
-            return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
+        if self.r.len() != other.r.len()
+            || self.y_max.len() != self.r.len()
+            || other.y_max.len() != other.r.len()
+        {
+            return Err(SurError::InvalidOption(
+                "cannot merge summaries of different systems".into(),
+            ));
         }
         let y_max = merge_max(&self.y_max, &other.y_max);
         let mut r = Vec::with_capacity(self.r.len());
         for (a, b) in self.r.into_iter().zip(other.r) {
             if a.dim() != b.dim() || a.nrows() != a.ncols() || a.nrows() == 0 {
-                return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
+                return Err(SurError::InvalidOption(
+                    "cannot merge summaries of different systems".into(),
+                ));
             }
             let stacked = concatenate(Axis(0), &[a.view(), b.view()]).expect("same widths");
             let mut f = Array2::<f64>::zeros(stacked.dim().f());
             f.assign(&stacked);
             r.push(qr_r(f, "QR of stacked chunk factors")?);
         }
-        Ok(RowFactors { n_rows: self.n_rows + other.n_rows, r, y_max })
+        Ok(RowFactors {
+            n_rows: self.n_rows + other.n_rows,
+            r,
+            y_max,
+        })
     }
 }
 
@@ -194,11 +180,17 @@ impl Pass2Basis {
 
 impl CrossStats {
     /// Pass 2 on one chunk.
-    pub fn from_chunk(data: &SystemData, basis: &Pass2Basis, row_offset: usize) -> Result<CrossStats> {
+    pub fn from_chunk(
+        data: &SystemData,
+        basis: &Pass2Basis,
+        row_offset: usize,
+    ) -> Result<CrossStats> {
         let rows = data.validate_chunk(row_offset, false)?;
         let n = data.n_eq();
         if basis.rinv.len() != n {
-            return Err(SurError::InvalidOption("the chunk does not match the pass-1 summary".into()));
+            return Err(SurError::InvalidOption(
+                "the chunk does not match the pass-1 summary".into(),
+            ));
         }
         let k: usize = data.equations.iter().map(|e| e.n_regressors()).sum();
         let p = k + n;
@@ -207,18 +199,30 @@ impl CrossStats {
         for (i, eq) in data.equations.iter().enumerate() {
             let ki = eq.n_regressors();
             if basis.rinv[i].nrows() != ki + 1 {
-                return Err(SurError::InvalidOption("the chunk does not match the pass-1 summary".into()));
+                return Err(SurError::InvalidOption(
+                    "the chunk does not match the pass-1 summary".into(),
+                ));
             }
             let mut a = Array2::<f64>::zeros((rows, ki + 1));
             a.slice_mut(s![.., ..ki]).assign(&eq.x);
             a.column_mut(ki).assign(&eq.y);
             let qa = a.dot(&basis.rinv[i]);
-            w.slice_mut(s![.., off..off + ki]).assign(&qa.slice(s![.., ..ki]));
-            w.column_mut(k + i).assign(&qa.column(ki).mapv(|v| v * basis.sign[i]));
+            w.slice_mut(s![.., off..off + ki])
+                .assign(&qa.slice(s![.., ..ki]));
+            w.column_mut(k + i)
+                .assign(&qa.column(ki).mapv(|v| v * basis.sign[i]));
             off += ki;
         }
         let (y_mean, y_m2, y_raw, y_max) = y_moments(data, rows);
-        Ok(CrossStats { n_rows: rows, gram: gram(w.view()), colsum: w.sum_axis(Axis(0)), y_mean, y_m2, y_raw, y_max })
+        Ok(CrossStats {
+            n_rows: rows,
+            gram: gram(w.view()),
+            colsum: w.sum_axis(Axis(0)),
+            y_mean,
+            y_m2,
+            y_raw,
+            y_max,
+        })
     }
 
     /// The summary of the union of two sets of rows.
@@ -232,11 +236,25 @@ impl CrossStats {
             || self.y_raw.len() != other.y_raw.len()
             || self.y_max.len() != other.y_max.len()
         {
-            return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
+            return Err(SurError::InvalidOption(
+                "cannot merge summaries of different systems".into(),
+            ));
         }
         let (y_mean, y_m2, y_raw, y_max) = merge_moments(
-            (self.n_rows, &self.y_mean, &self.y_m2, &self.y_raw, &self.y_max),
-            (other.n_rows, &other.y_mean, &other.y_m2, &other.y_raw, &other.y_max),
+            (
+                self.n_rows,
+                &self.y_mean,
+                &self.y_m2,
+                &self.y_raw,
+                &self.y_max,
+            ),
+            (
+                other.n_rows,
+                &other.y_mean,
+                &other.y_m2,
+                &other.y_raw,
+                &other.y_max,
+            ),
         );
         Ok(CrossStats {
             n_rows: self.n_rows + other.n_rows,
@@ -256,9 +274,14 @@ type YStats = (Vec<f64>, Vec<f64>, Vec<f64>, Vec<f64>);
 
 /// The `YStats` of the rows of a chunk.
 fn y_moments(data: &SystemData, rows: usize) -> YStats {
-    let (mut y_mean, mut y_m2, mut y_raw, mut y_max) = (Vec::new(), Vec::new(), Vec::new(), Vec::new());
+    let (mut y_mean, mut y_m2, mut y_raw, mut y_max) =
+        (Vec::new(), Vec::new(), Vec::new(), Vec::new());
     for eq in &data.equations {
-        let mean = if rows > 0 { eq.y.sum() / rows as f64 } else { 0.0 };
+        let mean = if rows > 0 {
+            eq.y.sum() / rows as f64
+        } else {
+            0.0
+        };
         y_mean.push(mean);
         y_m2.push(eq.y.iter().map(|v| (v - mean) * (v - mean)).sum());
         y_raw.push(eq.y.iter().map(|v| v * v).sum());
@@ -294,7 +317,10 @@ fn merge_max(a: &[f64], b: &[f64]) -> Vec<f64> {
 /// in-memory data pass accepts, with its message: called where the summaries are finished,
 /// before anything is computed from them.
 fn check_y_range(names: &[String], y_max: &[f64]) -> Result<()> {
-    names.iter().zip(y_max).try_for_each(|(name, &m)| y_max_in_range(name, m))
+    names
+        .iter()
+        .zip(y_max)
+        .try_for_each(|(name, &m)| y_max_in_range(name, m))
 }
 
 /// One-pass summary of some rows. With Z = [X_1 y_1 .. X_N y_N] (T x P, each equation's
@@ -326,7 +352,9 @@ impl RowSummary {
         let mut off = 0;
         for eq in &data.equations {
             let k = eq.n_regressors();
-            colsum.slice_mut(s![off..off + k]).assign(&eq.x.sum_axis(Axis(0)));
+            colsum
+                .slice_mut(s![off..off + k])
+                .assign(&eq.x.sum_axis(Axis(0)));
             colsum[off + k] = eq.y.sum();
             off += k + 1;
         }
@@ -334,14 +362,23 @@ impl RowSummary {
             let mut off = 0;
             for eq in &data.equations {
                 let k = eq.n_regressors();
-                out.slice_mut(s![.., off..off + k]).assign(&eq.x.slice(s![a..b, ..]));
+                out.slice_mut(s![.., off..off + k])
+                    .assign(&eq.x.slice(s![a..b, ..]));
                 out.column_mut(off + k).assign(&eq.y.slice(s![a..b]));
                 off += k + 1;
             }
         };
         let r = tsqr_rows(rows, p, fill, "QR of a chunk")?;
         let (y_mean, y_m2, y_raw, y_max) = y_moments(data, rows);
-        Ok(RowSummary { n_rows: rows, r, colsum, y_mean, y_m2, y_raw, y_max })
+        Ok(RowSummary {
+            n_rows: rows,
+            r,
+            colsum,
+            y_mean,
+            y_m2,
+            y_raw,
+            y_max,
+        })
     }
 
     /// The summary of the union of two sets of rows.
@@ -358,15 +395,29 @@ impl RowSummary {
             || self.y_max.len() != self.y_mean.len()
             || other.y_max.len() != other.y_mean.len()
         {
-            return Err(SurError::InvalidOption("cannot merge summaries of different systems".into()));
+            return Err(SurError::InvalidOption(
+                "cannot merge summaries of different systems".into(),
+            ));
         }
         let stacked = concatenate(Axis(0), &[self.r.view(), other.r.view()]).expect("same widths");
         let mut f = Array2::<f64>::zeros(stacked.dim().f());
         f.assign(&stacked);
         let r = qr_r(f, "QR of stacked chunk summaries")?;
         let (y_mean, y_m2, y_raw, y_max) = merge_moments(
-            (self.n_rows, &self.y_mean, &self.y_m2, &self.y_raw, &self.y_max),
-            (other.n_rows, &other.y_mean, &other.y_m2, &other.y_raw, &other.y_max),
+            (
+                self.n_rows,
+                &self.y_mean,
+                &self.y_m2,
+                &self.y_raw,
+                &self.y_max,
+            ),
+            (
+                other.n_rows,
+                &other.y_mean,
+                &other.y_m2,
+                &other.y_raw,
+                &other.y_max,
+            ),
         );
         Ok(RowSummary {
             n_rows: self.n_rows + other.n_rows,
@@ -393,11 +444,15 @@ impl RowSummary {
             || self.y_mean.len() != n
             || self.y_max.len() != n
         {
-            return Err(SurError::InvalidOption("the summary does not match the system".into()));
+            return Err(SurError::InvalidOption(
+                "the summary does not match the system".into(),
+            ));
         }
         check_y_range(names, &self.y_max)?;
         if self.r.iter().any(|v| !v.is_finite()) {
-            return Err(SurError::InvalidOption("the summary holds non-finite values".into()));
+            return Err(SurError::InvalidOption(
+                "the summary holds non-finite values".into(),
+            ));
         }
         let k = p - n;
         // At least P rows, so that every equation's block is tall (zero rows change no product).
@@ -410,9 +465,10 @@ impl RowSummary {
         let (mut off, mut qoff) = (0, 0);
         for (i, &w) in widths.iter().enumerate() {
             let ki = w - 1;
-            let (q, r) = crate::linalg::thin_qr(a.slice(s![.., off..off + w]).to_owned())?;
+            let (q, r) = crate::kernels::qr::thin_qr(a.slice(s![.., off..off + w]).to_owned())?;
             let sign = if r[[ki, ki]] < 0.0 { -1.0 } else { 1.0 };
-            v.slice_mut(s![.., qoff..qoff + ki]).assign(&q.slice(s![.., ..ki]));
+            v.slice_mut(s![.., qoff..qoff + ki])
+                .assign(&q.slice(s![.., ..ki]));
             v.column_mut(k + i).assign(&q.column(ki).mapv(|x| x * sign));
             // 1'[Q_i q_i] = 1'[X_i y_i] R^-1 (a zero pivot is named when finishing; a perfect
             // fit's q is immaterial).
@@ -422,9 +478,18 @@ impl RowSummary {
                     safe[[j, j]] = 1.0;
                 }
             }
-            let c = self.colsum.slice(s![off..off + w]).dot(&upper_inverse(&safe)?);
-            colsum.slice_mut(s![qoff..qoff + ki]).assign(&c.slice(s![..ki]));
-            colsum[k + i] = if r[[ki, ki]] == 0.0 { 0.0 } else { sign * c[ki] };
+            let c = self
+                .colsum
+                .slice(s![off..off + w])
+                .dot(&upper_inverse(&safe)?);
+            colsum
+                .slice_mut(s![qoff..qoff + ki])
+                .assign(&c.slice(s![..ki]));
+            colsum[k + i] = if r[[ki, ki]] == 0.0 {
+                0.0
+            } else {
+                sign * c[ki]
+            };
             factors.push(r);
             off += w;
             qoff += ki;
@@ -438,85 +503,114 @@ impl RowSummary {
             y_raw: self.y_raw.clone(),
             y_max: self.y_max.clone(),
         };
-        Ok((RowFactors { n_rows: self.n_rows, r: factors, y_max: self.y_max.clone() }, stats))
+        Ok((
+            RowFactors {
+                n_rows: self.n_rows,
+                r: factors,
+                y_max: self.y_max.clone(),
+            },
+            stats,
+        ))
     }
 }
 
-impl Prepared {
-    /// Finishes steps 0 and 1 from merged pass-1 and pass-2 summaries of all rows.
-    pub fn from_summaries(
-        names: Vec<String>,
-        regressors: Vec<Vec<String>>,
-        factors: &RowFactors,
-        stats: &CrossStats,
-    ) -> Result<Prepared> {
-        let n = names.len();
-        if n == 0 {
-            return Err(SurError::EmptySystem);
+/// Finishes steps 0 and 1 from merged pass-1 and pass-2 summaries of all rows.
+pub fn prepare_from_summaries(
+    names: Vec<String>,
+    regressors: Vec<Vec<String>>,
+    factors: &RowFactors,
+    stats: &CrossStats,
+) -> Result<Prepared> {
+    let n = names.len();
+    if n == 0 {
+        return Err(SurError::EmptySystem);
+    }
+    if factors.r.len() != n || regressors.len() != n || factors.n_rows != stats.n_rows {
+        return Err(SurError::InvalidOption(
+            "the summaries do not match the system".into(),
+        ));
+    }
+    let t = factors.n_rows;
+    let mut offsets = vec![0usize];
+    for regs in &regressors {
+        offsets.push(offsets.last().unwrap() + regs.len());
+    }
+    let k = offsets[n];
+    if stats.gram.dim() != (k + n, k + n)
+        || stats.colsum.len() != k + n
+        || stats.y_mean.len() != n
+        || stats.y_m2.len() != n
+        || stats.y_raw.len() != n
+        || stats.y_max.len() != n
+    {
+        return Err(SurError::InvalidOption(
+            "the pass-2 summary does not match the system".into(),
+        ));
+    }
+    check_y_range(&names, &stats.y_max)?;
+    let mut out = Vec::with_capacity(n);
+    for i in 0..n {
+        let ki = regressors[i].len();
+        let rp = &factors.r[i];
+        if rp.nrows() != ki + 1 || rp.ncols() != ki + 1 {
+            return Err(SurError::InvalidOption(
+                "the summaries do not match the system".into(),
+            ));
         }
-        if factors.r.len() != n || regressors.len() != n || factors.n_rows != stats.n_rows {
-            return Err(SurError::InvalidOption("the summaries do not match the system".into()));
-        }
-        let t = factors.n_rows;
-        let mut offsets = vec![0usize];
-        for regs in &regressors {
-            offsets.push(offsets.last().unwrap() + regs.len());
-        }
-        let k = offsets[n];
-        if stats.gram.dim() != (k + n, k + n)
-            || stats.colsum.len() != k + n
-            || stats.y_mean.len() != n
-            || stats.y_m2.len() != n
-            || stats.y_raw.len() != n
-            || stats.y_max.len() != n
-        {
-            return Err(SurError::InvalidOption("the pass-2 summary does not match the system".into()));
-        }
-        check_y_range(&names, &stats.y_max)?;
-        let mut out = Vec::with_capacity(n);
-        for i in 0..n {
-            let ki = regressors[i].len();
-            let rp = &factors.r[i];
-            if rp.nrows() != ki + 1 || rp.ncols() != ki + 1 {
-                return Err(SurError::InvalidOption("the summaries do not match the system".into()));
-            }
-            if t <= ki {
-                return Err(SurError::TooFewObservations { equation: names[i].clone(), n_obs: t, n_regressors: ki });
-            }
-            // Column norms of [X_i | y_i] are the column norms of R (Q has orthonormal columns).
-            let norms: Vec<f64> = (0..=ki).map(|j| rp.column(j).dot(&rp.column(j)).sqrt()).collect();
-            let yscale = if norms[ki] > 0.0 { norms[ki] } else { 1.0 };
-            let mut rs = rp.clone();
-            for j in 0..ki {
-                if norms[j] > 0.0 {
-                    rs.column_mut(j).mapv_inplace(|v| v / norms[j]);
-                }
-            }
-            rs.column_mut(ki).mapv_inplace(|v| v / yscale);
-            check_rank(&names[i], &regressors[i], &rs, &norms[..ki], t)?;
-            let r = rp.slice(s![..ki, ..ki]).to_owned();
-            let z = rp.slice(s![..ki, ki]).to_owned();
-            let rho = rp[[ki, ki]].abs();
-            let s2: f64 = stats.colsum.slice(s![offsets[i]..offsets[i + 1]]).iter().map(|v| v * v).sum();
-            out.push(EquationFactor {
-                r,
-                z,
-                rho,
-                spans_constant: (t as f64 - s2).abs() <= 1e-9 * t as f64,
-                tss_centred: stats.y_m2[i],
-                tss_raw: stats.y_raw[i],
-                cond: cond_of_scaled(&rs, ki),
+        if t <= ki {
+            return Err(SurError::TooFewObservations {
+                equation: names[i].clone(),
+                n_obs: t,
+                n_regressors: ki,
             });
         }
-        let mut g = stats.gram.clone();
-        symmetrize(&mut g);
-        for i in 0..n {
-            let (a, b) = (offsets[i], offsets[i + 1]);
-            g.slice_mut(s![a..b, a..b]).assign(&Array2::eye(b - a));
-            g.slice_mut(s![a..b, k + i]).fill(0.0);
-            g.slice_mut(s![k + i, a..b]).fill(0.0);
-            g[[k + i, k + i]] = 1.0;
+        // Column norms of [X_i | y_i] are the column norms of R (Q has orthonormal columns).
+        let norms: Vec<f64> = (0..=ki)
+            .map(|j| rp.column(j).dot(&rp.column(j)).sqrt())
+            .collect();
+        let yscale = if norms[ki] > 0.0 { norms[ki] } else { 1.0 };
+        let mut rs = rp.clone();
+        for j in 0..ki {
+            if norms[j] > 0.0 {
+                rs.column_mut(j).mapv_inplace(|v| v / norms[j]);
+            }
         }
-        Ok(Prepared { n_obs: t, names, regressors, offsets, factors: out, cross: CrossProducts::General { gram: g } })
+        rs.column_mut(ki).mapv_inplace(|v| v / yscale);
+        check_rank(&names[i], &regressors[i], &rs, &norms[..ki], t)?;
+        let r = rp.slice(s![..ki, ..ki]).to_owned();
+        let z = rp.slice(s![..ki, ki]).to_owned();
+        let rho = rp[[ki, ki]].abs();
+        let s2: f64 = stats
+            .colsum
+            .slice(s![offsets[i]..offsets[i + 1]])
+            .iter()
+            .map(|v| v * v)
+            .sum();
+        out.push(EquationFactor {
+            r,
+            z,
+            rho,
+            spans_constant: (t as f64 - s2).abs() <= 1e-9 * t as f64,
+            tss_centred: stats.y_m2[i],
+            tss_raw: stats.y_raw[i],
+            cond: cond_of_scaled(&rs, ki),
+        });
     }
+    let mut g = stats.gram.clone();
+    symmetrize(&mut g);
+    for i in 0..n {
+        let (a, b) = (offsets[i], offsets[i + 1]);
+        g.slice_mut(s![a..b, a..b]).assign(&Array2::eye(b - a));
+        g.slice_mut(s![a..b, k + i]).fill(0.0);
+        g.slice_mut(s![k + i, a..b]).fill(0.0);
+        g[[k + i, k + i]] = 1.0;
+    }
+    Ok(Prepared {
+        n_obs: t,
+        names,
+        regressors,
+        offsets,
+        factors: out,
+        cross: CrossProducts::General { gram: g },
+    })
 }

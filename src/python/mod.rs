@@ -6,11 +6,16 @@ use pyo3::exceptions::PyValueError;
 use pyo3::prelude::*;
 use pyo3::types::PyDict;
 
+use crate::data::{Equation, SystemData};
 use crate::error::SurError;
-use crate::estimate::{CovKind, Divisor, Estimate, FitOptions, Method, Restrictions};
+use crate::estimate::{
+    fgls_from_data as fgls_one_pass, CovKind, Divisor, Estimate, Estimation, FitOptions, Method,
+    Restrictions,
+};
 use crate::prepare::Prepared;
-use crate::stream::{CrossStats, Pass2Basis, RowFactors, RowSummary};
-use crate::system::{Equation, SystemData};
+use crate::stream::{
+    prepare_from_summaries as from_summaries, CrossStats, Pass2Basis, RowFactors, RowSummary,
+};
 
 /// Raises the blocksur exception class for a core error, with its details as attributes.
 fn raise(py: Python<'_>, err: SurError) -> PyErr {
@@ -19,18 +24,31 @@ fn raise(py: Python<'_>, err: SurError) -> PyErr {
         let cls = module.getattr(err.kind())?;
         let kw = PyDict::new(py);
         match &err {
-            SurError::ShapeMismatch { equation, .. } | SurError::Scale { equation, .. } => kw.set_item("equation", equation)?,
-            SurError::NonFinite { equation, row, column, .. } => {
+            SurError::ShapeMismatch { equation, .. } | SurError::Scale { equation, .. } => {
+                kw.set_item("equation", equation)?
+            }
+            SurError::NonFinite {
+                equation,
+                row,
+                column,
+                ..
+            } => {
                 kw.set_item("equation", equation)?;
                 kw.set_item("row", row)?;
                 kw.set_item("column", column)?;
             }
-            SurError::TooFewObservations { equation, n_obs, n_regressors } => {
+            SurError::TooFewObservations {
+                equation,
+                n_obs,
+                n_regressors,
+            } => {
                 kw.set_item("equation", equation)?;
                 kw.set_item("n_obs", n_obs)?;
                 kw.set_item("n_regressors", n_regressors)?;
             }
-            SurError::Collinear { equation, column, .. } => {
+            SurError::Collinear {
+                equation, column, ..
+            } => {
                 kw.set_item("equation", equation)?;
                 kw.set_item("column", column)?;
             }
@@ -44,15 +62,17 @@ fn raise(py: Python<'_>, err: SurError) -> PyErr {
     build().unwrap_or_else(|e| e)
 }
 
-/// Checks for Ctrl-C from inside released-GIL work: briefly takes the interpreter lock and runs
-/// Python's signal handlers; keeps the KeyboardInterrupt (or other error) they raise.
-/// With a `callback`, each check also calls it with the number of checks so far (a progress
-/// hook: one call per equation and row block of the data pass, per GLS step of a fit); an
-/// exception it raises stops the work and is re-raised.
+/// Ctrl-C and progress for released-GIL work. Python runs signal handlers on its main thread
+/// only, so the thread that called into the core does the asking: while the work runs on
+/// blocksur's pool the caller polls (`runtime::run_polled`), briefly taking the interpreter lock
+/// to run the signal handlers; a KeyboardInterrupt (or other error) they raise is kept and the
+/// work is told to stop at its next checkpoint. With a `callback`, each poll also calls it with
+/// the number of checkpoints the work has passed (a progress hook: one per equation and row
+/// block of the data pass, per GLS step of a fit); an exception it raises stops the work and
+/// is re-raised. Small work runs on the calling thread, which then polls at its checkpoints.
 struct Interrupt {
     error: std::sync::Mutex<Option<PyErr>>,
     callback: Option<Py<PyAny>>,
-    count: std::sync::atomic::AtomicUsize,
     /// Without a callback Python is asked at most once per `QUIET`, the first time `QUIET`
     /// after the start (taking the interpreter lock back costs more than a small system's
     /// whole data pass): `last` is the time of the last check, in ns since `start`.
@@ -68,7 +88,6 @@ impl Default for Interrupt {
         Interrupt {
             error: Default::default(),
             callback: None,
-            count: Default::default(),
             start: std::time::Instant::now(),
             last: Default::default(),
         }
@@ -77,23 +96,29 @@ impl Default for Interrupt {
 
 impl Interrupt {
     fn with_callback(callback: Option<Py<PyAny>>) -> Self {
-        Interrupt { callback, ..Default::default() }
+        Interrupt {
+            callback,
+            ..Default::default()
+        }
     }
 
-    fn requested(&self) -> bool {
+    /// Whether to stop, after `checks` checkpoints of the work.
+    fn poll(&self, checks: usize) -> bool {
+        if self.error.lock().map(|e| e.is_some()).unwrap_or(true) {
+            return true;
+        }
         if self.callback.is_none() {
             use std::sync::atomic::Ordering::Relaxed;
             let now = self.start.elapsed().as_nanos() as u64;
             if now < self.last.load(Relaxed) + QUIET.as_nanos() as u64 {
-                return self.error.lock().map(|e| e.is_some()).unwrap_or(true);
+                return false;
             }
             self.last.store(now, Relaxed);
         }
         Python::attach(|py| {
             let mut outcome = py.check_signals();
             if let (Ok(()), Some(cb)) = (&outcome, &self.callback) {
-                let n = self.count.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
-                outcome = cb.call1(py, (n,)).map(|_| ());
+                outcome = cb.call1(py, (checks,)).map(|_| ());
             }
             match outcome {
                 Ok(()) => false,
@@ -116,24 +141,74 @@ impl Interrupt {
     }
 }
 
-/// OpenBLAS's own thread pool serves one caller at a time: eight Python threads each calling a
-/// multi-threaded BLAS oversubscribe the cores and contend for the pool (a 26x slowdown measured
-/// on 2 cores). While the pool has more than one thread, heavy work from concurrent Python
-/// threads therefore takes turns here; with `blas_threads(1)` the threads run in parallel.
-static BLAS_GATE: std::sync::Mutex<()> = std::sync::Mutex::new(());
-
-fn gated<T>(work: impl FnOnce() -> T) -> T {
-    if crate::prepare::blas_pool_threads() > 1 {
-        let _turn = BLAS_GATE.lock().unwrap_or_else(|p| p.into_inner());
-        work()
-    } else {
-        work()
-    }
+/// Releases the interpreter lock and runs `work` of about `flops` operations, the calling thread
+/// polling `stop` meanwhile (see `Interrupt`); `work` gets the stop request to ask at its
+/// checkpoints.
+fn run_interruptible<T: Send>(
+    py: Python<'_>,
+    flops: f64,
+    stop: &Interrupt,
+    work: impl FnOnce(&(dyn Fn() -> bool + Sync)) -> T + Send,
+) -> T {
+    py.detach(|| crate::runtime::run_polled(flops, &|checks| stop.poll(checks), work))
 }
 
-/// Releases the interpreter lock and runs `work` in its turn at the BLAS gate.
-fn detach_gated<T: Send>(py: Python<'_>, work: impl FnOnce() -> T + Send) -> T {
-    py.detach(|| gated(work))
+/// Refuses work that needs more address space than this process can get: where a cap on it
+/// (RLIMIT_AS, `ulimit -v`) is in force, an allocation the core cannot make ends the process
+/// (Rust aborts on a failed allocation), so the memory a step needs at its peak, `bytes`, plus
+/// a margin for the backend's own buffers and threads, is reserved first (never touched, given
+/// back at once). A reservation that fails raises MemoryError instead.
+///
+/// The margin covers the backend's packing buffers as well: the matrix-product kernels faer
+/// uses on x86-64 reserve twice the last-level cache per thread, once (300 MB of L3 reported on
+/// this VM: 600 MB of address space a thread, never touched in full), counted for the pool's
+/// threads and the caller.
+/// Steps below SMALL_STEP bytes are not checked (the reservation, an mmap and munmap of a
+/// few GB, cost more than a small fit: 10-20 us).
+fn room_for(bytes: f64) -> PyResult<()> {
+    if !bytes.is_finite() || bytes < SMALL_STEP {
+        return Ok(());
+    }
+    let threads = crate::runtime::get_threads() + 1;
+    let margin = (BUFFERS + 2 * crate::kernels::last_level_cache_bytes()).saturating_mul(threads);
+    let want = (bytes as usize).saturating_add(margin);
+    let mut probe: Vec<u8> = Vec::new();
+    probe.try_reserve_exact(want).map_err(|_| {
+        pyo3::exceptions::PyMemoryError::new_err(format!(
+            "this step needs about {:.0} MB of memory (plus {} MB of address space for its threads' \
+             buffers), more than this process may allocate (a cap on its address space, ulimit -v, \
+             or the machine's memory)",
+            bytes / 1e6,
+            margin >> 20
+        ))
+    })
+}
+
+/// Memory of a step below which `room_for` does not check.
+const SMALL_STEP: f64 = 16e6;
+
+/// Address space a thread's other buffers may take (stack, workspaces), in `room_for`.
+const BUFFERS: usize = 32 << 20;
+
+/// Bytes of the data pass's largest buffers: W (T x P) and its Gram matrix (P x P), or W
+/// alone (matrix-free).
+fn pass_bytes(
+    ys: &[PyReadonlyArray1<'_, f64>],
+    xs: &[PyReadonlyArray2<'_, f64>],
+    gram: bool,
+) -> f64 {
+    let t = ys.first().map_or(0, |y| y.as_array().len()) as f64;
+    let p = (xs.iter().map(|x| x.as_array().ncols()).sum::<usize>() + ys.len()) as f64;
+    8.0 * (t * p + if gram { p * p } else { 0.0 })
+}
+
+/// Operations of a data pass over T rows and P columns with K regressors in all (T P^2 for
+/// the cross-products, T K^2 for the QRs), for `run_interruptible`.
+fn pass_flops(ys: &[PyReadonlyArray1<'_, f64>], xs: &[PyReadonlyArray2<'_, f64>]) -> f64 {
+    let t = ys.first().map_or(0, |y| y.as_array().len()) as f64;
+    let k: usize = xs.iter().map(|x| x.as_array().ncols()).sum();
+    let p = (k + ys.len()) as f64;
+    t * p * p + (k as f64).powi(3)
 }
 
 fn equations<'a>(
@@ -143,7 +218,9 @@ fn equations<'a>(
     regressors: &[Vec<String>],
 ) -> PyResult<SystemData<'a>> {
     if ys.len() != xs.len() || ys.len() != names.len() || ys.len() != regressors.len() {
-        return Err(PyValueError::new_err("ys, xs, names and regressors must have the same length"));
+        return Err(PyValueError::new_err(
+            "ys, xs, names and regressors must have the same length",
+        ));
     }
     let eqs = ys
         .iter()
@@ -183,15 +260,17 @@ fn prepare(
     progress: Option<Py<PyAny>>,
 ) -> PyResult<PyPrepared> {
     let data = equations(&ys, &xs, &names, &regressors)?;
+    room_for(pass_bytes(&ys, &xs, !matrix_free))?;
     let stop = Interrupt::with_callback(progress);
-    let out = detach_gated(py, || {
+    let out = run_interruptible(py, pass_flops(&ys, &xs), &stop, |cancel| {
         if matrix_free {
-            Prepared::new_matrix_free(&data, &|| stop.requested())
+            Prepared::new_matrix_free(&data, cancel)
         } else {
-            Prepared::new_with(&data, &|| stop.requested())
+            Prepared::new_with(&data, cancel)
         }
     });
-    out.map(|inner| PyPrepared { inner }).map_err(|e| stop.raise(py, e))
+    out.map(|inner| PyPrepared { inner })
+        .map_err(|e| stop.raise(py, e))
 }
 
 /// Two-step FGLS straight from the data (no P x P Gram matrix kept), with the interpreter
@@ -210,9 +289,16 @@ fn fgls_from_data(
 ) -> PyResult<(PyPrepared, PyEstimate)> {
     let divisor = Divisor::parse(divisor).map_err(|e| raise(py, e))?;
     let data = equations(&ys, &xs, &names, &regressors)?;
+    // W, the K x K products and the T x N residuals
+    let k = xs.iter().map(|x| x.as_array().ncols()).sum::<usize>() as f64;
+    let t = ys.first().map_or(0, |y| y.as_array().len()) as f64;
+    room_for(pass_bytes(&ys, &xs, false) + 8.0 * (k * k + t * ys.len() as f64))?;
     let stop = Interrupt::with_callback(progress);
-    let out = detach_gated(py, || Prepared::fgls_from_data(&data, divisor, &|| stop.requested()));
-    out.map(|(p, e)| (PyPrepared { inner: p }, PyEstimate { inner: e })).map_err(|e| stop.raise(py, e))
+    let out = run_interruptible(py, pass_flops(&ys, &xs), &stop, |cancel| {
+        fgls_one_pass(&data, divisor, cancel)
+    });
+    out.map(|(p, e)| (PyPrepared { inner: p }, PyEstimate { inner: e }))
+        .map_err(|e| stop.raise(py, e))
 }
 
 /// Residuals y_i - X_i b_i (T x N) from the data.
@@ -225,16 +311,22 @@ fn residuals<'py>(
 ) -> PyResult<Bound<'py, PyArray2<f64>>> {
     let n = ys.len();
     let names: Vec<String> = (0..n).map(|i| format!("eq{i}")).collect();
-    let regs: Vec<Vec<String>> = xs.iter().map(|x| (0..x.as_array().ncols()).map(|j| format!("x{j}")).collect()).collect();
+    let regs: Vec<Vec<String>> = xs
+        .iter()
+        .map(|x| (0..x.as_array().ncols()).map(|j| format!("x{j}")).collect())
+        .collect();
     let data = equations(&ys, &xs, &names, &regs)?;
     data.validate_chunk(0, false).map_err(|e| raise(py, e))?;
     let k: usize = xs.iter().map(|x| x.as_array().ncols()).sum();
     let c = coef.as_array();
     if c.len() != k || n == 0 {
-        return Err(PyValueError::new_err(format!("expected {k} coefficients, got {}", c.len())));
+        return Err(PyValueError::new_err(format!(
+            "expected {k} coefficients, got {}",
+            c.len()
+        )));
     }
     let c = c.to_vec();
-    Ok(detach_gated(py, || data.residuals(&c)).into_pyarray(py))
+    Ok(py.detach(|| data.residuals(&c)).into_pyarray(py))
 }
 
 impl PyPrepared {
@@ -253,9 +345,15 @@ impl PyPrepared {
         let data = if ys.is_empty() {
             None
         } else {
-            Some(equations(&ys, &xs, &self.inner.names, &self.inner.regressors)?)
+            Some(equations(
+                &ys,
+                &xs,
+                &self.inner.names,
+                &self.inner.regressors,
+            )?)
         };
-        detach_gated(py, || work(kind, data.as_ref())).map_err(|e| raise(py, e))
+        py.detach(|| work(kind, data.as_ref()))
+            .map_err(|e| raise(py, e))
     }
 }
 
@@ -290,7 +388,10 @@ impl PyPrepared {
             cg_max_iter,
         };
         let restrictions = match (r, q) {
-            (Some(r), Some(q)) => Some(Restrictions { r: r.as_array().to_owned(), q: q.as_array().to_owned() }),
+            (Some(r), Some(q)) => Some(Restrictions {
+                r: r.as_array().to_owned(),
+                q: q.as_array().to_owned(),
+            }),
             (None, None) => None,
             _ => return Err(PyValueError::new_err("give both r and q, or neither")),
         };
@@ -298,11 +399,37 @@ impl PyPrepared {
         let data = if ys.is_empty() {
             None
         } else {
-            Some(equations(&ys, &xs, &self.inner.names, &self.inner.regressors)?)
+            Some(equations(
+                &ys,
+                &xs,
+                &self.inner.names,
+                &self.inner.regressors,
+            )?)
         };
+        let (k, n) = (self.inner.n_coef() as f64, self.inner.n_eq() as f64);
+        // the GLS matrix and its factor, and a restricted fit's K x K products
+        room_for(8.0 * 3.0 * k * k)?;
         let stop = Interrupt::with_callback(progress);
-        let out = detach_gated(py, || self.inner.estimate_with(&opts, restrictions.as_ref(), data.as_ref(), &|| stop.requested()));
-        out.map(|inner| PyEstimate { inner }).map_err(|e| stop.raise(py, e))
+        let steps = if opts.method == Method::IteratedFgls {
+            10.0
+        } else {
+            1.0
+        };
+        let flops = steps * (k.powi(3) + n.powi(3))
+            + if matches!(
+                self.inner.cross,
+                crate::prepare::CrossProducts::MatrixFree { .. }
+            ) {
+                1e12
+            } else {
+                0.0
+            };
+        let out = run_interruptible(py, flops, &stop, |cancel| {
+            self.inner
+                .estimate_with(&opts, restrictions.as_ref(), data.as_ref(), cancel)
+        });
+        out.map(|inner| PyEstimate { inner })
+            .map_err(|e| stop.raise(py, e))
     }
 
     /// Matrix-free path: standard errors of the coefficients of the given equations (by index)
@@ -317,15 +444,20 @@ impl PyPrepared {
         cg_max_iter: usize,
     ) -> PyResult<Vec<Bound<'py, PyArray1<f64>>>> {
         let stop = Interrupt::default();
-        let out = detach_gated(py, || {
-            self.inner.cg_standard_errors(&est.inner.omega, &equations, cg_tol, cg_max_iter, &|| stop.requested())
+        let out = run_interruptible(py, f64::INFINITY, &stop, |cancel| {
+            self.inner
+                .cg_standard_errors(&est.inner.omega, &equations, cg_tol, cg_max_iter, cancel)
         });
-        out.map(|v| v.into_iter().map(|a| a.into_pyarray(py)).collect()).map_err(|e| stop.raise(py, e))
+        out.map(|v| v.into_iter().map(|a| a.into_pyarray(py)).collect())
+            .map_err(|e| stop.raise(py, e))
     }
 
     #[getter]
     fn matrix_free(&self) -> bool {
-        matches!(self.inner.cross, crate::prepare::CrossProducts::MatrixFree { .. })
+        matches!(
+            self.inner.cross,
+            crate::prepare::CrossProducts::MatrixFree { .. }
+        )
     }
 
     /// Covariance of the stacked coefficients (K x K): kind "classical", "hc0" or "hc1" (the
@@ -339,7 +471,9 @@ impl PyPrepared {
         ys: Option<Vec<PyReadonlyArray1<'py, f64>>>,
         xs: Option<Vec<PyReadonlyArray2<'py, f64>>>,
     ) -> PyResult<Bound<'py, PyArray2<f64>>> {
-        let out = self.of_kind(py, kind, ys, xs, |k, d| self.inner.coef_covariance_of(&est.inner, k, d))?;
+        let out = self.of_kind(py, kind, ys, xs, |k, d| {
+            self.inner.coef_covariance_of(&est.inner, k, d)
+        })?;
         Ok(out.into_pyarray(py))
     }
 
@@ -354,7 +488,9 @@ impl PyPrepared {
         ys: Option<Vec<PyReadonlyArray1<'py, f64>>>,
         xs: Option<Vec<PyReadonlyArray2<'py, f64>>>,
     ) -> PyResult<Bound<'py, PyArray1<f64>>> {
-        let out = self.of_kind(py, kind, ys, xs, |k, d| self.inner.coef_standard_errors(&est.inner, k, d))?;
+        let out = self.of_kind(py, kind, ys, xs, |k, d| {
+            self.inner.coef_standard_errors(&est.inner, k, d)
+        })?;
         Ok(out.into_pyarray(py))
     }
 
@@ -371,7 +507,9 @@ impl PyPrepared {
         xs: Option<Vec<PyReadonlyArray2<'py, f64>>>,
     ) -> PyResult<Vec<Bound<'py, PyArray1<f64>>>> {
         let views: Vec<_> = new.iter().map(|a| a.as_array()).collect();
-        let out = self.of_kind(py, kind, ys, xs, |k, d| self.inner.prediction_variances(&est.inner, k, d, &views))?;
+        let out = self.of_kind(py, kind, ys, xs, |k, d| {
+            self.inner.prediction_variances(&est.inner, k, d, &views)
+        })?;
         Ok(out.into_iter().map(|v| v.into_pyarray(py)).collect())
     }
 
@@ -383,7 +521,7 @@ impl PyPrepared {
     /// Gaussian log-likelihood at Omega = S/T of the estimate's residuals (None if singular).
     fn log_likelihood(&self, py: Python<'_>, est: &PyEstimate) -> Option<f64> {
         // (S may be formed here, from the residuals a one-pass fit kept)
-        detach_gated(py, || self.inner.log_likelihood(est.inner.resid_crossprod()))
+        py.detach(|| self.inner.log_likelihood(est.inner.resid_crossprod()))
     }
 
     #[getter]
@@ -398,16 +536,26 @@ impl PyPrepared {
     /// FGLS fit computed from the data): GLS fits need a full preparation.
     #[getter]
     fn residuals_only(&self) -> bool {
-        matches!(self.inner.cross, crate::prepare::CrossProducts::ResidualsOnly { .. })
+        matches!(
+            self.inner.cross,
+            crate::prepare::CrossProducts::ResidualsOnly { .. }
+        )
     }
 
     #[getter]
     fn shared_regressors(&self) -> bool {
-        matches!(self.inner.cross, crate::prepare::CrossProducts::SharedRegressors { .. })
+        matches!(
+            self.inner.cross,
+            crate::prepare::CrossProducts::SharedRegressors { .. }
+        )
     }
     #[getter]
     fn spans_constant(&self) -> Vec<bool> {
-        self.inner.factors.iter().map(|f| f.spans_constant).collect()
+        self.inner
+            .factors
+            .iter()
+            .map(|f| f.spans_constant)
+            .collect()
     }
     #[getter]
     fn tss_centred(&self) -> Vec<f64> {
@@ -436,7 +584,8 @@ impl PyEstimate {
     #[getter]
     fn resid_crossprod<'py>(&self, py: Python<'py>) -> Bound<'py, PyArray2<f64>> {
         // formed on first use by a one-pass FGLS estimate (a product over the T x N residuals)
-        detach_gated(py, || self.inner.resid_crossprod().clone()).into_pyarray(py)
+        py.detach(|| self.inner.resid_crossprod().clone())
+            .into_pyarray(py)
     }
     #[getter]
     fn n_iter(&self) -> usize {
@@ -485,25 +634,44 @@ type Factors<'py> = (usize, Vec<PyReadonlyArray2<'py, f64>>, Vec<f64>);
 type FactorsOut<'py> = (usize, Vec<Bound<'py, PyArray2<f64>>>, Vec<f64>);
 
 fn factors_from_py(f: &Factors<'_>) -> RowFactors {
-    RowFactors { n_rows: f.0, r: f.1.iter().map(|a| a.as_array().to_owned()).collect(), y_max: f.2.clone() }
+    RowFactors {
+        n_rows: f.0,
+        r: f.1.iter().map(|a| a.as_array().to_owned()).collect(),
+        y_max: f.2.clone(),
+    }
 }
 
 fn factors_to_py<'py>(py: Python<'py>, f: RowFactors) -> FactorsOut<'py> {
-    (f.n_rows, f.r.into_iter().map(|a| a.into_pyarray(py)).collect(), f.y_max)
+    (
+        f.n_rows,
+        f.r.into_iter().map(|a| a.into_pyarray(py)).collect(),
+        f.y_max,
+    )
 }
 
 /// The fields the pass-2 and one-pass summaries share: row count, column sums, y moments and
 /// largest |y|.
-type Shared = (usize, ndarray::Array1<f64>, Vec<f64>, Vec<f64>, Vec<f64>, Vec<f64>);
+type Shared = (
+    usize,
+    ndarray::Array1<f64>,
+    Vec<f64>,
+    Vec<f64>,
+    Vec<f64>,
+    Vec<f64>,
+);
 
 fn item<'py>(d: &Bound<'py, PyDict>, k: &str, what: &str) -> PyResult<Bound<'py, pyo3::PyAny>> {
-    d.get_item(k)?.ok_or_else(|| PyValueError::new_err(format!("{what} lacks '{k}'")))
+    d.get_item(k)?
+        .ok_or_else(|| PyValueError::new_err(format!("{what} lacks '{k}'")))
 }
 
 fn shared_from_py(d: &Bound<'_, PyDict>, what: &str) -> PyResult<Shared> {
     Ok((
         item(d, "n_rows", what)?.extract()?,
-        item(d, "colsum", what)?.extract::<PyReadonlyArray1<f64>>()?.as_array().to_owned(),
+        item(d, "colsum", what)?
+            .extract::<PyReadonlyArray1<f64>>()?
+            .as_array()
+            .to_owned(),
         item(d, "y_mean", what)?.extract()?,
         item(d, "y_m2", what)?.extract()?,
         item(d, "y_raw", what)?.extract()?,
@@ -511,7 +679,12 @@ fn shared_from_py(d: &Bound<'_, PyDict>, what: &str) -> PyResult<Shared> {
     ))
 }
 
-fn shared_to_py<'py>(py: Python<'py>, s: Shared, key: &str, matrix: ndarray::Array2<f64>) -> PyResult<Bound<'py, PyDict>> {
+fn shared_to_py<'py>(
+    py: Python<'py>,
+    s: Shared,
+    key: &str,
+    matrix: ndarray::Array2<f64>,
+) -> PyResult<Bound<'py, PyDict>> {
     let d = PyDict::new(py);
     d.set_item("n_rows", s.0)?;
     d.set_item(key, matrix.into_pyarray(py))?;
@@ -525,27 +698,62 @@ fn shared_to_py<'py>(py: Python<'py>, s: Shared, key: &str, matrix: ndarray::Arr
 
 fn stats_from_py(d: &Bound<'_, PyDict>) -> PyResult<CrossStats> {
     let (n_rows, colsum, y_mean, y_m2, y_raw, y_max) = shared_from_py(d, "pass-2 summary")?;
-    let gram = item(d, "gram", "pass-2 summary")?.extract::<PyReadonlyArray2<f64>>()?.as_array().to_owned();
-    Ok(CrossStats { n_rows, gram, colsum, y_mean, y_m2, y_raw, y_max })
+    let gram = item(d, "gram", "pass-2 summary")?
+        .extract::<PyReadonlyArray2<f64>>()?
+        .as_array()
+        .to_owned();
+    Ok(CrossStats {
+        n_rows,
+        gram,
+        colsum,
+        y_mean,
+        y_m2,
+        y_raw,
+        y_max,
+    })
 }
 
 fn stats_to_py(py: Python<'_>, s: CrossStats) -> PyResult<Bound<'_, PyDict>> {
-    shared_to_py(py, (s.n_rows, s.colsum, s.y_mean, s.y_m2, s.y_raw, s.y_max), "gram", s.gram)
+    shared_to_py(
+        py,
+        (s.n_rows, s.colsum, s.y_mean, s.y_m2, s.y_raw, s.y_max),
+        "gram",
+        s.gram,
+    )
 }
 
 fn summary_from_py(d: &Bound<'_, PyDict>) -> PyResult<RowSummary> {
     let (n_rows, colsum, y_mean, y_m2, y_raw, y_max) = shared_from_py(d, "row summary")?;
-    let r = item(d, "r", "row summary")?.extract::<PyReadonlyArray2<f64>>()?.as_array().to_owned();
-    Ok(RowSummary { n_rows, r, colsum, y_mean, y_m2, y_raw, y_max })
+    let r = item(d, "r", "row summary")?
+        .extract::<PyReadonlyArray2<f64>>()?
+        .as_array()
+        .to_owned();
+    Ok(RowSummary {
+        n_rows,
+        r,
+        colsum,
+        y_mean,
+        y_m2,
+        y_raw,
+        y_max,
+    })
 }
 
 fn summary_to_py(py: Python<'_>, s: RowSummary) -> PyResult<Bound<'_, PyDict>> {
-    shared_to_py(py, (s.n_rows, s.colsum, s.y_mean, s.y_m2, s.y_raw, s.y_max), "r", s.r)
+    shared_to_py(
+        py,
+        (s.n_rows, s.colsum, s.y_mean, s.y_m2, s.y_raw, s.y_max),
+        "r",
+        s.r,
+    )
 }
 
 fn default_names(n: usize, xs: &[PyReadonlyArray2<'_, f64>]) -> (Vec<String>, Vec<Vec<String>>) {
     let names = (0..n).map(|i| format!("eq{i}")).collect();
-    let regs = xs.iter().map(|x| (0..x.as_array().ncols()).map(|j| format!("x{j}")).collect()).collect();
+    let regs = xs
+        .iter()
+        .map(|x| (0..x.as_array().ncols()).map(|j| format!("x{j}")).collect())
+        .collect();
     (names, regs)
 }
 
@@ -562,15 +770,21 @@ fn pass1_chunk<'py>(
     row_offset: usize,
 ) -> PyResult<FactorsOut<'py>> {
     let data = equations(&ys, &xs, &names, &regressors)?;
-    let out = detach_gated(py, || RowFactors::from_chunk(&data, row_offset)).map_err(|e| raise(py, e))?;
+    let out = py
+        .detach(|| RowFactors::from_chunk(&data, row_offset))
+        .map_err(|e| raise(py, e))?;
     Ok(factors_to_py(py, out))
 }
 
 /// Merges two pass-1 summaries.
 #[pyfunction]
-fn pass1_merge<'py>(py: Python<'py>, a: Factors<'py>, b: Factors<'py>) -> PyResult<FactorsOut<'py>> {
+fn pass1_merge<'py>(
+    py: Python<'py>,
+    a: Factors<'py>,
+    b: Factors<'py>,
+) -> PyResult<FactorsOut<'py>> {
     let (a, b) = (factors_from_py(&a), factors_from_py(&b));
-    let out = detach_gated(py, || a.merge(b)).map_err(|e| raise(py, e))?;
+    let out = py.detach(|| a.merge(b)).map_err(|e| raise(py, e))?;
     Ok(factors_to_py(py, out))
 }
 
@@ -578,7 +792,9 @@ fn pass1_merge<'py>(py: Python<'py>, a: Factors<'py>, b: Factors<'py>) -> PyResu
 /// (InputError naming it, as finishing would), before pass 2 reads the rows again.
 #[pyfunction]
 fn pass1_check(py: Python<'_>, names: Vec<String>, factors: Factors<'_>) -> PyResult<()> {
-    factors_from_py(&factors).check_y_range(&names).map_err(|e| raise(py, e))
+    factors_from_py(&factors)
+        .check_y_range(&names)
+        .map_err(|e| raise(py, e))
 }
 
 /// Pass 2 of a chunked fit on one chunk, given the merged pass-1 summary: a dict of sums.
@@ -602,9 +818,13 @@ fn pass2_chunk<'py>(
 
 /// Merges two pass-2 summaries.
 #[pyfunction]
-fn pass2_merge<'py>(py: Python<'py>, a: Bound<'py, PyDict>, b: Bound<'py, PyDict>) -> PyResult<Bound<'py, PyDict>> {
+fn pass2_merge<'py>(
+    py: Python<'py>,
+    a: Bound<'py, PyDict>,
+    b: Bound<'py, PyDict>,
+) -> PyResult<Bound<'py, PyDict>> {
     let (a, b) = (stats_from_py(&a)?, stats_from_py(&b)?);
-    let out = detach_gated(py, || a.merge(b)).map_err(|e| raise(py, e))?;
+    let out = py.detach(|| a.merge(b)).map_err(|e| raise(py, e))?;
     stats_to_py(py, out)
 }
 
@@ -621,15 +841,21 @@ fn row_chunk<'py>(
     row_offset: usize,
 ) -> PyResult<Bound<'py, PyDict>> {
     let data = equations(&ys, &xs, &names, &regressors)?;
-    let out = detach_gated(py, || RowSummary::from_chunk(&data, row_offset)).map_err(|e| raise(py, e))?;
+    let out = py
+        .detach(|| RowSummary::from_chunk(&data, row_offset))
+        .map_err(|e| raise(py, e))?;
     summary_to_py(py, out)
 }
 
 /// Merges two one-pass summaries.
 #[pyfunction]
-fn row_merge<'py>(py: Python<'py>, a: Bound<'py, PyDict>, b: Bound<'py, PyDict>) -> PyResult<Bound<'py, PyDict>> {
+fn row_merge<'py>(
+    py: Python<'py>,
+    a: Bound<'py, PyDict>,
+    b: Bound<'py, PyDict>,
+) -> PyResult<Bound<'py, PyDict>> {
     let (a, b) = (summary_from_py(&a)?, summary_from_py(&b)?);
-    let out = detach_gated(py, || a.merge(b)).map_err(|e| raise(py, e))?;
+    let out = py.detach(|| a.merge(b)).map_err(|e| raise(py, e))?;
     summary_to_py(py, out)
 }
 
@@ -643,7 +869,9 @@ fn row_finish<'py>(
     names: Vec<String>,
 ) -> PyResult<(FactorsOut<'py>, Bound<'py, PyDict>)> {
     let s = summary_from_py(&summary)?;
-    let (f, st) = detach_gated(py, || s.finish(&names, &widths)).map_err(|e| raise(py, e))?;
+    let (f, st) = py
+        .detach(|| s.finish(&names, &widths))
+        .map_err(|e| raise(py, e))?;
     Ok((factors_to_py(py, f), stats_to_py(py, st)?))
 }
 
@@ -658,7 +886,7 @@ fn prepare_from_summaries(
 ) -> PyResult<PyPrepared> {
     let f = factors_from_py(&factors);
     let st = stats_from_py(&stats)?;
-    detach_gated(py, || Prepared::from_summaries(names, regressors, &f, &st))
+    py.detach(|| from_summaries(names, regressors, &f, &st))
         .map(|inner| PyPrepared { inner })
         .map_err(|e| raise(py, e))
 }
@@ -690,7 +918,9 @@ fn fit_many<'py>(
         ..Default::default()
     };
     if ys.len() != xs.len() {
-        return Err(PyValueError::new_err("ys and xs must list the same number of equations"));
+        return Err(PyValueError::new_err(
+            "ys and xs must list the same number of equations",
+        ));
     }
     let n = ys.len();
     let rows = ys.first().map_or(0, |y| y.as_array().len());
@@ -701,7 +931,10 @@ fn fit_many<'py>(
             )));
         }
     }
-    if bounds.is_empty() || bounds.windows(2).any(|w| w[0] > w[1]) || bounds[bounds.len() - 1] > rows {
+    if bounds.is_empty()
+        || bounds.windows(2).any(|w| w[0] > w[1])
+        || bounds[bounds.len() - 1] > rows
+    {
         return Err(PyValueError::new_err(format!(
             "bounds must be non-decreasing row offsets within 0..={rows}, one more than the number of systems"
         )));
@@ -713,8 +946,14 @@ fn fit_many<'py>(
     let xv: Vec<_> = xs.iter().map(|x| x.as_array()).collect();
     let systems = crate::batch::Stacked::new(yv, xv, bounds, names, regs);
     let stop = Interrupt::default();
-    let results = detach_gated(py, || crate::batch::fit_batch(&systems, &opts, threads, &|| stop.requested()));
-    if results.iter().any(|r| matches!(r, Err(SurError::Interrupted))) {
+    let flops = (g as f64) * (rows as f64 / g.max(1) as f64) * ((k + n) as f64).powi(2);
+    let results = run_interruptible(py, flops, &stop, |cancel| {
+        crate::batch::fit_batch(&systems, &opts, threads, cancel)
+    });
+    if results
+        .iter()
+        .any(|r| matches!(r, Err(SurError::Interrupted)))
+    {
         return Err(stop.raise(py, SurError::Interrupted));
     }
     let mut coef = ndarray::Array2::<f64>::from_elem((g, k), f64::NAN);
@@ -749,23 +988,31 @@ fn fit_many<'py>(
     Ok(d)
 }
 
-extern "C" {
-    fn openblas_set_num_threads(n: std::os::raw::c_int);
+/// Sets the number of threads blocksur's parallel steps may use (1 ..= 1024).
+#[pyfunction]
+fn set_threads(py: Python<'_>, n: usize) -> PyResult<()> {
+    crate::runtime::set_threads(n).map_err(|e| raise(py, e))
 }
 
-/// Threads of the OpenBLAS this module links (the system's, not numpy's): sets them when `n`
-/// is given, and returns the number in force.
+/// The thread limit in force (`set_threads`, else RAYON_NUM_THREADS at first use, else the
+/// cores this process may use).
 #[pyfunction]
-#[pyo3(signature = (n=None))]
-fn blas_threads(n: Option<usize>) -> PyResult<usize> {
-    if let Some(n) = n {
-        if n == 0 || n > 1024 {
-            return Err(PyValueError::new_err(format!("threads must be between 1 and 1024, got {n}")));
-        }
-        // SAFETY: plain OpenBLAS API calls with an in-range value.
-        unsafe { openblas_set_num_threads(n as std::os::raw::c_int) };
-    }
-    Ok(crate::prepare::blas_pool_threads())
+fn get_threads() -> usize {
+    crate::runtime::get_threads()
+}
+
+/// How this extension computes: backend ("faer" or "lapack"), isa (the instruction set the
+/// backend's kernels chose on this CPU), kernels_isa (that of blocksur's own vector kernels),
+/// threads (the limit in force) and version (the crate's).
+#[pyfunction]
+fn build_info(py: Python<'_>) -> PyResult<Bound<'_, PyDict>> {
+    let d = PyDict::new(py);
+    d.set_item("backend", crate::kernels::backend_name())?;
+    d.set_item("isa", crate::kernels::isa_name())?;
+    d.set_item("kernels_isa", crate::kernels::kernels_isa_name())?;
+    d.set_item("threads", crate::runtime::get_threads())?;
+    d.set_item("version", env!("CARGO_PKG_VERSION"))?;
+    Ok(d)
 }
 
 #[pymodule]
@@ -783,7 +1030,9 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(row_chunk, m)?)?;
     m.add_function(wrap_pyfunction!(row_merge, m)?)?;
     m.add_function(wrap_pyfunction!(row_finish, m)?)?;
-    m.add_function(wrap_pyfunction!(blas_threads, m)?)?;
+    m.add_function(wrap_pyfunction!(set_threads, m)?)?;
+    m.add_function(wrap_pyfunction!(get_threads, m)?)?;
+    m.add_function(wrap_pyfunction!(build_info, m)?)?;
     m.add_class::<PyPrepared>()?;
     m.add_class::<PyEstimate>()?;
     m.add("__version__", env!("CARGO_PKG_VERSION"))?;

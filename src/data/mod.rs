@@ -18,12 +18,27 @@ impl<'a> Equation<'a> {
     /// An equation with default regressor names x0, x1, ...
     pub fn new(name: impl Into<String>, y: ArrayView1<'a, f64>, x: ArrayView2<'a, f64>) -> Self {
         let regressors = (0..x.ncols()).map(|j| format!("x{j}")).collect();
-        Equation { name: name.into(), y, x, regressors }
+        Equation {
+            name: name.into(),
+            y,
+            x,
+            regressors,
+        }
     }
 
     /// An equation with the given regressor names (one per column of `x`).
-    pub fn named(name: impl Into<String>, y: ArrayView1<'a, f64>, x: ArrayView2<'a, f64>, regressors: Vec<String>) -> Self {
-        Equation { name: name.into(), y, x, regressors }
+    pub fn named(
+        name: impl Into<String>,
+        y: ArrayView1<'a, f64>,
+        x: ArrayView2<'a, f64>,
+        regressors: Vec<String>,
+    ) -> Self {
+        Equation {
+            name: name.into(),
+            y,
+            x,
+            regressors,
+        }
     }
 
     /// The same equation with the given regressor names.
@@ -51,7 +66,8 @@ fn first_duplicate<'k>(keys: impl ExactSizeIterator<Item = &'k str>) -> Option<u
 /// Whether two regressor matrices hold the same values: the same view of the same memory, or
 /// equal element by element.
 pub(crate) fn same_matrix(a: &ArrayView2<f64>, b: &ArrayView2<f64>) -> bool {
-    a.shape() == b.shape() && (std::ptr::eq(a.as_ptr(), b.as_ptr()) && a.strides() == b.strides() || a == b)
+    a.shape() == b.shape()
+        && (std::ptr::eq(a.as_ptr(), b.as_ptr()) && a.strides() == b.strides() || a == b)
 }
 
 /// A system of equations observed on a common sample of T rows.
@@ -95,10 +111,14 @@ impl<'a> SystemData<'a> {
             if dup == Some(i) {
                 return Err(SurError::ShapeMismatch {
                     equation: eq.name.clone(),
-                    detail: "the name is used by more than one equation; names must be unique".into(),
+                    detail: "the name is used by more than one equation; names must be unique"
+                        .into(),
                 });
             }
-            let shape = |detail: String| SurError::ShapeMismatch { equation: eq.name.clone(), detail };
+            let shape = |detail: String| SurError::ShapeMismatch {
+                equation: eq.name.clone(),
+                detail,
+            };
             if eq.y.len() != t {
                 return Err(shape(format!(
                     "the dependent variable has {} rows but equation '{}' has {t}; all equations must share one sample",
@@ -113,7 +133,9 @@ impl<'a> SystemData<'a> {
                 )));
             }
             if eq.x.ncols() == 0 {
-                return Err(shape("the regressor matrix has no columns; give at least one regressor".into()));
+                return Err(shape(
+                    "the regressor matrix has no columns; give at least one regressor".into(),
+                ));
             }
             if eq.regressors.len() != eq.x.ncols() {
                 return Err(shape(format!(
@@ -123,7 +145,10 @@ impl<'a> SystemData<'a> {
                 )));
             }
             if let Some(j) = first_duplicate(eq.regressors.iter().map(|r| r.as_str())) {
-                return Err(shape(format!("regressor name '{}' appears twice", eq.regressors[j])));
+                return Err(shape(format!(
+                    "regressor name '{}' appears twice",
+                    eq.regressors[j]
+                )));
             }
             if whole && t <= eq.x.ncols() {
                 return Err(SurError::TooFewObservations {
@@ -182,7 +207,11 @@ pub(crate) fn check_finite(eq: &Equation, row_offset: usize) -> Result<()> {
                 equation: eq.name.clone(),
                 row: row + row_offset,
                 column: col.map(|j| eq.regressors[j].clone()),
-                value: if value.is_nan() { "NaN".into() } else { format!("{value}") },
+                value: if value.is_nan() {
+                    "NaN".into()
+                } else {
+                    format!("{value}")
+                },
             })
         }
     }
