@@ -43,7 +43,10 @@ build() {
     setup_python
     echo "== building the wheel (pip wheel .: maturin, release; the first build compiles the Rust crates)"
     rm -f "$WHEELS"/blocksur-*.whl
-    "$PY" -m pip wheel -q --no-deps -w "$WHEELS" .
+    # A target directory of its own: the extension (feature `python`) and `cargo test` (default
+    # features) both write target/release/deps/libblocksur.so (cargo names a cdylib without a hash),
+    # so in one directory each would rebuild the crate after the other (a minute or more each time).
+    CARGO_TARGET_DIR=$ROOT/target/wheel "$PY" -m pip wheel -q --no-deps -w "$WHEELS" .
     local wheel
     wheel=$(ls "$WHEELS"/blocksur-*.whl)
     echo "== installing $(basename "$wheel") into .venv"
