@@ -1,31 +1,33 @@
 #!/usr/bin/env bash
-# blocksur's single entry point. On a fresh machine it installs what it needs first.
-#   ./run.sh demo    set up, build, and run the demo on generated data
-#   ./run.sh test    set up, build, and run the whole test suite (Rust core + Python)
-#   ./run.sh build   set up and build only
-#   ./run.sh bench   set up, build, and run the benchmarks (slow; see benchmarks/README.md)
+# blocksur's single entry point. It needs Python 3.10+ and cargo (Rust) and nothing else: no apt,
+# no root. On a fresh clone it makes .venv, installs requirements-dev.txt there, builds the wheel
+# with `pip wheel .` and installs that wheel (not the source tree) into .venv.
+#   ./run.sh demo         set up, build, and run the demo on generated data
+#   ./run.sh test         set up, build, and run the whole test suite: the Rust core (cargo test)
+#                         and the Python suite against the installed wheel
+#   ./run.sh build        set up, build the wheel, install it into .venv
+#   ./run.sh bench        set up, build, and run the benchmarks (slow; see benchmarks/README.md)
+#   ./run.sh test-lapack  the Rust core's tests on the optional LAPACK backend (cargo feature
+#                         `lapack`; needs the system OpenBLAS and pkg-config: see README.md)
+# PYTHON=python3.12 ./run.sh ... picks the interpreter .venv is made with (default: python3).
 set -euo pipefail
 cd "$(dirname "$0")"
 ROOT=$PWD
 VENV=$ROOT/.venv
 PY=$VENV/bin/python
+WHEELS=$ROOT/target/wheels
 
-as_root() { if [ "$(id -u)" = 0 ]; then "$@"; else sudo "$@"; fi; }
-
-setup_system() {
-    # System OpenBLAS (BLAS + LAPACK) for the Rust core, and pkg-config to find it.
-    if ! dpkg -s libopenblas-dev >/dev/null 2>&1 || ! command -v pkg-config >/dev/null 2>&1; then
-        echo "== installing libopenblas-dev and pkg-config (apt)"
-        as_root apt-get update -qq
-        DEBIAN_FRONTEND=noninteractive as_root apt-get install -y -qq libopenblas-dev pkg-config >/dev/null
-    fi
+need_cargo() {
     command -v cargo >/dev/null 2>&1 || { echo "cargo (Rust) is required: https://rustup.rs" >&2; exit 1; }
 }
 
 setup_python() {
     if [ ! -x "$PY" ]; then
-        echo "== creating $VENV"
-        python3 -m venv "$VENV"
+        local python=${PYTHON:-python3}
+        "$python" -c 'import sys; sys.exit(sys.version_info < (3, 10))' 2>/dev/null \
+            || { echo "Python 3.10 or later is required ($python: $("$python" --version 2>&1))" >&2; exit 1; }
+        echo "== creating $VENV ($("$python" --version))"
+        "$python" -m venv "$VENV"
     fi
     local stamp=$VENV/.requirements.stamp
     if [ ! -f "$stamp" ] || ! cmp -s requirements-dev.txt "$stamp"; then
@@ -37,10 +39,21 @@ setup_python() {
 }
 
 build() {
-    setup_system
+    need_cargo
     setup_python
-    echo "== building the extension (maturin, release)"
-    VIRTUAL_ENV=$VENV PATH=$VENV/bin:$PATH "$VENV/bin/maturin" develop --release -q 2>&1 | grep -v '^\s*$' | tail -n 3
+    echo "== building the wheel (pip wheel .: maturin, release; the first build compiles the Rust crates)"
+    rm -f "$WHEELS"/blocksur-*.whl
+    # A target directory of its own: the extension (feature `python`) and `cargo test` (default
+    # features) both write target/release/deps/libblocksur.so (cargo names a cdylib without a hash),
+    # so in one directory each would rebuild the crate after the other (a minute or more each time).
+    CARGO_TARGET_DIR=$ROOT/target/wheel "$PY" -m pip wheel -q --no-deps -w "$WHEELS" .
+    local wheel
+    wheel=$(ls "$WHEELS"/blocksur-*.whl)
+    echo "== installing $(basename "$wheel") into .venv"
+    "$PY" -m pip install -q --no-deps --force-reinstall "$wheel"
+    # The tests and the demo must import this wheel, never python/ from the source tree.
+    "$PY" -c 'import blocksur, sys; print("== blocksur", blocksur.__version__, "from", blocksur.__file__)
+if not blocksur.__file__.startswith(sys.prefix): sys.exit("blocksur is not imported from .venv")'
 }
 
 case "${1:-}" in
@@ -52,7 +65,7 @@ case "${1:-}" in
         build
         echo "== Rust core tests (cargo test, no Python)"
         cargo test --release -q
-        echo "== Python tests (pytest)"
+        echo "== Python tests (pytest, against the installed wheel)"
         "$PY" -m pytest -q "${@:2}"
         ;;
     build)
@@ -62,8 +75,18 @@ case "${1:-}" in
         build
         "$PY" benchmarks/bench_core.py "${@:2}"
         ;;
+    test-lapack)
+        need_cargo
+        if ! pkg-config --exists openblas 2>/dev/null; then
+            echo "the lapack backend links the system OpenBLAS: install libopenblas-dev and pkg-config" >&2
+            echo "(Debian/Ubuntu: sudo apt-get install libopenblas-dev pkg-config; see README.md)" >&2
+            exit 1
+        fi
+        echo "== Rust core tests on the lapack backend (cargo test --features lapack)"
+        cargo test --release -q --features lapack "${@:2}"
+        ;;
     *)
-        echo "usage: ./run.sh demo | test | build | bench" >&2
+        echo "usage: ./run.sh demo | test | build | bench | test-lapack" >&2
         exit 2
         ;;
 esac

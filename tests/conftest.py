@@ -10,6 +10,10 @@ import reference  # noqa: E402
 
 
 def pytest_terminal_summary(terminalreporter):
+    # which blocksur the run tested: ./run.sh and CI install the wheel into .venv (never python/)
+    import blocksur
+
+    terminalreporter.write_line(f"blocksur under test: {blocksur.__file__} ({blocksur.build_info()['backend']} backend)")
     if not reference.AGREEMENT:
         return
     terminalreporter.section("blocksur: measured agreement with outside references")
